@@ -1,0 +1,103 @@
+"""The ``trimtab`` command line.
+
+Exit status: 0 success, 2 bad arguments or config (the message names the key), 1 anything else.
+Progress goes to stderr; results to stdout or files. Each subcommand's work lives in its own
+module (``replay``, ``demo``, ``app``); this file only parses arguments and maps errors to exit codes.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from models import InvalidSettings, TrimtabError
+
+__all__ = ["main"]
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse exits 2 as well; keep its usage line, our wording
+        self.print_usage(sys.stderr)
+        print(f"trimtab: error: {message}", file=sys.stderr)
+        raise SystemExit(2)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="trimtab", description="Online linear models on a live event feed: learn, score, "
+                                             "monitor, replay.")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    d = sub.add_parser("demo", help="replay the cold-chain demo feed under two configs and write the report")
+    d.add_argument("--out", default="trimtab-demo", help="output folder (default: %(default)s)")
+    d.add_argument("--events", type=int, default=None, help="build a fresh demo feed of this many events")
+
+    s = sub.add_parser("serve", help="run the service")
+    s.add_argument("-c", "--config", required=True, help="config file (TOML)")
+    s.add_argument("--host", default=None, help="override service.host")
+    s.add_argument("--port", type=int, default=None, help="override service.port")
+    s.add_argument("--data-dir", default=None, help="override service.data_dir")
+
+    r = sub.add_parser("replay", help="replay recorded feeds offline (-c ... --out) or into a service (--to)")
+    r.add_argument("feeds", nargs="+", help="NDJSON, CSV or Parquet files (.gz allowed)")
+    r.add_argument("-c", "--config", action="append", default=[], help="config file; repeat for side-by-side runs")
+    r.add_argument("--out", default=None, help="output folder for summary.json, report.html, <name>/model.json")
+    r.add_argument("--to", default=None, help="base URL of a running service to replay into")
+    r.add_argument("--speed", type=float, default=None, help="with --to: recorded pace times X (default: as fast as accepted)")
+    r.add_argument("--token-env", default="TRIMTAB_TOKEN", help="with --to: environment variable holding the token")
+    r.add_argument("--batch", type=int, default=1000, help="with --to: events per request (default: %(default)s)")
+    r.add_argument("--jobs", type=int, default=None, help="parallel processes for several configs")
+    r.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
+
+    c = sub.add_parser("check-config", help="validate a config and print the resolved settings")
+    c.add_argument("config")
+    return p
+
+
+def _check_config(args) -> int:
+    from .config import load_config
+
+    cfg = load_config(args.config)
+    spec = cfg.model_spec()
+    from models import LinearModel
+
+    out = {"config": cfg.resolved(), "dimension": spec.dim() + (1 if spec.fit_intercept else 0),
+           "certificate": LinearModel(spec).certificate()}
+    print(json.dumps(out, indent=2))
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        if args.command == "check-config":
+            return _check_config(args)
+        if args.command == "serve":
+            from .app import serve_main
+
+            return serve_main(args)
+        if args.command == "replay":
+            from .replay import replay_main
+
+            return replay_main(args)
+        if args.command == "demo":
+            from .demo import demo_main
+
+            return demo_main(args)
+    except InvalidSettings as exc:
+        print(f"trimtab: config error: {exc}", file=sys.stderr)
+        return 2
+    except TrimtabError as exc:
+        print(f"trimtab: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("trimtab: interrupted", file=sys.stderr)
+        return 1
+    except OSError as exc:
+        print(f"trimtab: error: {exc}", file=sys.stderr)
+        return 1
+    return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,187 @@
+"""The TOML config file, validated by pydantic; unknown keys are an error that names the key.
+
+``load_config(path)`` reads a file, ``parse_config(text)`` a string; both raise
+:class:`ConfigError` whose ``where`` is the dotted key (``steps.rule``) and whose message names the
+valid values. ``Config.model_spec()`` turns the learning sections into a :class:`models.ModelSpec`.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from pathlib import Path
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from models import InvalidSettings, ModelSpec
+
+__all__ = ["Config", "ConfigError", "load_config", "parse_config"]
+
+
+class ConfigError(InvalidSettings):
+    """The config file cannot be read or a key has an invalid value."""
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class FeaturesConfig(_Section):
+    numeric: list[str] = []
+    categorical: list[str] = []
+    hash_bits: int = Field(12, ge=1, le=24)
+    scaling: Literal["none", "warmup"] = "warmup"
+    warmup_events: int = Field(500, ge=2)
+    #: what the boundary does with a feature that is not declared
+    unknown: Literal["reject", "ignore"] = "reject"
+
+
+class ModelConfig(_Section):
+    task: Literal["regression", "binary"] = "regression"
+    loss: Literal["squared", "huber", "logistic"] = "squared"
+    l2: float = Field(0.0, ge=0.0)
+    huber_delta: float = Field(1.0, gt=0.0)
+    fit_intercept: bool = True
+    kernel: Literal["lazy", "dense"] = "lazy"
+
+
+class ConstraintConfig(_Section):
+    set: Literal["ball", "box", "none"] = "ball"
+    radius: float = Field(20.0, gt=0.0)
+    lower: float = -1.0
+    upper: float = 1.0
+
+
+class StepsConfig(_Section):
+    rule: Literal["constant", "sqrt_decay", "horizon", "anytime", "strongly_convex"] = "anytime"
+    base: float = Field(0.05, gt=0.0)
+    horizon: int = Field(100_000, ge=1)
+    grad_bound: float | Literal["auto"] = "auto"
+
+    @field_validator("grad_bound")
+    @classmethod
+    def _positive(cls, v):
+        if v != "auto" and not (math.isfinite(v) and v > 0):
+            raise ValueError("must be a number > 0 or \"auto\"")
+        return v
+
+
+class AveragingConfig(_Section):
+    scheme: Literal["uniform", "weighted", "exponential"] = "uniform"
+    halflife: float = Field(5000.0, gt=0.0)
+
+
+class MonitorConfig(_Section):
+    enabled: bool = True
+    holdout_share: float = Field(0.05, ge=0.0, lt=1.0)
+    window: int = Field(2000, ge=10)
+    check_every: int = Field(250, ge=1)
+    rollback_margin: float = Field(0.10, ge=0.0)
+    rollback_patience: int = Field(3, ge=1)
+    #: a rollback multiplies later steps by this factor
+    rollback_shrink: float = Field(0.5, gt=0.0, le=1.0)
+    #: raw iterate farther than this many constraint radii (or raw norms) from the average -> rollback
+    divergence_radii: float = Field(1.0, gt=0.0)
+    drift: Literal["page_hinkley", "adwin", "off"] = "page_hinkley"
+    #: Page-Hinkley threshold on the held-out loss relative to its running level
+    drift_threshold: float = Field(50.0, gt=0.0)
+    #: checks after an alarm before a restart is confirmed (a short label burst ends before)
+    drift_confirm: int = Field(8, ge=1)
+    serve: Literal["averaged", "raw", "better"] = "averaged"
+    #: share of rejected events among the last `reject_window` events that is an incident
+    reject_burst_share: float = Field(0.2, gt=0.0, le=1.0)
+    reject_window: int = Field(500, ge=10)
+
+
+class ServiceConfig(_Section):
+    host: str = "127.0.0.1"
+    port: int = Field(8470, ge=0, le=65535)
+    data_dir: str = "trimtab-data"
+    checkpoint_every: int = Field(10_000, ge=1)
+    checkpoints_kept: int = Field(3, ge=1)
+    token_env: str = "TRIMTAB_TOKEN"
+    #: whether reads (score, model card, metrics) also need the token when one is configured
+    token_for_reads: bool = False
+    queue_limit: int = Field(200_000, ge=1)
+    max_body_bytes: int = Field(16 * 1024 * 1024, ge=1024)
+    max_batch: int = Field(20_000, ge=1)
+    max_line_bytes: int = Field(64 * 1024, ge=256)
+    remember_ttl_s: float = Field(3600.0, gt=0.0)
+    remember_limit: int = Field(100_000, ge=1)
+
+
+class FeedConfig(_Section):
+    source: str = "redis://127.0.0.1:6379/0"
+    stream: str = "trimtab.events"
+    group: str = "trimtab"
+    consumer: str = "learner-1"
+
+
+class Config(_Section):
+    name: str = Field("model", pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
+    features: FeaturesConfig = FeaturesConfig()
+    model: ModelConfig = ModelConfig()
+    constraint: ConstraintConfig = ConstraintConfig()
+    steps: StepsConfig = StepsConfig()
+    averaging: AveragingConfig = AveragingConfig()
+    monitor: MonitorConfig = MonitorConfig()
+    service: ServiceConfig = ServiceConfig()
+    feed: FeedConfig | None = None
+
+    @model_validator(mode="after")
+    def _learnable(self):
+        self.model_spec()  # raises InvalidSettings naming the key
+        return self
+
+    def model_spec(self) -> ModelSpec:
+        f, m, c, s, a = self.features, self.model, self.constraint, self.steps, self.averaging
+        return ModelSpec(
+            numeric=tuple(f.numeric), categorical=tuple(f.categorical), hash_bits=f.hash_bits,
+            scaling=f.scaling, warmup_events=f.warmup_events, task=m.task, loss=m.loss,
+            huber_delta=m.huber_delta, l2=m.l2, fit_intercept=m.fit_intercept, constraint=c.set,
+            radius=c.radius, lower=c.lower, upper=c.upper, rule=s.rule, base=s.base, horizon=s.horizon,
+            grad_bound=None if s.grad_bound == "auto" else float(s.grad_bound), averaging=a.scheme,
+            halflife=a.halflife, kernel=m.kernel)
+
+    def resolved(self) -> dict:
+        """Every setting with defaults filled in, as plain data."""
+        return self.model_dump(mode="json")
+
+
+def parse_config(text: str, source: str = "<config>") -> Config:
+    """Parse and validate TOML text."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"not valid TOML: {exc}", where=source) from None
+    return config_from_dict(data, source)
+
+
+def config_from_dict(data: dict, source: str = "<config>") -> Config:
+    try:
+        return Config.model_validate(data)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        where = ".".join(str(p) for p in err["loc"]) or source
+        msg = err["msg"]
+        if err["type"] == "extra_forbidden":
+            msg = "unknown key"
+        elif err["type"] == "literal_error":
+            msg = f"invalid value {err.get('input')!r}; " + msg.replace("Input should be", "valid values are")
+        if "ctx" in err and isinstance(err["ctx"].get("error"), InvalidSettings):
+            inner = err["ctx"]["error"]
+            raise ConfigError(inner.message, where=inner.where) from None
+        raise ConfigError(msg, where=where) from None
+    except InvalidSettings as exc:
+        raise ConfigError(exc.message, where=exc.where) from None
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a config file."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(f"cannot read config: {exc.strerror}", where=str(p)) from None
+    return parse_config(text, source=str(p))

@@ -1,0 +1,252 @@
+"""The engine: applies validated events to a model and its monitor, in order, deterministically.
+
+The live service and ``trimtab replay`` run this same code; only the source of the events differs.
+For each event, in order:
+
+* an event without a target is scored only;
+* a learning event whose id falls in the held-out share (a stable hash of the id, so replay and
+  live agree) is scored and kept in the monitor's window, never learned;
+* any other learning event is scored with the serving iterate (its loss is the *progressive loss*)
+  and then learned;
+* every ``check_every`` learned events the monitor checks and may roll back or restart.
+
+Because every step is deterministic, the same events in the same order under the same config give
+a bit-identical state, however they are chunked.
+"""
+
+from __future__ import annotations
+
+import pickle
+from collections import deque
+from dataclasses import dataclass
+
+import numpy as np
+
+from models import LinearModel, Outcome, Rows, stable_hash64
+
+from .config import Config
+from .events import Event, EventValidator
+from .monitor import Monitor
+
+__all__ = ["Applied", "Engine", "PreparedBatch", "holdout_fraction"]
+
+_TWO64 = float(2**64)
+
+
+def holdout_fraction(event_id: str) -> float:
+    """A number in [0, 1) fixed by the id: events below ``holdout_share`` are held out."""
+    return stable_hash64("holdout\x1f" + event_id) / _TWO64
+
+
+@dataclass
+class PreparedBatch:
+    """Events mapped to model coordinates, ready for :meth:`Engine.apply` (a pure function of the
+    events and the config, so it can be built in another thread or process)."""
+
+    ids: list
+    ts: np.ndarray
+    rows: Rows
+    y: np.ndarray
+    mode: np.ndarray  # 0 score only, 1 learn, 2 held out
+
+    def __len__(self) -> int:
+        return len(self.ids)
+
+
+@dataclass
+class Applied:
+    """What :meth:`Engine.apply` did: per-event predictions and outcome codes, and counts."""
+
+    outcome: Outcome
+    first_event: int
+    learned: int
+    held_out: int
+    scored: int
+    refused: int
+    actions: list
+
+
+class Engine:
+    """Owns a model and its monitor; the only code that changes learned state.
+
+    Parameters
+    ----------
+    config
+        The validated config.
+    trace_limit
+        How many check records to keep for plots and the dashboard (``None``: all, for replay).
+    """
+
+    def __init__(self, config: Config, *, trace_limit: int | None = 10_000) -> None:
+        self.config = config
+        self.model = LinearModel(config.model_spec())
+        self.monitor = Monitor(config.monitor, self.model) if config.monitor.enabled else None
+        self.validator = EventValidator(config)
+        self._share = config.monitor.holdout_share if config.monitor.enabled else 0.0
+        self._check_every = config.monitor.check_every
+        self._binary = config.model.task == "binary"
+        self.events = 0
+        self.learned = 0
+        self.held_out = 0
+        self.scored = 0
+        self.refused = 0
+        self.rejected = 0
+        self._loss_sum = 0.0
+        self._loss_n = 0
+        self._since_check = 0
+        self._seg_loss = 0.0
+        self._seg_n = 0
+        self.trace: deque = deque(maxlen=trace_limit)
+
+    # ---------------------------------------------------------------- serving
+    @property
+    def serving(self) -> str:
+        """The iterate scores come from now."""
+        if self.monitor is not None:
+            return self.monitor.serving
+        return "raw" if self.config.monitor.serve == "raw" else "averaged"
+
+    @property
+    def state_digest(self) -> str:
+        return self.model.digest
+
+    @property
+    def progressive_loss(self) -> float | None:
+        return self._loss_sum / self._loss_n if self._loss_n else None
+
+    def score(self, features: list[dict], iterate: str | None = None) -> tuple[np.ndarray, str]:
+        """Predictions for feature dicts (validated upstream) and the iterate used."""
+        it = iterate or self.serving
+        return self.model.predict_rows(self.model.rows(features), it), it
+
+    # ---------------------------------------------------------------- learning
+    def prepare(self, events: list[Event]) -> PreparedBatch:
+        """Map validated events to rows and decide each event's mode (no state changes)."""
+        n = len(events)
+        rows = self.model.rows([e.features for e in events])
+        y = np.full(n, np.nan)
+        mode = np.zeros(n, dtype=np.int8)
+        ts = np.full(n, np.nan)
+        share = self._share
+        for k, e in enumerate(events):
+            if e.ts is not None:
+                ts[k] = e.ts
+            if e.target is not None:
+                y[k] = e.target
+                mode[k] = 2 if share > 0.0 and holdout_fraction(e.id) < share else 1
+        return PreparedBatch([e.id for e in events], ts, rows, y, mode)
+
+    def apply_events(self, events: list[Event]) -> Applied:
+        return self.apply(self.prepare(events))
+
+    def apply(self, batch: PreparedBatch) -> Applied:
+        """Apply a prepared batch in order; monitor checks fall at the same learned counts however
+        the events are chunked."""
+        n = len(batch)
+        out = Outcome.empty(n)
+        mode, y, rows = batch.mode, batch.y, batch.rows
+        first = self.events
+        actions = []
+        i = 0
+        while i < n:
+            budget = self._check_every - self._since_check
+            nxt = self.model.process(rows, y, mode, out, serve=self.serving, start=i, max_learn=budget)
+            seg = slice(i, nxt)
+            learn = mode[seg] == 1
+            self._seg_loss += float(np.sum(out.loss[seg][learn]))
+            self._seg_n += int(np.count_nonzero(learn))
+            self._since_check += int(np.count_nonzero(learn))
+            refused = int(np.count_nonzero(out.code[seg] == 2))
+            if self.monitor is not None:
+                hold = np.flatnonzero(mode[seg] == 2) + i
+                if len(hold):
+                    self.monitor.add_holdout(rows.take(hold), y[hold], hold + first)
+                if refused:
+                    self.monitor.note_refused(refused)
+            self.refused += refused
+            i = nxt
+            if self._since_check >= self._check_every:
+                self._since_check = 0
+                record = self._check(first + i - 1, batch.ts[i - 1])
+                if record.get("action"):
+                    actions.append(record)
+        learned = int(np.count_nonzero(mode == 1))
+        held = int(np.count_nonzero(mode == 2))
+        self.events += n
+        self.learned += learned
+        self.held_out += held
+        self.scored += n - learned - held
+        lossed = out.loss[mode == 1]
+        self._loss_sum += float(np.sum(lossed))
+        self._loss_n += len(lossed)
+        return Applied(out, first, learned, held, n - learned - held, int(np.count_nonzero(out.code == 2)), actions)
+
+    def _check(self, event: int, ts: float) -> dict:
+        ts = None if np.isnan(ts) else float(ts)
+        record = {"event": event}
+        if self.monitor is not None:
+            record = self.monitor.check(self.model, event, ts)
+        else:
+            record["serving"] = self.serving
+        record["progressive_loss"] = self._seg_loss / self._seg_n if self._seg_n else None
+        record["step"] = self.model.last_step
+        record["step_scale"] = self.model.step_scale
+        record.setdefault("distance", self.model.distance())
+        self._seg_loss = 0.0
+        self._seg_n = 0
+        self.trace.append(record)
+        return record
+
+    def note_rejected(self, rejected: int, total: int, ts: float | None = None) -> None:
+        """Count input rejected at the boundary (it never reached the model)."""
+        self.rejected += rejected
+        if self.monitor is not None:
+            self.monitor.note_rejected(rejected, total, self.events, ts)
+
+    def rollback(self, reason: str = "operator request") -> None:
+        if self.monitor is not None:
+            self.monitor.manual_rollback(self.model, self.events, reason)
+        else:
+            self.model.rollback(self.config.monitor.rollback_shrink)
+
+    # ---------------------------------------------------------------- reporting
+    @property
+    def incidents(self) -> list[dict]:
+        return list(self.monitor.incidents) if self.monitor is not None else []
+
+    def holdout_losses(self) -> dict:
+        """Held-out loss of both iterates on the current window (``None`` without a monitor)."""
+        if self.monitor is None or len(self.monitor.window) == 0:
+            return {"raw": None, "averaged": None}
+        rows, y, _ = self.monitor.window.rows()
+        raw, avg = self.monitor._losses(self.model, rows, y)
+        return {"raw": raw, "averaged": avg}
+
+    def counters(self) -> dict:
+        return {"events": self.events, "learned": self.learned, "held_out": self.held_out, "scored": self.scored,
+                "refused": self.refused, "rejected": self.rejected, "progressive_loss": self.progressive_loss}
+
+    # ---------------------------------------------------------------- state
+    def to_bytes(self) -> bytes:
+        """Model, monitor and counters; :meth:`from_bytes` restores an engine that continues identically."""
+        state = {
+            "model": self.model.to_bytes(),
+            "monitor": self.monitor.to_bytes() if self.monitor is not None else None,
+            "counters": {k: getattr(self, k) for k in ("events", "learned", "held_out", "scored", "refused",
+                                                        "rejected", "_loss_sum", "_loss_n", "_since_check",
+                                                        "_seg_loss", "_seg_n")},
+            "trace": list(self.trace),
+        }
+        return pickle.dumps(state, protocol=5)
+
+    @classmethod
+    def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:
+        state = pickle.loads(blob)
+        engine = cls(config, trace_limit=trace_limit)
+        engine.model = LinearModel.from_bytes(state["model"])
+        if engine.monitor is not None and state["monitor"] is not None:
+            engine.monitor.load_bytes(state["monitor"])
+        for k, v in state["counters"].items():
+            setattr(engine, k, v)
+        engine.trace.extend(state["trace"])
+        return engine

@@ -1,0 +1,264 @@
+"""The event format at the boundary: validation of parsed events and NDJSON/CSV line parsing.
+
+An event (ARCHITECTURE section 3) is ``{"id": str, "ts": epoch seconds | RFC 3339, "features":
+{name: number | string | bool | null}, "target": number | 0/1/true/false}``. Validation checks
+every rule once, here; anything that passes is trusted by the engine and the model. A rejected
+event raises :class:`models.InvalidInput` whose ``where`` says where (``line 17.features.ambient_c``
+or ``events[3].target``) and whose message says why. The rules:
+
+* the event is a JSON object with only the keys ``id``, ``ts``, ``features``, ``target``;
+* ``id`` is a non-empty string of at most 200 characters, required when ``target`` is present;
+* ``ts`` is a finite number or an RFC 3339 string;
+* ``features`` is an object; a declared numeric feature is a finite number, a boolean or null; a
+  declared categorical feature is a string, integer, boolean or null; an undeclared feature is
+  rejected or dropped (``features.unknown``);
+* ``target`` is a finite number (regression) or 0/1/true/false (binary);
+* a line is at most ``service.max_line_bytes`` bytes, valid UTF-8 and valid JSON (NaN and
+  Infinity literals are not JSON).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+from datetime import datetime
+from typing import NamedTuple
+
+import orjson
+
+from models import InvalidInput
+
+from .config import Config
+
+__all__ = ["Event", "EventValidator", "Rejection", "parse_csv_lines", "parse_ndjson"]
+
+_TOP_KEYS = frozenset(("id", "ts", "features", "target"))
+_MAX_ID = 200
+
+
+class Event(NamedTuple):
+    """A validated event (features hold only declared names, values already of the right kind)."""
+
+    id: str | None
+    ts: float | None
+    features: dict
+    target: float | None
+
+
+class Rejection(NamedTuple):
+    where: str
+    reason: str
+
+    def as_dict(self) -> dict:
+        return {"where": self.where, "reason": self.reason}
+
+
+def _kind(v) -> str:
+    if v is None:
+        return "null"
+    if isinstance(v, bool):
+        return "a boolean"
+    if isinstance(v, (int, float)):
+        return "a number"
+    if isinstance(v, str):
+        return "a string"
+    if isinstance(v, list):
+        return "an array"
+    if isinstance(v, dict):
+        return "an object"
+    return type(v).__name__
+
+
+def parse_ts(v, where: str) -> float | None:
+    """Epoch seconds from a number or an RFC 3339 string."""
+    if v is None:
+        return None
+    if isinstance(v, bool):
+        raise InvalidInput(f"expected epoch seconds or an RFC 3339 string, got {_kind(v)}", where=where)
+    if isinstance(v, (int, float)):
+        x = float(v)
+        if not math.isfinite(x):
+            raise InvalidInput("not a finite number", where=where)
+        return x
+    if isinstance(v, str):
+        try:
+            dt = datetime.fromisoformat(v)
+        except ValueError:
+            raise InvalidInput(f"not an RFC 3339 timestamp: {v[:40]!r}", where=where) from None
+        if dt.tzinfo is None:
+            raise InvalidInput("RFC 3339 timestamp needs a UTC offset (e.g. Z)", where=where)
+        return dt.timestamp()
+    raise InvalidInput(f"expected epoch seconds or an RFC 3339 string, got {_kind(v)}", where=where)
+
+
+class EventValidator:
+    """Validates parsed events against a config's declared features and task."""
+
+    def __init__(self, config: Config) -> None:
+        f = config.features
+        self.numeric = frozenset(f.numeric)
+        self.categorical = frozenset(f.categorical)
+        self.reject_unknown = f.unknown == "reject"
+        self.binary = config.model.task == "binary"
+        self.max_line = config.service.max_line_bytes
+
+    def target(self, v, where: str) -> float:
+        if self.binary:
+            if v is True or v is False:
+                return 1.0 if v else 0.0
+            if isinstance(v, (int, float)) and v in (0, 1):
+                return float(v)
+            raise InvalidInput(f"binary target must be 0, 1, true or false, got {_repr(v)}", where=where)
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise InvalidInput(f"expected a number, got {_kind(v)}", where=where)
+        x = float(v)
+        if not math.isfinite(x):
+            raise InvalidInput("not a finite number", where=where)
+        return x
+
+    def validate(self, obj, where: str = "") -> Event:
+        """Check one parsed event; raise :class:`InvalidInput` naming where and why."""
+        p = f"{where}." if where else ""
+        if not isinstance(obj, dict):
+            raise InvalidInput(f"an event must be a JSON object, got {_kind(obj)}", where=where or "event")
+        extra = obj.keys() - _TOP_KEYS
+        if extra:
+            raise InvalidInput("unknown key (valid keys: features, id, target, ts)", where=f"{p}{sorted(extra)[0]}")
+        feats = obj.get("features")
+        if not isinstance(feats, dict):
+            msg = "required" if feats is None else f"expected an object, got {_kind(feats)}"
+            raise InvalidInput(msg, where=f"{p}features")
+        ident = obj.get("id")
+        if ident is not None and (not isinstance(ident, str) or not ident or len(ident) > _MAX_ID):
+            raise InvalidInput(f"expected a non-empty string of at most {_MAX_ID} characters, got {_kind(ident)}",
+                               where=f"{p}id")
+        target = obj.get("target")
+        if target is not None:
+            target = self.target(target, f"{p}target")
+            if ident is None:
+                raise InvalidInput("required for an event with a target (deduplication and holdout use it)",
+                                   where=f"{p}id")
+        ts = parse_ts(obj.get("ts"), f"{p}ts")
+        clean = {}
+        for name, v in feats.items():
+            if name in self.numeric:
+                if v is None or v is True or v is False:
+                    clean[name] = None if v is None else float(v)
+                elif isinstance(v, (int, float)):
+                    x = float(v)
+                    if not math.isfinite(x):
+                        raise InvalidInput("not a finite number", where=f"{p}features.{name}")
+                    clean[name] = x
+                else:
+                    raise InvalidInput(f"expected a number, got {_kind(v)}", where=f"{p}features.{name}")
+            elif name in self.categorical:
+                if v is None or isinstance(v, (str, bool, int)):
+                    clean[name] = v
+                elif isinstance(v, float) and v.is_integer():
+                    clean[name] = int(v)
+                else:
+                    raise InvalidInput(f"expected a string, integer or boolean, got {_kind(v)}",
+                                       where=f"{p}features.{name}")
+            elif self.reject_unknown:
+                raise InvalidInput("unknown feature (not declared in the config's [features])",
+                                   where=f"{p}features.{_short(name)}")
+        return Event(ident, ts, clean, target)
+
+    def parse_line(self, line: bytes, where: str) -> Event:
+        """Parse and validate one NDJSON line."""
+        if len(line) > self.max_line:
+            raise InvalidInput(f"line is {len(line)} bytes, over the {self.max_line}-byte limit", where=where)
+        try:
+            obj = orjson.loads(line)
+        except orjson.JSONDecodeError as exc:
+            raise InvalidInput(f"not valid JSON: {_json_reason(exc)}", where=where) from None
+        return self.validate(obj, where)
+
+
+def parse_ndjson(data: bytes, validator: EventValidator, first_line: int = 1):
+    """Split NDJSON bytes into valid events and rejections; blank lines are skipped.
+
+    Returns ``(events, rejections, line_numbers)``; ``line_numbers[k]`` is the 1-based line of
+    ``events[k]``.
+    """
+    events: list[Event] = []
+    lines: list[int] = []
+    rejected: list[Rejection] = []
+    for k, line in enumerate(data.split(b"\n")):
+        if not line.strip():
+            continue
+        where = f"line {first_line + k}"
+        try:
+            events.append(validator.parse_line(line, where))
+            lines.append(first_line + k)
+        except InvalidInput as exc:
+            rejected.append(Rejection(exc.where, exc.message))
+    return events, rejected, lines
+
+
+def parse_csv_lines(text_lines, validator: EventValidator, numeric: frozenset | None = None):
+    """Parse CSV (a header row, then one event per row) into ``(events, rejections)``.
+
+    The columns ``id``, ``ts``, ``target`` are reserved; every other column is a feature. Empty
+    cells are missing values; declared numeric features are converted with ``float``.
+    """
+    reader = csv.reader(text_lines)
+    header = next(reader, None)
+    events, rejected = [], []
+    if header is None:
+        return events, rejected
+    numeric = validator.numeric if numeric is None else numeric
+    for k, row in enumerate(reader, start=2):
+        where = f"line {k}"
+        if len(row) != len(header):
+            rejected.append(Rejection(where, f"expected {len(header)} columns, got {len(row)}"))
+            continue
+        obj: dict = {"features": {}}
+        try:
+            for name, cell in zip(header, row):
+                if name in ("id", "ts", "target"):
+                    if cell != "":
+                        obj[name] = cell if name == "id" else _csv_number(cell, f"{where}.{name}", name == "ts")
+                elif cell == "":
+                    obj["features"][name] = None
+                elif name in numeric:
+                    obj["features"][name] = _csv_number(cell, f"{where}.features.{name}", False)
+                else:
+                    obj["features"][name] = cell
+            events.append(validator.validate(obj, where))
+        except InvalidInput as exc:
+            rejected.append(Rejection(exc.where, exc.message))
+    return events, rejected
+
+
+def _csv_number(cell: str, where: str, allow_text: bool):
+    try:
+        x = float(cell)
+    except ValueError:
+        if allow_text:
+            return cell
+        raise InvalidInput(f"expected a number, got {cell[:40]!r}", where=where) from None
+    if not math.isfinite(x):
+        raise InvalidInput("not a finite number", where=where)
+    return x
+
+
+def _repr(v) -> str:
+    return _kind(v) if isinstance(v, (dict, list, str)) or v is None else repr(v)
+
+
+def _short(name: str) -> str:
+    return name if len(name) <= 64 else name[:61] + "..."
+
+
+def _json_reason(exc: orjson.JSONDecodeError) -> str:
+    msg = str(exc)
+    if "utf-8" in msg.lower():
+        return "invalid UTF-8"
+    return msg.split(":")[0][:120]
+
+
+def csv_text_lines(data: bytes):
+    """Decode CSV bytes for :func:`parse_csv_lines` (undecodable bytes become U+FFFD)."""
+    return io.StringIO(data.decode("utf-8", "replace"), newline="")
