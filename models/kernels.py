@@ -51,7 +51,8 @@ N_SCALARS = 16
 
 #: Rebase the lazy state when the scale ``a`` drops below this (rounding stays ~1e-10 relative).
 REBASE_BELOW = 1e-6
-#: Recompute ``||v||^2`` exactly every this many updates so that rounding cannot accumulate.
+#: Recompute ``||v||^2`` exactly every this many updates so that rounding cannot accumulate
+#: (a power of two: the test is a bit mask, a float modulo costs more than the rest of an update).
 NORM_REFRESH = 65536
 #: Divide the exponential-average accumulators down when the newest weight passes this.
 EXP_RENORM_ABOVE = 1e150
@@ -59,10 +60,13 @@ EXP_RENORM_ABOVE = 1e150
 # per-event outcome codes written by the kernels
 SCORED, LEARNED, REFUSED = 0, 1, 2
 
-_jit = numba.njit(cache=True, nogil=True, fastmath=False)
+# error_model="numpy": a division by zero gives inf/nan (caught by the finiteness checks) instead of
+# a Python exception, which spares a branch on every division in the hot loop
+_jit = numba.njit(cache=True, nogil=True, fastmath=False, error_model="numpy")
+_inline = numba.njit(cache=True, nogil=True, fastmath=False, error_model="numpy", inline="always")
 
 
-@_jit
+@_inline
 def _loss(code, delta, m, y):
     if code == 0:
         r = m - y
@@ -76,7 +80,7 @@ def _loss(code, delta, m, y):
     return math.log1p(math.exp(m)) - y * m
 
 
-@_jit
+@_inline
 def _dloss(code, delta, m, y):
     if code == 0:
         return m - y
@@ -86,7 +90,7 @@ def _dloss(code, delta, m, y):
     return 0.5 * (1.0 + math.tanh(0.5 * m)) - y
 
 
-@_jit
+@_inline
 def _step(prm, sc, t, gnorm):
     rule = int(prm[P_RULE])
     if rule == 0:
@@ -118,25 +122,33 @@ def _gather(prm, mean, std, indices, values, lo, hi, xs):
     return sq
 
 
-@_jit
-def _margins(lazy, vec, acc, sc, indices, lo, hi, xs):
-    """Raw and averaged margins of one event (averaged = raw before the first update)."""
+@_inline
+def _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs):
+    """Gather one event's scaled values into ``xs`` and return its raw and averaged margins,
+    ``sum x^2`` and ``<v, x>`` in one pass (both iterates' coefficients share a cache line)."""
+    nnum = int(prm[P_NNUM])
+    sq = 0.0
     dv = 0.0
     da = 0.0
     for k in range(lo, hi):
         j = indices[k]
-        dv += vec[j] * xs[k - lo]
-        da += acc[j] * xs[k - lo]
+        x = values[k]
+        if j < nnum:
+            x = (x - mean[j]) / std[j]
+        xs[k - lo] = x
+        sq += x * x
+        dv += st[j, 0] * x
+        da += st[j, 1] * x
     if lazy:
         raw = sc[S_A] * dv + sc[S_B]
         avg = (da + sc[S_ACC] * dv + sc[S_SB]) / sc[S_Z] if sc[S_Z] > 0.0 else raw
     else:
         raw = dv + sc[S_B]
         avg = da + sc[S_SB] if sc[S_Z] > 0.0 else raw
-    return raw, avg, dv
+    return raw, avg, sq, dv
 
 
-@_jit
+@_inline
 def _gradient_bound(prm, sc, g, sq, wx, wnorm2):
     """Record ``||grad||^2`` of this event (loss part + l2 part) and return the current ``G``."""
     l2 = prm[P_L2]
@@ -144,13 +156,12 @@ def _gradient_bound(prm, sc, g, sq, wx, wnorm2):
     icpt = prm[P_INTERCEPT]
     gn2 = g * g * (sq + icpt) + 2.0 * g * l2 * (wx + icpt * b) + l2 * l2 * (wnorm2 + b * b)
     gn2 = max(gn2, 0.0)
-    sc[S_LASTG] = math.sqrt(gn2)
     if prm[P_GFIX] > 0.0:
         return prm[P_GFIX], gn2
     return math.sqrt((sc[S_GSQ] + gn2) / (sc[S_GN] + 1.0)), gn2
 
 
-@_jit
+@_inline
 def _record_average(sc, prm):
     """Advance the averaging weights by one update of the raw iterate ``(a * v, b)``."""
     sc[S_TAVG] += 1.0
@@ -167,60 +178,62 @@ def _record_average(sc, prm):
 
 
 @_jit
-def lazy_rebase(vec, acc, sc):
+def lazy_rebase(st, sc):
     """Fold ``A v`` into ``U`` and ``a`` into ``v``: same iterates, ``a = 1``, ``A = 0``."""
     a = sc[S_A]
     big_a = sc[S_ACC]
     nv2 = 0.0
-    for j in range(vec.shape[0]):
-        acc[j] += big_a * vec[j]
-        vec[j] *= a
-        nv2 += vec[j] * vec[j]
+    for j in range(st.shape[0]):
+        st[j, 1] += big_a * st[j, 0]
+        st[j, 0] *= a
+        nv2 += st[j, 0] * st[j, 0]
     sc[S_ACC] = 0.0
     sc[S_A] = 1.0
     sc[S_NV2] = nv2
 
 
 @_jit
-def _exp_renorm(lazy, acc, sc):
+def _exp_renorm(lazy, st, sc):
     c = sc[S_CEXP]
     if lazy:
-        for j in range(acc.shape[0]):
-            acc[j] /= c
+        for j in range(st.shape[0]):
+            st[j, 1] /= c
         sc[S_ACC] /= c
         sc[S_SB] /= c
     sc[S_Z] /= c
     sc[S_CEXP] = 1.0
 
 
-@_jit
-def _learn_lazy(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
+@_inline
+def _learn_lazy(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
     g = _dloss(int(prm[P_LOSS]), prm[P_DELTA], raw, y)
     a = sc[S_A]
     gnorm, gn2 = _gradient_bound(prm, sc, g, sq, a * dv, a * a * sc[S_NV2])
     t = sc[S_TSTEP] + 1.0
     eta = _step(prm, sc, t, gnorm)
     shrink = max(1.0 - eta * prm[P_L2], 0.0)
+    zero = False
     if a * shrink < REBASE_BELOW:
-        lazy_rebase(vec, acc, sc)
+        lazy_rebase(st, sc)
         if shrink == 0.0:
-            for j in range(vec.shape[0]):
-                vec[j] = 0.0
-            sc[S_NV2] = 0.0
-            sc[S_B] = 0.0
-            shrink = 1.0  # the full shrink is applied: w = 0
+            # the full shrink makes w = 0; v is zeroed only once the update is accepted
+            zero = True
+            shrink = 1.0
         a = 1.0
     new_a = a * shrink
-    b = sc[S_B] * shrink
+    b = 0.0 if zero else sc[S_B] * shrink
     if prm[P_INTERCEPT] > 0.0:
         b -= eta * g
-    nv2 = sc[S_NV2]
+    nv2 = 0.0 if zero else sc[S_NV2]
     step = eta * g / new_a
     for k in range(lo, hi):
         j = indices[k]
-        nv = vec[j] - step * xs[k - lo]
-        nv2 += nv * nv - vec[j] * vec[j]
+        old = 0.0 if zero else st[j, 0]
+        nv = old - step * xs[k - lo]
+        nv2 += nv * nv - old * old
         cand[k - lo] = nv
+    # a NaN or infinite candidate makes the running sum of squares NaN or infinite: one test for all
+    finite = math.isfinite(nv2)
     nv2 = max(nv2, 0.0)
     cons = int(prm[P_CONS])
     if cons == 1:
@@ -239,17 +252,21 @@ def _learn_lazy(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
                 nv2 += nv * nv - cand[k - lo] * cand[k - lo]
                 cand[k - lo] = nv
         b = min(max(b, lo_b), hi_b)
-    ok = math.isfinite(new_a) and math.isfinite(b) and math.isfinite(nv2) and math.isfinite(eta) and new_a > 0.0
-    for k in range(lo, hi):
-        ok = ok and math.isfinite(cand[k - lo])
+    # a gradient whose squared norm overflows would make G infinite for good (every later step 0)
+    ok = (finite and math.isfinite(new_a) and math.isfinite(b) and math.isfinite(nv2) and math.isfinite(eta)
+          and new_a > 0.0 and math.isfinite(gn2))
     if not ok:
         sc[S_REFUSED] += 1.0
         return False
+    if zero:
+        # after the rebase A = 0, so U alone holds the weighted sum and zeroing v leaves it intact
+        for j in range(st.shape[0]):
+            st[j, 0] = 0.0
     big_a = sc[S_ACC]
     for k in range(lo, hi):
         j = indices[k]
-        acc[j] -= big_a * (cand[k - lo] - vec[j])
-        vec[j] = cand[k - lo]
+        st[j, 1] -= big_a * (cand[k - lo] - st[j, 0])
+        st[j, 0] = cand[k - lo]
     sc[S_A] = new_a
     sc[S_B] = b
     sc[S_NV2] = nv2
@@ -258,34 +275,35 @@ def _learn_lazy(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
     sc[S_SB] += c * b
     _finish_update(sc, eta, gn2)
     if sc[S_CEXP] > EXP_RENORM_ABOVE:
-        _exp_renorm(True, acc, sc)
-    if sc[S_A] < REBASE_BELOW or sc[S_NUPD] % NORM_REFRESH == 0.0:
-        lazy_rebase(vec, acc, sc)
+        _exp_renorm(True, st, sc)
+    if sc[S_A] < REBASE_BELOW or (int(sc[S_NUPD]) & (NORM_REFRESH - 1)) == 0:
+        lazy_rebase(st, sc)
     return True
 
 
-@_jit
+@_inline
 def _finish_update(sc, eta, gn2):
     sc[S_TSTEP] += 1.0
     sc[S_NUPD] += 1.0
     sc[S_GSQ] += gn2
     sc[S_GN] += 1.0
     sc[S_LASTETA] = eta
+    sc[S_LASTG] = math.sqrt(gn2)
 
 
-@_jit
-def _learn_dense(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
+@_inline
+def _learn_dense(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
     g = _dloss(int(prm[P_LOSS]), prm[P_DELTA], raw, y)
-    d = vec.shape[0]
+    d = st.shape[0]
     wnorm2 = 0.0
     for j in range(d):
-        wnorm2 += vec[j] * vec[j]
+        wnorm2 += st[j, 0] * st[j, 0]
     gnorm, gn2 = _gradient_bound(prm, sc, g, sq, dv, wnorm2)
     t = sc[S_TSTEP] + 1.0
     eta = _step(prm, sc, t, gnorm)
     shrink = max(1.0 - eta * prm[P_L2], 0.0)
     for j in range(d):
-        cand[j] = vec[j] * shrink
+        cand[j] = st[j, 0] * shrink
     b = sc[S_B] * shrink
     if prm[P_INTERCEPT] > 0.0:
         b -= eta * g
@@ -306,7 +324,7 @@ def _learn_dense(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
         for j in range(d):
             cand[j] = min(max(cand[j], prm[P_LOWER]), prm[P_UPPER])
         b = min(max(b, prm[P_LOWER]), prm[P_UPPER])
-    ok = math.isfinite(b) and math.isfinite(eta)
+    ok = math.isfinite(b) and math.isfinite(eta) and math.isfinite(gn2)
     for j in range(d):
         ok = ok and math.isfinite(cand[j])
     if not ok:
@@ -315,18 +333,18 @@ def _learn_dense(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
     c = _record_average(sc, prm)
     r_avg = c / sc[S_Z]
     for j in range(d):
-        vec[j] = cand[j]
-        acc[j] += r_avg * (cand[j] - acc[j])
+        st[j, 0] = cand[j]
+        st[j, 1] += r_avg * (cand[j] - st[j, 1])
     sc[S_B] = b
     sc[S_SB] += r_avg * (b - sc[S_SB])
     _finish_update(sc, eta, gn2)
     if sc[S_CEXP] > EXP_RENORM_ABOVE:
-        _exp_renorm(False, acc, sc)
+        _exp_renorm(False, st, sc)
     return True
 
 
 @_jit
-def _process(lazy, vec, acc, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
+def _process(lazy, st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
              out_pred, out_loss, out_code, start, stop, max_learn, xs, cand):
     loss_code = int(prm[P_LOSS])
     delta = prm[P_DELTA]
@@ -335,8 +353,7 @@ def _process(lazy, vec, acc, sc, prm, mean, std, indptr, indices, values, y, mod
     i = start
     while i < stop and learned < max_learn:
         lo, hi = indptr[i], indptr[i + 1]
-        sq = _gather(prm, mean, std, indices, values, lo, hi, xs)
-        raw, avg, dv = _margins(lazy, vec, acc, sc, indices, lo, hi, xs)
+        raw, avg, sq, dv = _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs)
         m = avg if serve == 1 else raw
         out_pred[i] = 0.5 * (1.0 + math.tanh(0.5 * m)) if binary else m
         out_code[i] = SCORED
@@ -344,9 +361,9 @@ def _process(lazy, vec, acc, sc, prm, mean, std, indptr, indices, values, y, mod
             out_loss[i] = _loss(loss_code, delta, m, y[i])
             if mode[i] == 1:
                 if lazy:
-                    done = _learn_lazy(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
+                    done = _learn_lazy(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
                 else:
-                    done = _learn_dense(vec, acc, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
+                    done = _learn_dense(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
                 out_code[i] = LEARNED if done else REFUSED
                 learned += 1
         else:
@@ -356,27 +373,27 @@ def _process(lazy, vec, acc, sc, prm, mean, std, indptr, indices, values, y, mod
 
 
 @_jit
-def lazy_process(vec, acc, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
+def lazy_process(st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
                  out_pred, out_loss, out_code, start, stop, max_learn, xs, cand):
     """Run events ``start..stop`` through the lazy kernel; stop after ``max_learn`` learning events.
 
     ``mode[i]``: 0 score only, 1 score and learn, 2 score and compute the loss but do not learn
     (held-out events). ``serve``: 0 raw iterate, 1 averaged. Returns the index of the next event.
     """
-    return _process(True, vec, acc, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
+    return _process(True, st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
                     out_pred, out_loss, out_code, start, stop, max_learn, xs, cand)
 
 
 @_jit
-def dense_process(vec, acc, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
+def dense_process(st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
                   out_pred, out_loss, out_code, start, stop, max_learn, xs, cand):
     """Same contract as :func:`lazy_process` on the dense representation."""
-    return _process(False, vec, acc, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
+    return _process(False, st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
                     out_pred, out_loss, out_code, start, stop, max_learn, xs, cand)
 
 
 @_jit
-def score_rows(lazy, vec, acc, sc, prm, mean, std, indptr, indices, values, iterate, out):
+def score_rows(lazy, st, sc, prm, mean, std, indptr, indices, values, iterate, out):
     """Margins of rows ``0..len(out)`` with the raw (``iterate=0``) or averaged (1) iterate."""
     n = out.shape[0]
     width = 0
@@ -385,24 +402,23 @@ def score_rows(lazy, vec, acc, sc, prm, mean, std, indptr, indices, values, iter
     xs = np.empty(max(width, 1))
     for i in range(n):
         lo, hi = indptr[i], indptr[i + 1]
-        _gather(prm, mean, std, indices, values, lo, hi, xs)
-        raw, avg, _ = _margins(lazy, vec, acc, sc, indices, lo, hi, xs)
+        raw, avg, _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs)
         out[i] = avg if iterate == 1 else raw
 
 
 @_jit
-def materialize(lazy, vec, acc, sc, iterate, out):
+def materialize(lazy, st, sc, iterate, out):
     """Write the raw (0) or averaged (1) coefficient vector into ``out``; return the intercept."""
-    d = vec.shape[0]
+    d = st.shape[0]
     if iterate == 0 or sc[S_Z] <= 0.0:
         a = sc[S_A] if lazy else 1.0
         for j in range(d):
-            out[j] = a * vec[j]
+            out[j] = a * st[j, 0]
         return sc[S_B]
     if lazy:
         for j in range(d):
-            out[j] = (acc[j] + sc[S_ACC] * vec[j]) / sc[S_Z]
+            out[j] = (st[j, 1] + sc[S_ACC] * st[j, 0]) / sc[S_Z]
         return sc[S_SB] / sc[S_Z]
     for j in range(d):
-        out[j] = acc[j]
+        out[j] = st[j, 1]
     return sc[S_SB]

@@ -64,8 +64,9 @@ class LinearModel:
         self._prm = spec.kernel_params()
         self._lazy = spec.kernel == "lazy"
         d = spec.dim()
-        self._vec = np.zeros(d)
-        self._acc = np.zeros(d)
+        # column 0: the raw coefficients (lazy: v with w = a v), column 1: the averaging accumulator
+        # (lazy: U; dense: the average); interleaved so an event touches one cache line per coordinate
+        self._st = np.zeros((d, 2))
         self._sc = np.zeros(K.N_SCALARS)
         self._sc[[K.S_A, K.S_CEXP, K.S_STEPSCALE]] = 1.0
         n = len(spec.numeric)
@@ -87,7 +88,7 @@ class LinearModel:
 
     @property
     def dim(self) -> int:
-        return self._vec.shape[0]
+        return self._st.shape[0]
 
     @property
     def n_updates(self) -> int:
@@ -152,7 +153,7 @@ class LinearModel:
     def score_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Margins (scores before the link) of ``rows`` with the raw or averaged iterate."""
         out = np.zeros(len(rows))
-        K.score_rows(self._lazy, self._vec, self._acc, self._sc, self._prm, self._mean, self._std,
+        K.score_rows(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
                      rows.indptr, rows.indices, rows.values, _iterate(iterate), out)
         return out
 
@@ -226,7 +227,7 @@ class LinearModel:
         if self._lazy and width > self._cand.shape[0]:
             self._cand = np.zeros(2 * width)
         fn = K.lazy_process if self._lazy else K.dense_process
-        return fn(self._vec, self._acc, self._sc, self._prm, self._mean, self._std, ip, rows.indices,
+        return fn(self._st, self._sc, self._prm, self._mean, self._std, ip, rows.indices,
                   rows.values, y, mode, serve_code, out.pred, out.loss, out.code, start, stop, max_learn,
                   self._xs, self._cand)
 
@@ -253,7 +254,7 @@ class LinearModel:
     def weights(self, iterate: str = "averaged") -> tuple[np.ndarray, float]:
         """Coefficients in the model's (scaled) coordinates and the intercept, as a copy."""
         out = np.zeros(self.dim)
-        b = K.materialize(self._lazy, self._vec, self._acc, self._sc, _iterate(iterate), out)
+        b = K.materialize(self._lazy, self._st, self._sc, _iterate(iterate), out)
         return out, float(b)
 
     def distance(self) -> float:
@@ -277,9 +278,9 @@ class LinearModel:
         sc = self._sc
         if sc[K.S_Z] > 0.0:
             if self._lazy:
-                K.lazy_rebase(self._vec, self._acc, sc)
+                K.lazy_rebase(self._st, sc)
             w, b = self.weights("averaged")
-            self._vec[:] = w
+            self._st[:, 0] = w
             sc[K.S_B] = b
             sc[K.S_NV2] = float(np.dot(w, w))
         sc[K.S_STEPSCALE] *= shrink
@@ -293,8 +294,8 @@ class LinearModel:
         """
         sc = self._sc
         if self._lazy:
-            K.lazy_rebase(self._vec, self._acc, sc)
-        self._acc[:] = 0.0
+            K.lazy_rebase(self._st, sc)
+        self._st[:, 1] = 0.0
         for s in (K.S_ACC, K.S_Z, K.S_SB, K.S_TAVG, K.S_TSTEP, K.S_GSQ, K.S_GN):
             sc[s] = 0.0
         sc[K.S_CEXP] = 1.0
@@ -325,7 +326,7 @@ class LinearModel:
     def _arrays(self) -> dict[str, np.ndarray]:
         warm = self._warm
         return {
-            "vec": self._vec, "acc": self._acc, "sc": self._sc, "mean": self._mean, "std": self._std,
+            "state": self._st, "sc": self._sc, "mean": self._mean, "std": self._std,
             "warm_len": np.array([len(w[0]) for w in warm], dtype=np.int64),
             "warm_idx": np.concatenate([w[0] for w in warm]) if warm else np.zeros(0, np.int64),
             "warm_val": np.concatenate([w[1] for w in warm]) if warm else np.zeros(0),
@@ -352,10 +353,11 @@ class LinearModel:
         if header.get("format") != "linear-model":
             raise SnapshotError("the state is not a linear model")
         model = cls(ModelSpec.from_dict(header["spec"]))
-        for name in ("vec", "acc", "sc", "mean", "std"):
-            if arrays[name].shape != getattr(model, "_" + name).shape:
+        for name, attr in (("state", "_st"), ("sc", "_sc"), ("mean", "_mean"), ("std", "_std")):
+            want = getattr(model, attr).shape
+            if arrays[name].size != int(np.prod(want)):
                 raise SnapshotError(f"array {name!r} has the wrong size for this spec")
-            setattr(model, "_" + name, arrays[name])
+            setattr(model, attr, arrays[name].reshape(want))
         model._frozen = bool(header["frozen"])
         bounds = np.concatenate([[0], np.cumsum(arrays["warm_len"])])
         model._warm = [(arrays["warm_idx"][bounds[k]:bounds[k + 1]], arrays["warm_val"][bounds[k]:bounds[k + 1]],

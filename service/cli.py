@@ -48,6 +48,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--batch", type=int, default=1000, help="with --to: events per request (default: %(default)s)")
     r.add_argument("--jobs", type=int, default=None, help="parallel processes for several configs")
     r.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
+    r.add_argument("--no-report", action="store_true", help="write summary.json and model.json, not report.html")
+    r.add_argument("--exact-parse", action="store_true",
+                   help="parse NDJSON line by line (orjson) instead of with Arrow; same results, slower")
 
     c = sub.add_parser("check-config", help="validate a config and print the resolved settings")
     c.add_argument("config")

@@ -158,9 +158,7 @@ class Engine:
             self._since_check += int(np.count_nonzero(learn))
             refused = int(np.count_nonzero(out.code[seg] == 2))
             if self.monitor is not None:
-                hold = np.flatnonzero(mode[seg] == 2) + i
-                if len(hold):
-                    self.monitor.add_holdout(rows.take(hold), y[hold], hold + first)
+                self.monitor.hold_out(rows, y, mode, i, nxt, first)
                 if refused:
                     self.monitor.note_refused(refused)
             self.refused += refused
@@ -186,12 +184,16 @@ class Engine:
         record = {"event": event}
         if self.monitor is not None:
             record = self.monitor.check(self.model, event, ts)
+            restored = self.monitor.take_restored()
+            if restored is not None:  # a rollback went back to the last trusted state
+                self.model = restored
         else:
             record["serving"] = self.serving
         record["progressive_loss"] = self._seg_loss / self._seg_n if self._seg_n else None
         record["step"] = self.model.last_step
         record["step_scale"] = self.model.step_scale
-        record.setdefault("distance", self.model.distance())
+        if "distance" not in record:  # the monitor's record has it already (an O(dim) pass)
+            record["distance"] = self.model.distance()
         self._seg_loss = 0.0
         self._seg_n = 0
         self.trace.append(record)
@@ -216,11 +218,9 @@ class Engine:
 
     def holdout_losses(self) -> dict:
         """Held-out loss of both iterates on the current window (``None`` without a monitor)."""
-        if self.monitor is None or len(self.monitor.window) == 0:
+        if self.monitor is None:
             return {"raw": None, "averaged": None}
-        rows, y, _ = self.monitor.window.rows()
-        raw, avg = self.monitor._losses(self.model, rows, y)
-        return {"raw": raw, "averaged": avg}
+        return self.monitor.holdout_losses(self.model)
 
     def counters(self) -> dict:
         return {"events": self.events, "learned": self.learned, "held_out": self.held_out, "scored": self.scored,

@@ -1,0 +1,413 @@
+"""The ingestion loop: a bounded queue, the journal commit, and the one learner that owns the engine.
+
+Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its events as one
+*item*; the answer waits on the item's future. Two stages drain the queue, in order:
+
+1. the *committer* takes queued items (up to ``service.chunk_events`` events) and, on the journal's
+   own thread, drops duplicate ids, assigns journal positions and commits the rows in one
+   transaction;
+2. the *learner* applies committed chunks to the engine on its own thread, in slices of
+   ``service.apply_slice`` events, and resolves each item's future as soon as its events are applied
+   (an acknowledged event is journaled *and* learned).
+
+While the learner applies chunk k the committer is already committing chunk k+1; SQLite and the
+compiled kernels release the GIL while they work, so the stages overlap with each other and with
+the event loop. Mapping features (``Engine.prepare``) is pure and runs outside the engine lock; only
+``Engine.apply`` of one slice runs under it, and scoring takes the same lock for its few microseconds,
+so a score never sees a half-updated model and waits at most one slice. Recovery re-applies journal
+rows through the same code, in journal order; the engine gives the same state however events are
+chunked.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import math
+import threading
+import time
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import suppress
+
+import orjson
+
+from .engine import Engine
+from .errors import JournalUnavailable, NotReady, Overloaded
+from .events import Event
+from .journal import EVENT, NOTE, ROLLBACK, Journal
+
+__all__ = ["Ingestor", "Item", "Receipt", "encode_event"]
+
+log = logging.getLogger("trimtab.service")
+
+
+def encode_event(e: Event) -> bytes:
+    """The journal payload of a validated event: ``[id, ts, features, target]`` as orjson."""
+    return orjson.dumps((e.id, e.ts, e.features, e.target))
+
+
+def _decode_event(payload: bytes) -> Event:
+    ident, ts, feats, target = orjson.loads(payload)
+    return Event(ident, ts, feats, target)
+
+
+class Receipt:
+    """What happened to an item: journal positions of its new events (``None`` for duplicates)."""
+
+    __slots__ = ("seqs", "extra_seq", "applied_seq", "checkpoint")
+
+    def __init__(self) -> None:
+        self.seqs: list = []
+        self.extra_seq: int | None = None
+        self.applied_seq = 0
+        self.checkpoint = None
+
+    @property
+    def accepted(self) -> int:
+        return sum(1 for s in self.seqs if s is not None)
+
+    def duplicates(self) -> list[int]:
+        return [k for k, s in enumerate(self.seqs) if s is None]
+
+    def seq_range(self) -> list[int] | None:
+        got = [s for s in self.seqs if s is not None]
+        return [got[0], got[-1]] if got else None
+
+
+class Item:
+    """Events of one request with their payloads, an optional rejection note and operator action."""
+
+    __slots__ = ("events", "payloads", "note", "action", "future", "receipt")
+
+    def __init__(self, events, payloads, note=None, action=None) -> None:
+        self.events = events
+        self.payloads = payloads
+        self.note = note          # (rejected, total, ts) for engine.note_rejected
+        self.action = action      # None | ("rollback", reason) | ("checkpoint",)
+        self.future: asyncio.Future = asyncio.get_running_loop().create_future()
+        self.receipt = Receipt()
+
+    def weight(self) -> int:
+        return max(1, len(self.events))
+
+
+class Ingestor:
+    """Owns the engine, the journal thread and the queue between handlers and the model."""
+
+    def __init__(self, config, journal: Journal, metrics) -> None:
+        svc = config.service
+        self.config = config
+        self.journal = journal
+        self.metrics = metrics
+        self.incidents: deque[dict] = deque(maxlen=1000)   # service incidents (the engine keeps its own)
+        self.engine: Engine | None = None
+        self.ready = False
+        self.stopping = False
+        self.recovery = {"state": "starting", "replayed": 0, "checkpoint": None}
+        self.applied_seq = 0
+        self.checkpoint_seq = 0
+        self.queued_events = 0
+        self._limit, self._slice, self._chunk = svc.queue_limit, svc.apply_slice, svc.chunk_events
+        self._every, self._keep, self._prune = svc.checkpoint_every, svc.checkpoints_kept, svc.prune_journal
+        self._pending: deque[Item] = deque()
+        self._wake = asyncio.Event()
+        self._committed: asyncio.Queue = asyncio.Queue(maxsize=2)
+        self._thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trimtab-journal")
+        self._learn_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trimtab-learner")
+        #: held while the engine changes (one slice at a time); readers of the model take it too
+        self.lock = threading.Lock()
+        self._ids: dict[str, int] = {}       # journal thread only: the deduplication index
+        self._order: deque = deque()         # (seq, id) in journal order, to prune the index
+        self._next_seq = 1
+        self._tasks: list[asyncio.Task] = []
+        self._background: set[asyncio.Future] = set()
+        self._rate = 20_000.0                # events/s applied, for Retry-After
+
+    def _incident(self, kind: str, reason: str, evidence: dict, persist: bool = False) -> None:
+        """Record a service incident; ``persist`` (journal thread only) keeps it across restarts."""
+        log.warning("incident %s: %s", kind, reason)
+        if persist:
+            self.incidents.append(self.journal.add_incident(kind, reason, evidence))
+        else:
+            self.incidents.append({"kind": kind, "ts": time.time(), "reason": reason, "evidence": evidence})
+
+    async def db(self, fn, *args):
+        """Run a journal call on the journal's thread."""
+        return await asyncio.get_running_loop().run_in_executor(self._thread, fn, *args)
+
+    async def learn(self, fn, *args):
+        """Run an engine-changing call on the learner's thread."""
+        return await asyncio.get_running_loop().run_in_executor(self._learn_thread, fn, *args)
+
+    def journaled(self, ident: str) -> bool:
+        """Whether an event with this id is in the journal (a membership test is safe off its thread)."""
+        return ident in self._ids
+
+    # ---------------------------------------------------------------- submitting
+    def submit(self, events: list[Event], payloads: list[bytes], note=None, action=None) -> Item:
+        """Queue one request's events; raises :class:`Overloaded` when the queue is full."""
+        if not self.ready or self.stopping:
+            raise NotReady("recovering from the journal" if not self.stopping else "shutting down", where="startup")
+        item = Item(events, payloads, note, action)
+        if self.queued_events + item.weight() > self._limit:
+            self.metrics.overloaded.inc()
+            wait = max(1, math.ceil(self.queued_events / max(self._rate, 1.0)))
+            raise Overloaded(f"ingest queue full ({self.queued_events} of {self._limit} events queued, "
+                             "service.queue_limit); retry later", retry_after=wait)
+        self.queued_events += item.weight()
+        self._pending.append(item)
+        self._wake.set()
+        return item
+
+    # ---------------------------------------------------------------- stage 1: journal commit
+    def _commit(self, items: list[Item]) -> None:
+        """On the journal thread: deduplicate, number and commit the items' rows in one transaction."""
+        ids, parts, seq, added = self._ids, [], self._next_seq, []
+        for it in items:
+            seqs = it.receipt.seqs = []
+            run: list[bytes] = []
+            first = seq
+            for e, payload in zip(it.events, it.payloads):
+                if e.id is not None:
+                    if e.id in ids:
+                        seqs.append(None)
+                        continue
+                    ids[e.id] = seq
+                    added.append(e.id)
+                run.append(payload)
+                seqs.append(seq)
+                seq += 1
+            if run:
+                parts.append((first, run))
+            if it.note is not None or (it.action and it.action[0] == "rollback"):
+                kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
+                parts.append((seq, None, kind, orjson.dumps(body)))
+                it.receipt.extra_seq = seq
+                seq += 1
+        try:
+            self.journal.append(parts)
+        except BaseException:
+            for k in added:
+                del ids[k]
+            raise
+        self._order.extend((ids[k], k) for k in added)
+        self._next_seq = seq
+
+    def _prune_index(self, upto: int) -> None:
+        """On the journal thread: forget ids whose journal rows were pruned."""
+        while self._order and self._order[0][0] <= upto:
+            _, k = self._order.popleft()
+            if self._ids.get(k, upto + 1) <= upto:
+                del self._ids[k]
+
+    async def _committer(self) -> None:
+        while True:
+            while not self._pending:
+                self._wake.clear()
+                await self._wake.wait()
+            items, n = [], 0
+            while self._pending and (not items or n + len(self._pending[0].events) <= self._chunk):
+                it = self._pending.popleft()
+                items.append(it)
+                n += len(it.events)
+            start = time.perf_counter()
+            try:
+                await self.db(self._commit, items)
+            except Exception as exc:
+                log.error("journal commit failed: %s", exc)
+                for it in items:
+                    self._finish(it, JournalUnavailable(f"the journal write failed ({exc}); nothing from this "
+                                                        "request was applied; retry", where="journal"))
+                continue
+            self.metrics.commit_seconds.observe(time.perf_counter() - start)
+            await self._committed.put(items)
+
+    # ---------------------------------------------------------------- stage 2: learning
+    def apply_events(self, events: list[Event]) -> None:
+        """Learner thread: apply events in order, one slice at a time under the engine lock."""
+        engine, step = self.engine, self._slice
+        for i in range(0, len(events), step):
+            batch = engine.prepare(events[i:i + step])  # pure: no lock needed
+            start = time.perf_counter()
+            with self.lock:
+                engine.apply(batch)
+            took = time.perf_counter() - start
+            self.metrics.apply_seconds.observe(took)
+            if took > 0:
+                self._rate = 0.9 * self._rate + 0.1 * (len(batch) / took)
+
+    def _apply_sync(self, it: Item) -> None:
+        """Learner thread: one item's new events, then its rejection note or rollback."""
+        r = it.receipt
+        new = [e for e, s in zip(it.events, r.seqs) if s is not None]
+        if new:
+            self.apply_events(new)
+        if it.note is not None:
+            with self.lock:
+                self.engine.note_rejected(*it.note)
+        if it.action is not None and it.action[0] == "rollback":
+            with self.lock:
+                self.engine.rollback(it.action[1])
+        last = r.extra_seq if r.extra_seq is not None else (r.seq_range() or [None, None])[1]
+        if last is not None:
+            with self.lock:  # the position always describes the engine state under the same lock
+                self.applied_seq = last
+        r.applied_seq = self.applied_seq
+
+    async def _learner(self) -> None:
+        while True:
+            items = await self._committed.get()
+            for it in items:
+                try:
+                    await self._apply_item(it)
+                except Exception as exc:
+                    # the journal holds rows the model has not learned: stop taking writes until a restart
+                    self.ready = False
+                    self._incident("learner_failed", f"applying journaled events failed: {exc!r}; "
+                                       "restart the service to re-apply them from the journal", {})
+                    log.exception("learner failed")
+                    self._finish(it, JournalUnavailable("the learner failed; the events are journaled and will "
+                                                        "be applied at restart", where="learner"))
+                    continue
+                self._finish(it, None)
+
+    async def _apply_item(self, it: Item) -> None:
+        r = it.receipt
+        await self.learn(self._apply_sync, it)
+        if it.action is not None and it.action[0] == "checkpoint":
+            r.checkpoint = await self.checkpoint()
+        elif self.applied_seq - self.checkpoint_seq >= self._every:
+            self.checkpoint_seq = self.applied_seq  # one checkpoint per period, even while it is written
+            fut = asyncio.ensure_future(self.checkpoint())
+            self._background.add(fut)
+            fut.add_done_callback(self._background_done)
+
+    def _background_done(self, fut: asyncio.Future) -> None:
+        self._background.discard(fut)
+        if not fut.cancelled() and fut.exception() is not None:
+            log.error("checkpoint failed: %s", fut.exception())
+            self._incident("checkpoint_failed", f"writing a checkpoint failed: {fut.exception()}", {})
+
+    def _finish(self, it: Item, exc: Exception | None) -> None:
+        self.queued_events -= it.weight()
+        if not it.future.done():
+            if exc is None:
+                it.future.set_result(it.receipt)
+            else:
+                it.future.set_exception(exc)
+
+    async def checkpoint(self) -> dict:
+        """Write a checkpoint of the engine at the applied position (and prune the journal)."""
+        def snapshot():
+            with self.lock:
+                return self.applied_seq, self.engine.to_bytes(), self.engine.state_digest
+
+        seq, blob, digest = await self.learn(snapshot)
+        self.checkpoint_seq = max(self.checkpoint_seq, seq)
+
+        def write():
+            ck, upto = self.journal.write_checkpoint(seq, blob, digest, self._keep, self._prune)
+            self._prune_index(upto)
+            return ck
+
+        ck = await self.db(write)
+        self.metrics.checkpoints.inc()
+        return ck.as_dict()
+
+    # ---------------------------------------------------------------- start and stop
+    async def recover(self) -> None:
+        """Newest checkpoint whose digest verifies, then the journal after it; then start the stages."""
+        t0 = time.perf_counter()
+        self.recovery["state"] = "recovering"
+        self.incidents.extend(await self.db(self.journal.incidents))
+        ids = await self.db(self.journal.ids)
+        self._ids = ids
+        self._order = deque((s, k) for k, s in ids.items())
+        engine, pos = None, 0
+        for ck in await self.db(self.journal.checkpoints):
+            try:
+                seq, blob, ok = await self.db(self.journal.load_checkpoint, ck[0])
+            except Exception as exc:  # an unreadable row is as unusable as a corrupt blob
+                seq, blob, ok = ck[1], b"", False
+                log.error("checkpoint %d cannot be read: %s", ck[0], exc)
+            reason = None if ok else "its SHA-256 digest does not match (corrupt or truncated)"
+            if ok:
+                try:
+                    engine, pos = Engine.from_bytes(self.config, blob), seq
+                except Exception as exc:  # a blob that hashes right but cannot be read is just as unusable
+                    reason = f"it cannot be read: {exc}"
+            if engine is not None:
+                break
+            await self.db(self._incident, "corrupt_checkpoint",
+                          f"checkpoint {ck[0]} at journal position {seq} was skipped: {reason}; an older one "
+                          "(or an empty model) and a longer journal replay were used instead",
+                          {"checkpoint": ck[0], "seq": seq}, True)
+        self.engine = engine or Engine(self.config)
+        self.checkpoint_seq = pos
+        self.recovery["checkpoint"] = pos
+        replayed, after = 0, pos
+        while True:
+            rows = await self.db(self.journal.rows_after, after, 5000)
+            if not rows:
+                break
+            if engine is None and replayed == 0 and rows[0][0] > 1:
+                await self.db(self._incident, "history_incomplete",
+                              f"no usable checkpoint and the journal starts at position {rows[0][0]}: the model "
+                              "was rebuilt from the retained journal only", {"first_seq": rows[0][0]}, True)
+            await self.learn(self._replay, rows)
+            replayed += len(rows)
+            after = rows[-1][0]
+            self.recovery["replayed"] = replayed
+            self.metrics.replayed.inc(len(rows))
+        self._next_seq = max(after, await self.db(self.journal.last_seq)) + 1
+        self.recovery.update(state="ready", seconds=round(time.perf_counter() - t0, 3))
+        self._tasks = [asyncio.create_task(self._committer(), name="trimtab-committer"),
+                       asyncio.create_task(self._learner(), name="trimtab-learner")]
+        self.ready = True
+        log.info("recovered: checkpoint at position %d, %d journal rows re-applied, position %d",
+                 pos, replayed, after)
+
+    def _replay(self, rows: list[tuple]) -> None:
+        """Learner thread: journal rows in order, through the same code as live items."""
+        events: list[Event] = []
+        for _seq, _id, kind, payload in rows:
+            if kind == EVENT:
+                events.append(_decode_event(payload))
+                continue
+            self.apply_events(events)
+            events = []
+            body = orjson.loads(payload)
+            with self.lock:
+                if kind == NOTE:
+                    self.engine.note_rejected(*body)
+                elif kind == ROLLBACK:
+                    self.engine.rollback(body["reason"])
+        self.apply_events(events)
+        with self.lock:
+            self.applied_seq = rows[-1][0]
+
+    async def drain(self, timeout: float = 30.0) -> None:
+        """Stop taking writes and wait until every queued item is applied."""
+        self.stopping = True
+        deadline = time.monotonic() + timeout
+        while self.queued_events > 0 and time.monotonic() < deadline and all(not t.done() for t in self._tasks):
+            await asyncio.sleep(0.01)
+
+    async def close(self, final_checkpoint: bool = True) -> None:
+        """Drain, write a final checkpoint, stop the stages and the journal thread."""
+        if self.ready:
+            await self.drain()
+            for fut in list(self._background):
+                with suppress(Exception):
+                    await fut
+            if final_checkpoint and self.applied_seq > self.checkpoint_seq:
+                await self.checkpoint()
+        for t in self._tasks:
+            t.cancel()
+        for t in self._tasks:
+            with suppress(asyncio.CancelledError):
+                await t
+        self.ready = False
+        self._learn_thread.shutdown(wait=True)
+        self._thread.shutdown(wait=True)

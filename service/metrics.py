@@ -1,0 +1,63 @@
+"""Prometheus metrics of one app, in its own registry (two apps in one process never share counters).
+
+Exposed at ``GET /metrics`` in the Prometheus text exposition format, written by the standard
+client library (``prometheus_client``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+
+__all__ = ["CONTENT_TYPE", "Metrics"]
+
+CONTENT_TYPE = CONTENT_TYPE_LATEST
+
+_FAST = (0.0005, 0.001, 0.002, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5)
+_SLOW = (0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+
+
+class Metrics:
+    """The service's counters, gauges and histograms."""
+
+    def __init__(self) -> None:
+        r = self.registry = CollectorRegistry()
+        self._requests = Counter("trimtab_http_requests", "HTTP requests answered, by route and status",
+                                 ["route", "status"], registry=r)
+        self._latency = Histogram("trimtab_http_request_seconds", "Time to answer a request, by route",
+                                  ["route"], buckets=_FAST, registry=r)
+        self.events = Counter("trimtab_events", "Events by outcome: accepted (journaled), duplicate, rejected",
+                              ["outcome"], registry=r)
+        self.commit_seconds = Histogram("trimtab_journal_commit_seconds", "Time to commit one chunk to the journal",
+                                        buckets=_SLOW, registry=r)
+        self.apply_seconds = Histogram("trimtab_apply_seconds", "Time to apply one slice of events to the model",
+                                       buckets=_FAST, registry=r)
+        self.checkpoints = Counter("trimtab_checkpoints", "Checkpoints written", registry=r)
+        self.overloaded = Counter("trimtab_overload_refusals", "Requests refused with 429 (queue full)", registry=r)
+        self.replayed = Counter("trimtab_recovery_rows", "Journal rows re-applied at start", registry=r)
+        self._gauges = {
+            name: Gauge(name, doc, registry=r) for name, doc in (
+                ("trimtab_queue_events", "Events accepted but not yet applied"),
+                ("trimtab_applied_seq", "Journal position the model has applied"),
+                ("trimtab_model_updates", "SGD updates the model has made"),
+                ("trimtab_ready", "1 once recovery has finished"),
+                ("trimtab_remembered", "Scored events waiting for their label"),
+            )}
+        self._children: dict = {}
+
+    def watch(self, name: str, fn: Callable[[], float]) -> None:
+        """Read gauge ``name`` from ``fn`` at every scrape."""
+        self._gauges[name].set_function(fn)
+
+    def observe(self, route: str, status: int, seconds: float) -> None:
+        """Count one answered request (child metrics cached: labels() is the costly part)."""
+        key = (route, status)
+        pair = self._children.get(key)
+        if pair is None:
+            pair = self._children[key] = (self._requests.labels(route, str(status)), self._latency.labels(route))
+        pair[0].inc()
+        pair[1].observe(seconds)
+
+    def exposition(self) -> bytes:
+        return generate_latest(self.registry)
