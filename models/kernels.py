@@ -80,6 +80,10 @@ def _loss(code, delta, m, y):
     return math.log1p(math.exp(m)) - y * m
 
 
+#: the per-event loss, for other compiled code that must agree with the kernels (the held-out window)
+point_loss = _loss
+
+
 @_inline
 def _dloss(code, delta, m, y):
     if code == 0:

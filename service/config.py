@@ -85,6 +85,8 @@ class MonitorConfig(_Section):
     rollback_margin: float = Field(0.10, ge=0.0)
     #: ... on this many checks in a row -> roll back
     rollback_patience: int = Field(3, ge=1)
+    #: whether the monitor may roll back (false: it still scores the held-out window and reports)
+    rollback: bool = True
     #: a rollback multiplies later steps by this factor
     rollback_shrink: float = Field(0.5, gt=0.0, le=1.0)
     #: the raw iterate's expected excess loss eta * G**2 / 4 times this is not counted as "worse";

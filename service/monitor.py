@@ -59,155 +59,17 @@ import math
 import pickle
 from collections import deque
 
-import numba
 import numpy as np
-from river import drift
 
 from models import LinearModel, Rows
 
 from .config import MonitorConfig
+from .drift import ChangeDetector, sign_test_pvalue
+from .holdout import LOSS_CODES, N_PRM, N_STATS, HoldoutWindow
+from .holdout import (P_CODE, P_CUT, P_DELTA, P_LAST, P_RECENT, ST_AVG, ST_DIST,
+                      ST_KEPT, ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW)
 
-__all__ = ["ChangeDetector", "HoldoutWindow", "Monitor", "sign_test_pvalue"]
-
-_LOSS_CODES = {"squared": 0, "huber": 1, "logistic": 2}
-# layouts of the arrays the compiled passes share: statistics out, scalars in, per-slot metadata
-(ST_MEDIAN, ST_RAW, ST_AVG, ST_KEPT, ST_NEW, ST_NEW_ABOVE, ST_REC_RAW, ST_REC_AVG, ST_REC_N, ST_DIST,
- N_STATS) = range(11)
-P_BRAW, P_BAVG, P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, N_PRM = range(9)
-M_LEN, M_Y, M_EVENT, M_SCALED, N_META = range(5)
-
-_jit = numba.njit(cache=True, nogil=True)
-_NO_EVENTS = np.zeros(0, dtype=np.int64)
-
-
-@_jit
-def _loss(code, delta, m, y):
-    """The losses of ``models.losses`` (the reference the tests compare with), for one event."""
-    r = m - y
-    if code == 0:
-        return 0.5 * r * r
-    if code == 1:
-        r = abs(r)
-        return 0.5 * r * r if r <= delta else delta * (r - 0.5 * delta)
-    if m > 0:
-        return m + math.log1p(math.exp(-m)) - y * m
-    return math.log1p(math.exp(m)) - y * m
-
-
-@_jit
-def _put(idx, val, meta, nxt, indptr, indices, values, mode, y, events, lo, hi, first, scaling):
-    """Keep the rows ``r`` in ``lo..hi`` with ``mode[r] == 2`` in the ring from slot ``nxt`` on
-    (event index ``events[r]``, or ``first + r`` when ``events`` is empty), scaled when ``scaling``
-    is known. Return ``(next slot, rows kept)``, or ``(-width, 0)`` when a row is wider than the
-    ring (nothing is kept then)."""
-    width, size = idx.shape
-    nnum = scaling.shape[1] if scaling.shape[0] == 2 else -1
-    for r in range(lo, hi):
-        if mode[r] == 2 and indptr[r + 1] - indptr[r] > width:
-            return -(indptr[r + 1] - indptr[r]), 0
-    kept = 0
-    for r in range(lo, hi):
-        if mode[r] != 2:
-            continue
-        a, b = indptr[r], indptr[r + 1]
-        for p in range(width):
-            j = indices[a + p] if p < b - a else 0
-            x = values[a + p] if p < b - a else 0.0
-            if p < b - a and j < nnum:
-                x = (x - scaling[0, j]) / scaling[1, j]
-            idx[p, nxt] = j
-            val[p, nxt] = x
-        meta[M_LEN, nxt] = b - a
-        meta[M_Y, nxt] = y[r]
-        meta[M_EVENT, nxt] = events[r] if events.shape[0] else first + r
-        meta[M_SCALED, nxt] = 1.0 if nnum >= 0 else 0.0
-        nxt = (nxt + 1) % size
-        kept += 1
-    return nxt, kept
-
-
-@_jit
-def _window_stats(idx, val, meta, n, w_raw, w_avg, scaling, prm, work, out):
-    """Score the ``n`` kept events with both iterates and fill ``out`` (layout ``ST_*``).
-
-    ``scaling`` holds the frozen numeric means and standard deviations (or is empty before they
-    are frozen); ``prm`` the scalars (layout ``P_*``; the absurd-loss cut comes from the previous
-    check's median, one pass fewer); ``work`` rows: raw loss, averaged loss, scratch.
-    """
-    b_raw, b_avg, code, delta = prm[P_BRAW], prm[P_BAVG], int(prm[P_CODE]), prm[P_DELTA]
-    last_event, recent_from, cut = prm[P_LAST], prm[P_RECENT], prm[P_CUT]
-    nnum = scaling.shape[1]
-    loss_raw, loss_avg, scratch = work[0], work[1], work[2]
-    if prm[P_UNSCALED] > 0.0 and scaling.shape[0] == 2:  # rows kept before the scaling froze, once
-        for i in range(n):
-            if meta[M_SCALED, i] == 0.0:
-                for p in range(int(meta[M_LEN, i])):
-                    j = idx[p, i]
-                    if j < nnum:
-                        val[p, i] = (val[p, i] - scaling[0, j]) / scaling[1, j]
-                meta[M_SCALED, i] = 1.0
-    width = idx.shape[0]
-    i = 0
-    while i + 4 <= n:  # four rows at a time: independent sums keep the pipeline full (padding adds 0)
-        r0 = r1 = r2 = r3 = b_raw
-        a0 = a1 = a2 = a3 = b_avg
-        for p in range(width):
-            j0, j1, j2, j3 = idx[p, i], idx[p, i + 1], idx[p, i + 2], idx[p, i + 3]
-            x0, x1, x2, x3 = val[p, i], val[p, i + 1], val[p, i + 2], val[p, i + 3]
-            r0 += w_raw[j0] * x0
-            r1 += w_raw[j1] * x1
-            r2 += w_raw[j2] * x2
-            r3 += w_raw[j3] * x3
-            a0 += w_avg[j0] * x0
-            a1 += w_avg[j1] * x1
-            a2 += w_avg[j2] * x2
-            a3 += w_avg[j3] * x3
-        loss_raw[i], loss_raw[i + 1], loss_raw[i + 2], loss_raw[i + 3] = r0, r1, r2, r3
-        loss_avg[i], loss_avg[i + 1], loss_avg[i + 2], loss_avg[i + 3] = a0, a1, a2, a3
-        i += 4
-    for i in range(i, n):
-        r0, a0 = b_raw, b_avg
-        for p in range(width):
-            r0 += w_raw[idx[p, i]] * val[p, i]
-            a0 += w_avg[idx[p, i]] * val[p, i]
-        loss_raw[i], loss_avg[i] = r0, a0
-    for s in range(N_STATS):
-        out[s] = 0.0
-    k_old = k_new = 0
-    for i in range(n):
-        lr = _loss(code, delta, loss_raw[i], meta[M_Y, i])
-        la = _loss(code, delta, loss_avg[i], meta[M_Y, i])
-        loss_raw[i] = lr
-        loss_avg[i] = la
-        ev = meta[M_EVENT, i]
-        if ev > last_event:
-            scratch[n - 1 - k_new] = la  # new events from the top, a sample of the older ones from the bottom
-            k_new += 1
-        elif i % 4 == 0:
-            # a new event exceeds the median of any sample of the older events with probability 1/2
-            # just the same; every 4th costs a quarter of the work
-            scratch[k_old] = la
-            k_old += 1
-        if lr > cut and la > cut:
-            continue
-        out[ST_RAW] += lr
-        out[ST_AVG] += la
-        out[ST_KEPT] += 1.0
-        if ev > recent_from:
-            out[ST_REC_RAW] += lr
-            out[ST_REC_AVG] += la
-            out[ST_REC_N] += 1.0
-    med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
-    out[ST_MEDIAN] = med
-    out[ST_NEW] = k_new
-    for k in range(n - k_new, n):
-        if scratch[k] > med:
-            out[ST_NEW_ABOVE] += 1.0
-    d2 = (b_raw - b_avg) ** 2
-    for j in range(w_raw.shape[0]):
-        d2 += (w_raw[j] - w_avg[j]) ** 2
-    out[ST_DIST] = math.sqrt(d2)
-
+__all__ = ["Monitor"]
 
 def _copy_model(model: LinearModel) -> LinearModel:
     """An independent copy of ``model``, in a few microseconds: the learned state of a model lives in
@@ -217,147 +79,6 @@ def _copy_model(model: LinearModel) -> LinearModel:
     twin = copy.copy(model)
     twin.__dict__.update({k: v.copy() for k, v in vars(model).items() if isinstance(v, np.ndarray)})
     return twin
-
-
-def sign_test_pvalue(above: int, n: int) -> float:
-    """One-sided sign test: ``P(Binomial(n, 1/2) >= above)``."""
-    return sum(math.comb(n, i) for i in range(above, n + 1)) / 2.0**n if n else 1.0
-
-
-class ChangeDetector:
-    """A river drift detector (``"page_hinkley"`` or ``"adwin"``) behind ``update(x) -> bool``.
-
-    ``params`` go to the river class unchanged (none: river's defaults), so that this wrapper
-    reproduces river's documented detections.
-    """
-
-    KINDS = ("adwin", "page_hinkley")
-
-    def __init__(self, kind: str, **params) -> None:
-        if kind not in self.KINDS:
-            raise ValueError(f"Invalid detector {kind!r}. Valid values are: {', '.join(self.KINDS)}")
-        self.kind = kind
-        self.params = dict(params)
-        self._det = self._make()
-
-    def _make(self):
-        return (drift.PageHinkley if self.kind == "page_hinkley" else drift.ADWIN)(**self.params)
-
-    @classmethod
-    def for_monitor(cls, cfg: MonitorConfig) -> ChangeDetector | None:
-        """The detector ``cfg`` asks for (``None`` for ``"off"``): Page-Hinkley on the per-check
-        exceedance share, tuned by ``drift_*``; ADWIN on per-event exceedances, river's defaults
-        but ``adwin_delta``."""
-        if cfg.drift == "page_hinkley":
-            return cls("page_hinkley", min_instances=cfg.drift_min_checks, delta=cfg.drift_delta,
-                       threshold=cfg.drift_threshold, mode="up")
-        if cfg.drift == "adwin":
-            return cls("adwin", delta=cfg.adwin_delta)
-        return None
-
-    def update(self, x: float) -> bool:
-        """Feed one value; ``True`` when the detector signals a change at this value."""
-        self._det.update(float(x))
-        return bool(self._det.drift_detected)
-
-    def update_many(self, xs) -> bool:
-        """Feed values in order; ``True`` when the detector signals a change at any of them."""
-        fired = False
-        for x in xs:
-            fired = self.update(x) or fired
-        return fired
-
-    def reset(self) -> None:
-        self._det = self._make()
-
-
-class HoldoutWindow:
-    """The newest ``size`` held-out events as a ring of padded rows, scored by a compiled pass.
-
-    Rows are stored position-major (``idx[p, slot]``) with their numeric values scaled once the
-    model's warm-up scaling is frozen, so that scoring is a plain sparse product.
-    """
-
-    def __init__(self, size: int, width: int = 1) -> None:
-        self.size = size
-        self._idx = np.zeros((width, size), dtype=np.int32)
-        self._val = np.zeros((width, size))
-        self._meta = np.zeros((N_META, size))
-        self._next = 0
-        self._count = 0
-        self._work = np.zeros((3, size))
-        self._scaling = np.zeros((0, 0))
-        self._unscaled = False
-
-    def __len__(self) -> int:
-        return self._count
-
-    @property
-    def unscaled(self) -> bool:
-        """Whether rows kept before the scaling froze still wait to be scaled (at the next check)."""
-        return self._unscaled or (self._count > 0 and self._scaling.shape[0] == 0)
-
-    @property
-    def loss_raw(self) -> np.ndarray:
-        """Per-slot losses of the raw iterate at the last scoring (slots ``0..len-1``)."""
-        return self._work[0, : self._count]
-
-    @property
-    def loss_avg(self) -> np.ndarray:
-        return self._work[1, : self._count]
-
-    def new_above(self, n_new: int, median: float) -> list:
-        """1.0 / 0.0 per newly kept event of the last scoring: its averaged loss exceeds ``median``."""
-        return (self._work[2, self._count - n_new: self._count] > median).astype(np.float64).tolist()
-
-    def events(self) -> np.ndarray:
-        """Event indices of the kept events, slot order (matching ``loss_raw`` / ``loss_avg``)."""
-        return self._meta[M_EVENT, : self._count].astype(np.int64)
-
-    def add(self, rows: Rows, y: np.ndarray, mode: np.ndarray, start: int, stop: int, first: int,
-            events: np.ndarray | None = None) -> None:
-        """Keep the rows ``start..stop`` of ``rows`` whose ``mode`` is 2 (held out), with targets ``y``
-        and event indices ``events`` (or ``first`` + row), all indexed by row."""
-        events = _NO_EVENTS if events is None else events
-        args = (rows.indptr, rows.indices, rows.values, mode, y, events, start, stop, first)
-        nxt, kept = _put(self._idx, self._val, self._meta, self._next, *args, self._scaling)
-        if nxt < 0:  # a wider row than any before: widen the ring (rare) and copy again
-            grow = ((0, -nxt - self._idx.shape[0]), (0, 0))
-            self._idx, self._val = np.pad(self._idx, grow), np.pad(self._val, grow)
-            nxt, kept = _put(self._idx, self._val, self._meta, self._next, *args, self._scaling)
-        if kept and self._scaling.shape[0] == 0:
-            self._unscaled = True
-        self._next = nxt
-        self._count = min(self._count + kept, self.size)
-
-    def drop_before(self, event: int) -> None:
-        """Forget the events held out before ``event`` (after a real change), keeping their order."""
-        order = np.arange(self._count) if self._count < self.size else (np.arange(self.size) + self._next) % self.size
-        keep = order[self._meta[M_EVENT, order] >= event]
-        k = len(keep)
-        for name in ("_idx", "_val", "_meta", "_work"):
-            old = getattr(self, name)
-            new = np.zeros_like(old)
-            new[:, :k] = old[:, keep]
-            setattr(self, name, new)
-        self._count, self._next = k, k % self.size
-
-    def stats(self, model: LinearModel, prm: np.ndarray, out: np.ndarray, work: np.ndarray | None = None) -> None:
-        """Score every kept event with both iterates (see :func:`_window_stats`; fills ``prm``'s weights).
-
-        With ``work`` given (a reader outside the check, perhaps on another thread) the ring is left
-        untouched: it must hold no unscaled rows then.
-        """
-        w_raw, prm[P_BRAW] = model.weights("raw")
-        w_avg, prm[P_BAVG] = model.weights("averaged")
-        prm[P_UNSCALED] = 0.0
-        if work is None:
-            work = self._work
-            if self._scaling.shape[0] == 0 and model.scaling_frozen:  # frozen once, for good
-                self._scaling = np.stack(model.scaling)
-            if self._unscaled and self._scaling.shape[0]:
-                prm[P_UNSCALED], self._unscaled = 1.0, False
-        _window_stats(self._idx, self._val, self._meta, self._count, w_raw, w_avg, self._scaling, prm, work, out)
 
 
 class Monitor:
@@ -380,11 +101,13 @@ class Monitor:
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
         self.cfg = cfg
+        #: rollback alarms raised while ``[monitor] rollback = false`` (reported, not acted on)
+        self.alarms_ignored = 0
         spec = model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self.window = HoldoutWindow(cfg.window)
         self._prm = np.zeros(N_PRM)
-        self._prm[P_CODE] = _LOSS_CODES[spec.loss]
+        self._prm[P_CODE] = LOSS_CODES[spec.loss]
         self._prm[P_DELTA] = spec.huber_delta
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
         self._absurd = math.inf if spec.loss == "logistic" else cfg.absurd_factor
@@ -505,6 +228,10 @@ class Monitor:
                 reason = (f"held-out loss of the raw iterate {raw:.4g} vs averaged {avg:.4g} (worse by more "
                           f"than {cfg.rollback_margin:.0%} plus its noise allowance {allowance:.3g} on "
                           f"{self._worse_streak} checks in a row)")
+        if reason and not cfg.rollback:
+            record["alarm"] = reason  # observed, not acted on: this config has rollbacks switched off
+            self.alarms_ignored += 1
+            reason = None
         if reason:
             model = self._rollback(model, event, ts, reason, by_loss, {
                 "holdout_raw": raw, "holdout_avg": avg, "distance": distance, "allowance": allowance,

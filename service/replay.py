@@ -186,6 +186,7 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "scored_only": engine.scored, "refused": engine.refused, "rejected": 0, "duplicates": 0,
         "progressive_loss": engine.progressive_loss, "holdout_loss": engine.holdout_losses(),
         "serving": engine.serving,
+        "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
         "rollbacks": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "rollback"],
         "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],
         "rejected_bursts": [{"event": i["event"], "reason": i["reason"]} for i in incidents
@@ -284,7 +285,10 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
     if report:
         from .report import write_report
 
-        return write_report(out, summary, results, notes)
+        # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
+        # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
+        with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
+            return pool.submit(write_report, out, summary, results, notes).result()
     return out / "summary.json"
 
 

@@ -56,7 +56,11 @@ def verdict(run: dict) -> str:
     if bursts:
         parts.append(f"{len(bursts)} burst{'s' if len(bursts) > 1 else ''} of rejected input "
                      f"(from event {bursts[0]['event']:,})")
-    if not rb and not rs:
+    ignored = run.get("alarms_ignored") or 0
+    if ignored:
+        parts.insert(0, f"not stable: {ignored:,} rollback alarm{'s' if ignored > 1 else ''} that this config "
+                        "does not act on (rollback = false)")
+    elif not rb and not rs:
         parts.insert(0, "stable: no rollbacks or restarts")
     parts.append(f"serving the {run.get('serving', 'averaged')} iterate")
     return "; ".join(parts)

@@ -42,4 +42,9 @@ def test_demo_report_shows_the_fault_and_the_change(tmp_path):
     assert took < 120
     assert during, "the guarded run did not roll back during the gateway fault"
     assert after, "the guarded run did not restart after the recalibration"
+    print(f"progressive loss outside the fault: guarded {g['progressive_loss_outside_fault']:.4g}, unguarded "
+          f"{u['progressive_loss_outside_fault']:.4g}; unguarded alarms not acted on: {u['alarms_ignored']}")
     assert u["progressive_loss"] > g["progressive_loss"], "the unguarded run's progressive loss is not worse"
+    assert u["progressive_loss_outside_fault"] > g["progressive_loss_outside_fault"]
+    assert u["holdout_loss"]["raw"] > g["holdout_loss"]["raw"]
+    assert u["alarms_ignored"] > 0 and u["verdict"].startswith("not stable")

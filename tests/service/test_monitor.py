@@ -25,7 +25,8 @@ from models import Outcome
 from models.losses import loss_value
 from service.config import ConfigError, config_from_dict
 from service.engine import Engine
-from service.monitor import ChangeDetector, _copy_model, sign_test_pvalue
+from service.drift import ChangeDetector, sign_test_pvalue
+from service.monitor import _copy_model
 
 from . import monitor_feeds as feeds
 
