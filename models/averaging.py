@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InvalidSettings
+from .errors import code_of
 
 __all__ = ["AVERAGING", "averaging_code", "online_weights"]
 
@@ -29,12 +29,7 @@ AVERAGING = {"uniform": 0, "weighted": 1, "exponential": 2}
 
 def averaging_code(name: str) -> int:
     """Kernel code of scheme ``name``; raise :class:`InvalidSettings` on unknown names."""
-    try:
-        return AVERAGING[name]
-    except KeyError:
-        valid = ", ".join(sorted(AVERAGING))
-        raise InvalidSettings(f"Invalid averaging scheme {name!r}. Valid values are: {valid}",
-                              where="averaging.scheme") from None
+    return code_of(AVERAGING, name, "averaging scheme", "averaging.scheme")
 
 
 def online_weights(name: str, t: int, halflife: float = 5000.0) -> np.ndarray:

@@ -13,7 +13,7 @@
 
 from __future__ import annotations
 
-__all__ = ["InvalidInput", "InvalidSettings", "NonFiniteInput", "SnapshotError", "TrimtabError"]
+__all__ = ["InvalidInput", "InvalidSettings", "NonFiniteInput", "SnapshotError", "TrimtabError", "code_of"]
 
 
 class TrimtabError(Exception):
@@ -42,3 +42,12 @@ class NonFiniteInput(InvalidInput):
 
 class SnapshotError(TrimtabError):
     """Serialized model state cannot be read back (truncated, corrupt, other version)."""
+
+
+def code_of(table: dict, name: str, what: str, where: str) -> int:
+    """``table[name]``, or :class:`InvalidSettings` naming the setting and its valid values."""
+    try:
+        return table[name]
+    except (KeyError, TypeError):
+        valid = ", ".join(sorted(table))
+        raise InvalidSettings(f"Invalid {what} {name!r}. Valid values are: {valid}", where=where) from None

@@ -35,7 +35,11 @@ __all__ = [
     "N_PARAMS",
     "N_SCALARS",
     "dense_process",
+    "iterate_distance",
     "lazy_process",
+    "lazy_rebase",
+    "materialize",
+    "point_loss",
     "score_rows",
 ]
 
@@ -109,21 +113,6 @@ def _step(prm, sc, t, gnorm):
         horizon = prm[P_HORIZON] if rule == 2 else t
         eta = prm[P_R] / (gnorm * math.sqrt(horizon))
     return eta * sc[S_STEPSCALE]
-
-
-@_jit
-def _gather(prm, mean, std, indices, values, lo, hi, xs):
-    """Scaled feature values of one event into ``xs``; returns ``sum x^2``."""
-    nnum = int(prm[P_NNUM])
-    sq = 0.0
-    for k in range(lo, hi):
-        j = indices[k]
-        x = values[k]
-        if j < nnum:
-            x = (x - mean[j]) / std[j]
-        xs[k - lo] = x
-        sq += x * x
-    return sq
 
 
 @_inline
@@ -420,9 +409,32 @@ def materialize(lazy, st, sc, iterate, out):
             out[j] = a * st[j, 0]
         return sc[S_B]
     if lazy:
+        # loaded once (the compiler cannot prove ``out`` is not ``sc``); a product by 1/Z instead of
+        # d divisions: the division bound the loop, and every reader of the average goes through here
+        big_a, inv_z = sc[S_ACC], 1.0 / sc[S_Z]
         for j in range(d):
-            out[j] = (st[j, 1] + sc[S_ACC] * st[j, 0]) / sc[S_Z]
-        return sc[S_SB] / sc[S_Z]
+            out[j] = (st[j, 1] + big_a * st[j, 0]) * inv_z
+        return sc[S_SB] * inv_z
     for j in range(d):
         out[j] = st[j, 1]
     return sc[S_SB]
+
+
+@_jit
+def iterate_distance(lazy, st, sc):
+    """``||(w_raw, b_raw) - (w_avg, b_avg)||`` in one pass, without building either vector."""
+    if sc[S_Z] <= 0.0:
+        return 0.0
+    d2 = 0.0
+    if lazy:
+        a, big_a, inv_z = sc[S_A], sc[S_ACC], 1.0 / sc[S_Z]
+        for j in range(st.shape[0]):
+            diff = a * st[j, 0] - (st[j, 1] + big_a * st[j, 0]) * inv_z
+            d2 += diff * diff
+        db = sc[S_B] - sc[S_SB] * inv_z
+    else:
+        for j in range(st.shape[0]):
+            diff = st[j, 0] - st[j, 1]
+            d2 += diff * diff
+        db = sc[S_B] - sc[S_SB]
+    return math.sqrt(d2 + db * db)

@@ -259,9 +259,7 @@ class LinearModel:
 
     def distance(self) -> float:
         """Euclidean distance between the raw and the averaged iterate (intercept included)."""
-        w, b = self.weights("raw")
-        a, c = self.weights("averaged")
-        return float(math.sqrt(np.dot(w - a, w - a) + (b - c) ** 2))
+        return float(K.iterate_distance(self._lazy, self._st, self._sc))
 
     def norm(self, iterate: str = "raw") -> float:
         w, b = self.weights(iterate)

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import InvalidSettings
+from .errors import code_of
 
 __all__ = ["LOSSES", "loss_code", "loss_derivative", "loss_value"]
 
@@ -27,11 +27,7 @@ LOSSES = {"squared": 0, "huber": 1, "logistic": 2}
 
 def loss_code(name: str) -> int:
     """Return the kernel code of loss ``name``; raise :class:`InvalidSettings` on unknown names."""
-    try:
-        return LOSSES[name]
-    except KeyError:
-        valid = ", ".join(sorted(LOSSES))
-        raise InvalidSettings(f"Invalid loss {name!r}. Valid values are: {valid}", where="model.loss") from None
+    return code_of(LOSSES, name, "loss", "model.loss")
 
 
 def loss_value(name: str, margin, target, delta: float = 1.0):

@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import math
 
-from .errors import InvalidSettings
+from .errors import InvalidSettings, code_of
 
 __all__ = ["STEP_RULES", "step_code", "step_size"]
 
@@ -36,11 +36,7 @@ STEP_RULES = {"constant": 0, "sqrt_decay": 1, "horizon": 2, "anytime": 3, "stron
 
 def step_code(name: str) -> int:
     """Kernel code of rule ``name``; raise :class:`InvalidSettings` on unknown names."""
-    try:
-        return STEP_RULES[name]
-    except KeyError:
-        valid = ", ".join(sorted(STEP_RULES))
-        raise InvalidSettings(f"Invalid step rule {name!r}. Valid values are: {valid}", where="steps.rule") from None
+    return code_of(STEP_RULES, name, "step rule", "steps.rule")
 
 
 def step_size(name: str, t: int, *, base: float = 0.05, radius: float | None = None, grad_bound: float | None = None,

@@ -170,20 +170,23 @@ def _parse_array(body: bytes, v: EventValidator, limit: int):
 
 
 async def _ingest(svc: Service, events: list[Event], payloads, rejected, where, *, note: bool = True,
-                  extra: dict | None = None, known: list | None = None) -> web.Response:
+                  extra: dict | None = None, known: list | None = None, reserved: int = 0) -> web.Response:
     """Queue valid events (and a note of the rejected ones), answer once they are journaled and applied.
 
-    ``known``: positions already known to be duplicates (labels for ids learned before).
+    ``known``: positions already known to be duplicates (labels for ids learned before);
+    ``reserved``: queue room claimed before parsing (see :meth:`Ingestor.reserve`).
     """
     ing = _ready(svc)
     total = len(events) + len(rejected)
     extra = extra or {}
     svc.metrics.events.labels("rejected").inc(len(rejected))
     if total == 0:
+        ing.release(reserved)
         return _json({"accepted": 0, "duplicates": known or [], "rejected": [], "seq": None,
                       "applied_seq": ing.applied_seq, **extra})
     rej = [r.as_dict() for r in rejected]
-    item = ing.submit(events, payloads, note=(len(rejected), total, time.time()) if (rejected and note) else None)
+    item = ing.submit(events, payloads, note=(len(rejected), total, time.time()) if (rejected and note) else None,
+                      reserved=reserved)
     receipt = await item.future
     dups = receipt.duplicates()
     svc.metrics.events.labels("accepted").inc(receipt.accepted)
@@ -200,17 +203,27 @@ async def _ingest(svc: Service, events: list[Event], payloads, rejected, where, 
 async def post_events(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     _auth(svc, request, write=True)
-    _ready(svc)
+    ing = _ready(svc)
     ctype = _content_type(request, ("application/json", "application/x-ndjson"))
     body = await request.read()
     limit = svc.config.service.max_batch
     if ctype == "application/x-ndjson":
-        if body.count(b"\n") + 1 > limit:
+        lines = body.count(b"\n") + 1
+        if lines > limit:
             _too_many(sum(1 for line in body.split(b"\n") if line.strip()), limit, "events")
-        parsed = await _off_loop(body, _parse_ndjson, body, svc.validator)
+        reserved = ing.reserve(min(lines, limit))
     else:
-        parsed = await _off_loop(body, _parse_array, body, svc.validator, limit)
-    return await _ingest(svc, *parsed)
+        # every event has a "features" key: counting them bounds the batch before parsing
+        reserved = ing.reserve(min(body.count(b'"features"'), limit))
+    try:
+        if ctype == "application/x-ndjson":
+            parsed = await _off_loop(body, _parse_ndjson, body, svc.validator)
+        else:
+            parsed = await _off_loop(body, _parse_array, body, svc.validator, limit)
+    except BaseException:
+        ing.release(reserved)
+        raise
+    return await _ingest(svc, *parsed, reserved=reserved)
 
 
 async def post_labels(request: web.Request) -> web.Response:

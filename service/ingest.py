@@ -145,17 +145,37 @@ class Ingestor:
         return ident in self._ids
 
     # ---------------------------------------------------------------- submitting
-    def submit(self, events: list[Event], payloads: list[bytes], note=None, action=None) -> Item:
-        """Queue one request's events; raises :class:`Overloaded` when the queue is full."""
+    def reserve(self, n: int) -> int:
+        """Claim room for ``n`` events *before* a body is parsed, so that refused requests cost no
+        parsing and parsed-but-unqueued events count against ``service.queue_limit`` too."""
         if not self.ready or self.stopping:
             raise NotReady("recovering from the journal" if not self.stopping else "shutting down", where="startup")
-        item = Item(events, payloads, note, action)
-        if self.queued_events + item.weight() > self._limit:
+        n = max(1, n)
+        if self.queued_events + n > self._limit:
             self.metrics.overloaded.inc()
             wait = max(1, math.ceil(self.queued_events / max(self._rate, 1.0)))
             raise Overloaded(f"ingest queue full ({self.queued_events} of {self._limit} events queued, "
-                             "service.queue_limit); retry later", retry_after=wait)
-        self.queued_events += item.weight()
+                             f"{n} more asked, service.queue_limit); retry later", retry_after=wait)
+        self.queued_events += n
+        return n
+
+    def release(self, n: int) -> None:
+        """Give back a reservation that did not become an item."""
+        self.queued_events -= n
+
+    def submit(self, events: list[Event], payloads: list[bytes], note=None, action=None, reserved: int = 0) -> Item:
+        """Queue one request's events (using a reservation if one was made); raises
+        :class:`Overloaded` when the queue is full."""
+        item = Item(events, payloads, note, action)
+        extra = item.weight() - reserved
+        if extra > 0:
+            try:
+                self.reserve(extra)
+            except Exception:
+                self.release(reserved)
+                raise
+        else:
+            self.queued_events += extra
         self._pending.append(item)
         self._wake.set()
         return item

@@ -120,9 +120,8 @@ class IngestResponse(BaseModel):
 
 
 class Version(BaseModel):
-    seq: int
-    updates: int
-    state_digest: str
+    seq: int = Field(description="journal position the model had applied when it scored")
+    updates: int = Field(description="SGD updates the model had made")
 
 
 class ScoreResponse(BaseModel):

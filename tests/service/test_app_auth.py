@@ -12,7 +12,6 @@ import pytest
 from service.app import _loopback, create_app
 from tests.service.servicekit import demo_events, make_config, wait_ready
 
-pytestmark = pytest.mark.asyncio
 TOKEN = "s3cret-token-for-tests"
 GOOD = {"Authorization": f"Bearer {TOKEN}"}
 WRITES = [("POST", "/v1/events"), ("POST", "/v1/labels"), ("POST", "/v1/model/rollback"), ("POST", "/v1/checkpoints")]
@@ -33,6 +32,7 @@ async def _call(client, method, path, headers=None):
     return await client.post(path, json=body, headers=headers)
 
 
+@pytest.mark.asyncio
 @pytest.mark.parametrize("token_for_reads", [False, True], ids=["reads-open", "reads-need-token"])
 async def test_token_guards_writes_and_optionally_reads(aiohttp_client, tmp_path, monkeypatch, token_for_reads):
     monkeypatch.setenv("TRIMTAB_TEST_TOKEN", TOKEN)
@@ -61,6 +61,7 @@ async def test_token_guards_writes_and_optionally_reads(aiohttp_client, tmp_path
         assert (await _call(client, method, path)).status == 200, path
 
 
+@pytest.mark.asyncio
 async def test_no_token_configured_means_open_writes(aiohttp_client, tmp_path, monkeypatch):
     monkeypatch.setenv("TRIMTAB_TEST_TOKEN", "")  # set but empty counts as no token
     client = await aiohttp_client(create_app(make_config(tmp_path)))
