@@ -152,7 +152,7 @@ class ServiceConfig(_Section):
     #: SQLite ``synchronous`` for the journal: "full" fsyncs every commit (an acknowledged event
     #: survives power loss); "normal" survives a process crash but not an OS crash or power loss
     journal_sync: Literal["full", "normal"] = "full"
-    #: events learned per turn of the event loop (scoring answers between turns)
+    #: events the learner applies per hold of the engine lock (a score waits at most one slice)
     apply_slice: int = Field(512, ge=1)
     #: events committed to the journal in one transaction at most
     chunk_events: int = Field(20_000, ge=1)

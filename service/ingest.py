@@ -13,10 +13,11 @@ Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its
 While the learner applies chunk k the committer is already committing chunk k+1; SQLite and the
 compiled kernels release the GIL while they work, so the stages overlap with each other and with
 the event loop. Mapping features (``Engine.prepare``) is pure and runs outside the engine lock; only
-``Engine.apply`` of one slice runs under it, and scoring takes the same lock for its few microseconds,
-so a score never sees a half-updated model and waits at most one slice. Recovery re-applies journal
-rows through the same code, in journal order; the engine gives the same state however events are
-chunked.
+``Engine.apply`` of one slice runs under it. After each slice the learner publishes a copy of the
+model (:func:`serving_view`, about 12 us); ``/v1/score`` scores that copy, so it never sees a
+half-updated model and never waits for the learner, not even for one slice. Recovery re-applies
+journal rows through the same code, in journal order; the engine gives the same state however
+events are chunked.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ from __future__ import annotations
 import asyncio
 import logging
 import math
+import os
 import threading
 import time
 from collections import deque
@@ -35,21 +37,20 @@ import orjson
 from .engine import Engine
 from .errors import JournalUnavailable, NotReady, Overloaded
 from .events import Event
-from .journal import EVENT, NOTE, ROLLBACK, Journal
+from .journal import NOTE, ROLLBACK, Journal
+from .recovery import encode_event, newest_good_checkpoint, replay_rows, serving_view
 
-__all__ = ["Ingestor", "Item", "Receipt", "encode_event"]
+__all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
 
 log = logging.getLogger("trimtab.service")
 
 
-def encode_event(e: Event) -> bytes:
-    """The journal payload of a validated event: ``[id, ts, features, target]`` as orjson."""
-    return orjson.dumps((e.id, e.ts, e.features, e.target))
-
-
-def _decode_event(payload: bytes) -> Event:
-    ident, ts, feats, target = orjson.loads(payload)
-    return Event(ident, ts, feats, target)
+def background_thread() -> None:
+    """Run this worker thread at a lower OS priority than the event loop's thread (Linux: a nice
+    value per thread), so that on a busy machine the loop, which answers scores, is scheduled first."""
+    if hasattr(os, "setpriority"):
+        with suppress(OSError):  # not permitted or not supported: run at the normal priority
+            os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 5)
 
 
 class Receipt:
@@ -97,24 +98,21 @@ class Ingestor:
 
     def __init__(self, config, journal: Journal, metrics) -> None:
         svc = config.service
-        self.config = config
-        self.journal = journal
-        self.metrics = metrics
+        self.config, self.journal, self.metrics = config, journal, metrics
         self.incidents: deque[dict] = deque(maxlen=1000)   # service incidents (the engine keeps its own)
         self.engine: Engine | None = None
-        self.ready = False
-        self.stopping = False
+        #: what /v1/score reads: see :func:`serving_view` (replaced whole, never changed in place)
+        self.view: tuple | None = None
+        self.ready = self.stopping = False
         self.recovery = {"state": "starting", "replayed": 0, "checkpoint": None}
-        self.applied_seq = 0
-        self.checkpoint_seq = 0
-        self.queued_events = 0
+        self.applied_seq = self.checkpoint_seq = self.queued_events = 0
         self._limit, self._slice, self._chunk = svc.queue_limit, svc.apply_slice, svc.chunk_events
         self._every, self._keep, self._prune = svc.checkpoint_every, svc.checkpoints_kept, svc.prune_journal
         self._pending: deque[Item] = deque()
         self._wake = asyncio.Event()
         self._committed: asyncio.Queue = asyncio.Queue(maxsize=2)
-        self._thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trimtab-journal")
-        self._learn_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trimtab-learner")
+        self._thread, self._learn_thread = (ThreadPoolExecutor(1, f"trimtab-{n}", background_thread)
+                                            for n in ("journal", "learner"))
         #: held while the engine changes (one slice at a time); readers of the model take it too
         self.lock = threading.Lock()
         self._ids: dict[str, int] = {}       # journal thread only: the deduplication index
@@ -252,6 +250,7 @@ class Ingestor:
             start = time.perf_counter()
             with self.lock:
                 engine.apply(batch)
+                self.view = serving_view(engine, self.applied_seq)
             took = time.perf_counter() - start
             self.metrics.apply_seconds.observe(took)
             if took > 0:
@@ -270,9 +269,10 @@ class Ingestor:
             with self.lock:
                 self.engine.rollback(it.action[1])
         last = r.extra_seq if r.extra_seq is not None else (r.seq_range() or [None, None])[1]
-        if last is not None:
-            with self.lock:  # the position always describes the engine state under the same lock
+        with self.lock:  # the position always describes the engine state under the same lock
+            if last is not None:
                 self.applied_seq = last
+            self.view = serving_view(self.engine, self.applied_seq)
         r.applied_seq = self.applied_seq
 
     async def _learner(self) -> None:
@@ -344,26 +344,9 @@ class Ingestor:
         ids = await self.db(self.journal.ids)
         self._ids = ids
         self._order = deque((s, k) for k, s in ids.items())
-        engine, pos = None, 0
-        for ck in await self.db(self.journal.checkpoints):
-            try:
-                seq, blob, ok = await self.db(self.journal.load_checkpoint, ck[0])
-            except Exception as exc:  # an unreadable row is as unusable as a corrupt blob
-                seq, blob, ok = ck[1], b"", False
-                log.error("checkpoint %d cannot be read: %s", ck[0], exc)
-            reason = None if ok else "its SHA-256 digest does not match (corrupt or truncated)"
-            if ok:
-                try:
-                    engine, pos = Engine.from_bytes(self.config, blob), seq
-                except Exception as exc:  # a blob that hashes right but cannot be read is just as unusable
-                    reason = f"it cannot be read: {exc}"
-            if engine is not None:
-                break
-            await self.db(self._incident, "corrupt_checkpoint",
-                          f"checkpoint {ck[0]} at journal position {seq} was skipped: {reason}; an older one "
-                          "(or an empty model) and a longer journal replay were used instead",
-                          {"checkpoint": ck[0], "seq": seq}, True)
+        engine, pos = await newest_good_checkpoint(self)
         self.engine = engine or Engine(self.config)
+        self.view = serving_view(self.engine, pos)
         self.checkpoint_seq = pos
         self.recovery["checkpoint"] = pos
         replayed, after = 0, pos
@@ -375,7 +358,7 @@ class Ingestor:
                 await self.db(self._incident, "history_incomplete",
                               f"no usable checkpoint and the journal starts at position {rows[0][0]}: the model "
                               "was rebuilt from the retained journal only", {"first_seq": rows[0][0]}, True)
-            await self.learn(self._replay, rows)
+            await self.learn(replay_rows, self, rows)
             replayed += len(rows)
             after = rows[-1][0]
             self.recovery["replayed"] = replayed
@@ -387,25 +370,6 @@ class Ingestor:
         self.ready = True
         log.info("recovered: checkpoint at position %d, %d journal rows re-applied, position %d",
                  pos, replayed, after)
-
-    def _replay(self, rows: list[tuple]) -> None:
-        """Learner thread: journal rows in order, through the same code as live items."""
-        events: list[Event] = []
-        for _seq, _id, kind, payload in rows:
-            if kind == EVENT:
-                events.append(_decode_event(payload))
-                continue
-            self.apply_events(events)
-            events = []
-            body = orjson.loads(payload)
-            with self.lock:
-                if kind == NOTE:
-                    self.engine.note_rejected(*body)
-                elif kind == ROLLBACK:
-                    self.engine.rollback(body["reason"])
-        self.apply_events(events)
-        with self.lock:
-            self.applied_seq = rows[-1][0]
 
     async def drain(self, timeout: float = 30.0) -> None:
         """Stop taking writes and wait until every queued item is applied."""

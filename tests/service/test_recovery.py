@@ -70,7 +70,7 @@ def test_sigkill_at_random_moments_loses_and_repeats_nothing(tmp_path):
             mode = plan.pop(k, None)
             if mode == "mid":
                 result: dict = {}
-                t = threading.Thread(target=lambda: result.update(_safe_post(server.url, batch, ndjson)))
+                t = threading.Thread(target=_safe_post, args=(server.url, batch, ndjson, result))
                 t.start()
                 time.sleep(rng.uniform(0.0, 0.02))
                 server.kill()
@@ -120,11 +120,12 @@ def test_sigkill_at_random_moments_loses_and_repeats_nothing(tmp_path):
         assert server.stop() == 0
 
 
-def _safe_post(url, batch, ndjson) -> dict:
+def _safe_post(url, batch, ndjson, result: dict) -> None:
+    """Post from a thread; a request cut off by the kill leaves ``result`` empty."""
     try:
-        return {"answer": _post(url, batch, ndjson)}
+        result["answer"] = _post(url, batch, ndjson)
     except (urllib.error.URLError, ConnectionError, OSError):
-        return {}
+        pass
 
 
 @pytest.mark.asyncio
