@@ -274,6 +274,12 @@ async def model_card(request: web.Request) -> web.Response:
         return _json(_card(svc, ing))
 
 
+#: shown on the model card: what the scores and the certificate are, and are not, good for
+CAUTION = ("Scores are decision support. The certificate bounds the expected suboptimality on a stationary "
+           "feed only; drift voids it. Where food or medicine temperatures, credit or safety are at stake, keep "
+           "the regulated instruments and procedures and follow local regulations and licensed practice.")
+
+
 def _card(svc: Service, ing: Ingestor) -> dict:
     eng = ing.engine
     m = eng.model
@@ -284,7 +290,8 @@ def _card(svc: Service, ing: Ingestor) -> dict:
         "step_scale": m.step_scale, "grad_bound": m.grad_bound, "certificate": m.certificate(),
         "holdout_loss": eng.holdout_losses(), "state_digest": eng.state_digest,
         "journal": {"applied_seq": ing.applied_seq, "checkpoint_seq": ing.checkpoint_seq},
-        "coefficients": {"raw": m.coefficients("raw"), "averaged": m.coefficients("averaged")}})
+        "coefficients": {"raw": m.coefficients("raw"), "averaged": m.coefficients("averaged")},
+        "caution": CAUTION})
 
 
 async def rollback(request: web.Request) -> web.Response:
