@@ -16,13 +16,14 @@ a bit-identical state, however they are chunked.
 
 from __future__ import annotations
 
+import hashlib
 import pickle
 from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
 
-from models import LinearModel, Outcome, Rows, stable_hash64
+from models import LinearModel, Outcome, Rows
 
 from .config import Config
 from .events import Event, EventValidator
@@ -33,9 +34,16 @@ __all__ = ["Applied", "Engine", "PreparedBatch", "holdout_fraction"]
 _TWO64 = float(2**64)
 
 
+#: BLAKE2b state after the prefix; copying it and adding the id gives ``stable_hash64("holdout\x1f" + id)``
+#: byte for byte (a hash is the same however its input is split) at about 2/3 of the cost
+_HOLDOUT_PREFIX = hashlib.blake2b(b"holdout\x1f", digest_size=8)
+
+
 def holdout_fraction(event_id: str) -> float:
     """A number in [0, 1) fixed by the id: events below ``holdout_share`` are held out."""
-    return stable_hash64("holdout\x1f" + event_id) / _TWO64
+    h = _HOLDOUT_PREFIX.copy()
+    h.update(event_id.encode("utf-8", "surrogatepass"))
+    return int.from_bytes(h.digest(), "little") / _TWO64
 
 
 @dataclass
