@@ -9,8 +9,9 @@ reason and every accepted value is what orjson would give:
 
 * a pre-scan (compiled, one pass over the bytes) sends to the validator every line that is over
   ``service.max_line_bytes``, does not start with ``{`` and end with ``}``, contains ``NaN`` or
-  ``Infinity`` (Arrow accepts those literals, JSON does not) or more than 64 ``{``/``[`` (orjson
-  limits nesting); blank lines are skipped as :func:`service.events.parse_ndjson` skips them;
+  ``Infinity`` (Arrow accepts those literals, JSON does not), more than 64 ``{``/``[`` (orjson
+  limits nesting) or a run of more than 15 digits (an integer past 2**53 that Arrow would read as a
+  double, where orjson keeps it exact); blank lines are skipped as :func:`service.events.parse_ndjson` skips them;
 * Arrow must give exactly one row per line, with only the known top-level keys and declared
   features; otherwise the chunk is bisected down to small pieces that go to the validator;
 * :func:`service.columns.from_arrow` flags the rows whose values it cannot vouch for.
@@ -48,6 +49,9 @@ def available() -> bool:
     except ImportError:
         return False
     return True
+
+
+_MAX_DIGITS = 15  # digits a double holds exactly, whatever parser reads them
 
 
 @numba.njit(cache=True, nogil=True)
@@ -93,8 +97,17 @@ def _scan(buf, max_line, starts, ends, flags, escaped):
         odd = False
         blank = True
         backslash = False
+        digits = 0
         while i < n and buf[i] != 10:
             c = buf[i]
+            # a run of over 15 digits may be an integer Arrow reads as a double (orjson keeps it
+            # exact): the validator decides such lines
+            if 48 <= c <= 57:
+                digits += 1
+                if digits > _MAX_DIGITS:
+                    odd = True
+            else:
+                digits = 0
             if not (c == 32 or c == 9 or c == 13):
                 if first < 0:
                     first = c
