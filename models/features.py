@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -60,13 +60,16 @@ class Rows:
     indptr: np.ndarray
     indices: np.ndarray
     values: np.ndarray
+    _width: int | None = field(default=None, repr=False, compare=False)
 
     def __len__(self) -> int:
         return self.indptr.shape[0] - 1
 
     def width(self) -> int:
-        """The largest number of active coordinates in one row."""
-        return int(np.max(np.diff(self.indptr))) if len(self) else 0
+        """The largest number of active coordinates in one row (computed once: rows are not changed)."""
+        if self._width is None:
+            self._width = int(np.max(np.diff(self.indptr))) if len(self) else 0
+        return self._width
 
     def take(self, idx) -> Rows:
         """The rows ``idx`` (an index array or slice), as a new :class:`Rows`."""

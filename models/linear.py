@@ -219,9 +219,9 @@ class LinearModel:
         return i
 
     def _run(self, rows, y, mode, serve_code, out, start, stop, max_learn):
-        """One call of the compiled kernel (scratch buffers grown to the widest row first)."""
+        """One call of the compiled kernel (scratch buffers grown to the batch's widest row first)."""
         ip = rows.indptr
-        width = int(np.max(ip[start + 1:stop + 1] - ip[start:stop])) if stop > start else 0
+        width = rows.width()  # of the whole batch, once: the engine calls this once per check segment
         if width > self._xs.shape[0]:
             self._xs = np.zeros(2 * width)
         if self._lazy and width > self._cand.shape[0]:
