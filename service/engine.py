@@ -27,6 +27,7 @@ from models import LinearModel, Outcome, Rows
 
 from .config import Config
 from .events import Event, EventValidator
+from .idhash import HOLDOUT_PREFIX
 from .monitor import Monitor
 
 __all__ = ["Applied", "Engine", "PreparedBatch", "holdout_fraction"]
@@ -36,12 +37,12 @@ _TWO64 = float(2**64)
 
 #: BLAKE2b state after the prefix; copying it and adding the id gives ``stable_hash64("holdout\x1f" + id)``
 #: byte for byte (a hash is the same however its input is split) at about 2/3 of the cost
-_HOLDOUT_PREFIX = hashlib.blake2b(b"holdout\x1f", digest_size=8)
+_HOLDOUT_STATE = hashlib.blake2b(HOLDOUT_PREFIX, digest_size=8)
 
 
 def holdout_fraction(event_id: str) -> float:
     """A number in [0, 1) fixed by the id: events below ``holdout_share`` are held out."""
-    h = _HOLDOUT_PREFIX.copy()
+    h = _HOLDOUT_STATE.copy()
     h.update(event_id.encode("utf-8", "surrogatepass"))
     return int.from_bytes(h.digest(), "little") / _TWO64
 

@@ -8,6 +8,7 @@ import gzip
 import os
 import re
 import signal
+import socket
 import subprocess
 import sys
 import threading
@@ -20,12 +21,20 @@ import orjson
 from service.app import create_app
 from service.config import config_from_dict
 
-__all__ = ["FEATURES", "ServeProcess", "ServerThread", "demo_events", "make_config", "toml_text", "wait_ready"]
+__all__ = ["FEATURES", "ServeProcess", "ServerThread", "demo_events", "free_port", "make_config", "toml_text",
+           "wait_ready"]
 
 ROOT = Path(__file__).resolve().parents[2]
 FEED = ROOT / "replay_data" / "coldchain-demo.ndjson.gz"
 FEATURES = {"numeric": ["ambient_c", "compressor_duty", "door_open_s", "load_kg"], "categorical": ["van", "route"],
             "hash_bits": 10, "scaling": "warmup", "warmup_events": 200}
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that the OS says is free now."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
 
 
 def make_config(data_dir, *, monitor: dict | None = None, **service):

@@ -11,7 +11,6 @@ from __future__ import annotations
 import asyncio
 import os
 import shutil
-import socket
 import subprocess
 import time
 
@@ -23,7 +22,7 @@ from service.config import config_from_dict
 from service.engine import Engine
 from service.events import EventValidator
 
-from .servicekit import FEATURES, demo_events, wait_ready
+from .servicekit import FEATURES, demo_events, free_port, wait_ready
 
 redis = pytest.importorskip("redis")
 
@@ -33,15 +32,9 @@ pytestmark = [pytest.mark.asyncio,
                                  reason="redis-server is not installed (.ci/run installs it)")]
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.fixture
 def redis_url(tmp_path):
-    port = _free_port()
+    port = free_port()
     proc = subprocess.Popen(["redis-server", "--port", str(port), "--bind", "127.0.0.1", "--save", "",
                              "--appendonly", "no", "--dir", str(tmp_path)],
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -27,16 +26,12 @@ from service.replay import run_replay
 from service.replay_client import replay_live
 from service.scenario import write_ndjson
 
+from .servicekit import free_port
+
 ROOT = Path(__file__).resolve().parents[2]
 GUARDED = ROOT / "replay_data" / "configs" / "guarded.toml"
 
 pytestmark = pytest.mark.asyncio
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def _serve(config: Path, data_dir: Path, port: int) -> subprocess.Popen:
@@ -68,7 +63,7 @@ async def test_live_replay_into_trimtab_serve_matches_the_offline_digest(tmp_pat
 
     feed = tmp_path / "feed.ndjson.gz"
     write_ndjson(feed, 20_000, seed=21)
-    port = _free_port()
+    port = free_port()
     proc = _serve(GUARDED, tmp_path / "data", port)
     try:
         _wait_ready(proc, port)

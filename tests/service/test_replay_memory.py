@@ -8,7 +8,6 @@ runs in a fresh interpreter started from this test, so only that replay counts.
 from __future__ import annotations
 
 import os
-import resource
 import subprocess
 import sys
 from pathlib import Path
