@@ -39,6 +39,7 @@ __all__ = [
     "lazy_process",
     "lazy_rebase",
     "materialize",
+    "pair_margins",
     "point_loss",
     "score_rows",
 ]
@@ -132,13 +133,21 @@ def _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs):
         sq += x * x
         dv += st[j, 0] * x
         da += st[j, 1] * x
+    raw, avg = pair_margins(lazy, sc, dv, da)
+    return raw, avg, sq, dv
+
+
+@_inline
+def pair_margins(lazy, sc, dv, da):
+    """The raw and averaged margins of an event from ``dv = <state[:, 0], x>`` and
+    ``da = <state[:, 1], x>`` (intercepts included), in either representation."""
     if lazy:
         raw = sc[S_A] * dv + sc[S_B]
         avg = (da + sc[S_ACC] * dv + sc[S_SB]) / sc[S_Z] if sc[S_Z] > 0.0 else raw
     else:
         raw = dv + sc[S_B]
         avg = da + sc[S_SB] if sc[S_Z] > 0.0 else raw
-    return raw, avg, sq, dv
+    return raw, avg
 
 
 @_inline

@@ -90,6 +90,12 @@ class LinearModel:
     def dim(self) -> int:
         return self._st.shape[0]
 
+    def kernel_state(self) -> tuple[bool, np.ndarray, np.ndarray]:
+        """``(lazy, state, scalars)``: the learned arrays themselves (not copies), for compiled
+        readers that score many rows with both iterates without building either vector (see
+        ``kernels.pair_margins``). Callers must not write to them."""
+        return self._lazy, self._st, self._sc
+
     @property
     def n_updates(self) -> int:
         """Updates applied since the model was created."""

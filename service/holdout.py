@@ -4,6 +4,10 @@ A check scores every kept event with the raw and the averaged iterate in one pas
 (no per-check Python loop over events): mean losses of both iterates (events whose loss under both
 exceeds a cut are left out: garbage targets), the median averaged-iterate loss, the same figures on
 the newest events, and the distance between the iterates. ``Monitor`` (``monitor.py``) reads them.
+
+The window reads the model's learned arrays directly (``LinearModel.kernel_state``): neither
+iterate is built as a vector, and numeric features sit in a dense block (one row per feature) whose
+product with the coefficients is a plain vector loop; only categorical buckets are gathered.
 """
 
 from __future__ import annotations
@@ -14,7 +18,7 @@ import numba
 import numpy as np
 
 from models import LinearModel, Rows
-from models.kernels import point_loss
+from models.kernels import S_A, S_ACC, S_B, S_SB, S_Z, iterate_distance, point_loss
 
 __all__ = ["HoldoutWindow", "LOSS_CODES", "N_PRM", "N_STATS"]
 
@@ -22,100 +26,129 @@ LOSS_CODES = {"squared": 0, "huber": 1, "logistic": 2}
 # layouts of the arrays the compiled passes share: statistics out, scalars in, per-slot metadata
 (ST_MEDIAN, ST_RAW, ST_AVG, ST_KEPT, ST_NEW, ST_NEW_ABOVE, ST_REC_RAW, ST_REC_AVG, ST_REC_N, ST_DIST,
  N_STATS) = range(11)
-P_BRAW, P_BAVG, P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, N_PRM = range(9)
-M_LEN, M_Y, M_EVENT, M_SCALED, N_META = range(5)
+P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, N_PRM = range(7)
+M_Y, M_EVENT, M_SCALED, N_META = range(4)
 
-_jit = numba.njit(cache=True, nogil=True)
+_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 _loss = point_loss  # the kernels' own per-event loss, so window and progressive losses agree
 _NO_EVENTS = np.zeros(0, dtype=np.int64)
 
 
 @_jit
-def _put(idx, val, meta, nxt, indptr, indices, values, mode, y, events, lo, hi, first, scaling):
+def _put(num, idx, val, meta, nxt, indptr, indices, values, mode, y, events, lo, hi, first, scaling):
     """Keep the rows ``r`` in ``lo..hi`` with ``mode[r] == 2`` in the ring from slot ``nxt`` on
-    (event index ``events[r]``, or ``first + r`` when ``events`` is empty), scaled when ``scaling``
-    is known. Return ``(next slot, rows kept)``, or ``(-width, 0)`` when a row is wider than the
-    ring (nothing is kept then)."""
+    (event index ``events[r]``, or ``first + r`` when ``events`` is empty). Numeric features go to
+    ``num[j, slot]`` (scaled when ``scaling`` is known; a missing one is 0 then, NaN until then),
+    the others to the padded ``idx`` / ``val`` positions. Return ``(next slot, rows kept)``, or
+    ``(-width, 0)`` when a row has more categorical entries than the ring is wide (nothing is
+    kept then)."""
     width, size = idx.shape
-    nnum = scaling.shape[1] if scaling.shape[0] == 2 else -1
+    nnum = num.shape[0]
+    scaled = scaling.shape[0] == 2
     for r in range(lo, hi):
-        if mode[r] == 2 and indptr[r + 1] - indptr[r] > width:
-            return -(indptr[r + 1] - indptr[r]), 0
+        if mode[r] == 2:
+            wide = 0
+            for k in range(indptr[r], indptr[r + 1]):
+                if indices[k] >= nnum:
+                    wide += 1
+            if wide > width:
+                return -wide, 0
     kept = 0
+    missing = 0.0 if scaled else math.nan
     for r in range(lo, hi):
         if mode[r] != 2:
             continue
-        a, b = indptr[r], indptr[r + 1]
-        for p in range(width):
-            j = indices[a + p] if p < b - a else 0
-            x = values[a + p] if p < b - a else 0.0
-            if p < b - a and j < nnum:
-                x = (x - scaling[0, j]) / scaling[1, j]
-            idx[p, nxt] = j
-            val[p, nxt] = x
-        meta[M_LEN, nxt] = b - a
+        for j in range(nnum):
+            num[j, nxt] = missing
+        p = 0
+        for k in range(indptr[r], indptr[r + 1]):
+            j = indices[k]
+            x = values[k]
+            if j < nnum:
+                num[j, nxt] = (x - scaling[0, j]) / scaling[1, j] if scaled else x
+            else:
+                idx[p, nxt] = j
+                val[p, nxt] = x
+                p += 1
+        for q in range(p, width):
+            idx[q, nxt] = 0
+            val[q, nxt] = 0.0
         meta[M_Y, nxt] = y[r]
         meta[M_EVENT, nxt] = events[r] if events.shape[0] else first + r
-        meta[M_SCALED, nxt] = 1.0 if nnum >= 0 else 0.0
+        meta[M_SCALED, nxt] = 1.0 if scaled else 0.0
         nxt = (nxt + 1) % size
         kept += 1
     return nxt, kept
 
 
 @_jit
-def _window_stats(idx, val, meta, n, w_raw, w_avg, scaling, prm, work, out):
-    """Score the ``n`` kept events with both iterates and fill ``out`` (layout ``ST_*``).
+def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out):
+    """Score the ``n`` kept events with both iterates of the model whose learned arrays are
+    ``state`` / ``sc`` (``lazy`` representation or not) and fill ``out`` (layout ``ST_*``).
 
     ``scaling`` holds the frozen numeric means and standard deviations (or is empty before they
     are frozen); ``prm`` the scalars (layout ``P_*``; the absurd-loss cut comes from the previous
-    check's median, one pass fewer); ``work`` rows: raw loss, averaged loss, scratch.
+    check's median, one pass fewer); ``work`` rows: raw loss, averaged loss, scratch. Each stage
+    is a loop over the window on its own (the dense block and the loss loop vectorize).
     """
-    b_raw, b_avg, code, delta = prm[P_BRAW], prm[P_BAVG], int(prm[P_CODE]), prm[P_DELTA]
+    code, delta = int(prm[P_CODE]), prm[P_DELTA]
     last_event, recent_from, cut = prm[P_LAST], prm[P_RECENT], prm[P_CUT]
-    nnum = scaling.shape[1]
-    loss_raw, loss_avg, scratch = work[0], work[1], work[2]
-    if prm[P_UNSCALED] > 0.0 and scaling.shape[0] == 2:  # rows kept before the scaling froze, once
+    y, events = meta[M_Y], meta[M_EVENT]
+    nnum = num.shape[0]
+    dv, da, scratch = work[0], work[1], work[2]
+    frozen = scaling.shape[0] == 2
+    if prm[P_UNSCALED] > 0.0 and frozen:  # rows kept before the scaling froze, once
         for i in range(n):
             if meta[M_SCALED, i] == 0.0:
-                for p in range(int(meta[M_LEN, i])):
-                    j = idx[p, i]
-                    if j < nnum:
-                        val[p, i] = (val[p, i] - scaling[0, j]) / scaling[1, j]
+                for j in range(nnum):
+                    x = num[j, i]
+                    num[j, i] = 0.0 if math.isnan(x) else (x - scaling[0, j]) / scaling[1, j]
                 meta[M_SCALED, i] = 1.0
-    width = idx.shape[0]
-    i = 0
-    while i + 4 <= n:  # four rows at a time: independent sums keep the pipeline full (padding adds 0)
-        r0 = r1 = r2 = r3 = b_raw
-        a0 = a1 = a2 = a3 = b_avg
-        for p in range(width):
-            j0, j1, j2, j3 = idx[p, i], idx[p, i + 1], idx[p, i + 2], idx[p, i + 3]
-            x0, x1, x2, x3 = val[p, i], val[p, i + 1], val[p, i + 2], val[p, i + 3]
-            r0 += w_raw[j0] * x0
-            r1 += w_raw[j1] * x1
-            r2 += w_raw[j2] * x2
-            r3 += w_raw[j3] * x3
-            a0 += w_avg[j0] * x0
-            a1 += w_avg[j1] * x1
-            a2 += w_avg[j2] * x2
-            a3 += w_avg[j3] * x3
-        loss_raw[i], loss_raw[i + 1], loss_raw[i + 2], loss_raw[i + 3] = r0, r1, r2, r3
-        loss_avg[i], loss_avg[i + 1], loss_avg[i + 2], loss_avg[i + 3] = a0, a1, a2, a3
-        i += 4
-    for i in range(i, n):
-        r0, a0 = b_raw, b_avg
-        for p in range(width):
-            r0 += w_raw[idx[p, i]] * val[p, i]
-            a0 += w_avg[idx[p, i]] * val[p, i]
-        loss_raw[i], loss_avg[i] = r0, a0
-    for s in range(N_STATS):
-        out[s] = 0.0
+    # <state[:, 0], x> and <state[:, 1], x> of every event: the dense numeric block first
+    for i in range(n):
+        dv[i] = 0.0
+        da[i] = 0.0
+    for j in range(nnum):
+        wv, wu, x = state[j, 0], state[j, 1], num[j]
+        if frozen:
+            for i in range(n):
+                dv[i] += x[i] * wv
+                da[i] += x[i] * wu
+        else:  # before the scaling froze (nothing learned yet): a missing value is NaN
+            for i in range(n):
+                if not math.isnan(x[i]):
+                    dv[i] += x[i] * wv
+                    da[i] += x[i] * wu
+    for p in range(idx.shape[0]):  # then the categorical buckets, gathered (padding adds 0)
+        ip, vp = idx[p], val[p]
+        for i in range(n):
+            j, x = ip[i], vp[i]
+            dv[i] += state[j, 0] * x
+            da[i] += state[j, 1] * x
+    # margins (``pair_margins`` as an affine map: raw = ar dv + br, avg = (ua da + aa dv + ba) ia), losses
+    ar = sc[S_A] if lazy else 1.0
+    br = sc[S_B]
+    if sc[S_Z] > 0.0:
+        ia = 1.0 / sc[S_Z] if lazy else 1.0
+        ua, aa, ba = 1.0, (sc[S_ACC] if lazy else 0.0), sc[S_SB]
+    else:  # nothing averaged yet: the average is the raw iterate
+        ia, ua, aa, ba = 1.0, 0.0, ar, br
+    if code == 0:
+        for i in range(n):
+            r = ar * dv[i] + br - y[i]
+            a = (ua * da[i] + aa * dv[i] + ba) * ia - y[i]
+            dv[i] = 0.5 * r * r  # the rows become the per-event losses
+            da[i] = 0.5 * a * a
+    else:
+        for i in range(n):
+            m_raw = ar * dv[i] + br
+            m_avg = (ua * da[i] + aa * dv[i] + ba) * ia
+            dv[i] = _loss(code, delta, m_raw, y[i])
+            da[i] = _loss(code, delta, m_avg, y[i])
+    s_raw = s_avg = kept = r_raw = r_avg = r_n = 0.0
     k_old = k_new = 0
     for i in range(n):
-        lr = _loss(code, delta, loss_raw[i], meta[M_Y, i])
-        la = _loss(code, delta, loss_avg[i], meta[M_Y, i])
-        loss_raw[i] = lr
-        loss_avg[i] = la
-        ev = meta[M_EVENT, i]
+        lr, la, ev = dv[i], da[i], events[i]
         if ev > last_event:
             scratch[n - 1 - k_new] = la  # new events from the top, a sample of the older ones from the bottom
             k_new += 1
@@ -126,34 +159,41 @@ def _window_stats(idx, val, meta, n, w_raw, w_avg, scaling, prm, work, out):
             k_old += 1
         if lr > cut and la > cut:
             continue
-        out[ST_RAW] += lr
-        out[ST_AVG] += la
-        out[ST_KEPT] += 1.0
+        s_raw += lr
+        s_avg += la
+        kept += 1.0
         if ev > recent_from:
-            out[ST_REC_RAW] += lr
-            out[ST_REC_AVG] += la
-            out[ST_REC_N] += 1.0
+            r_raw += lr
+            r_avg += la
+            r_n += 1.0
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
-    out[ST_MEDIAN] = med
-    out[ST_NEW] = k_new
+    above = 0.0
     for k in range(n - k_new, n):
         if scratch[k] > med:
-            out[ST_NEW_ABOVE] += 1.0
-    d2 = (b_raw - b_avg) ** 2
-    for j in range(w_raw.shape[0]):
-        d2 += (w_raw[j] - w_avg[j]) ** 2
-    out[ST_DIST] = math.sqrt(d2)
+            above += 1.0
+    out[ST_MEDIAN], out[ST_RAW], out[ST_AVG], out[ST_KEPT] = med, s_raw, s_avg, kept
+    out[ST_NEW], out[ST_NEW_ABOVE], out[ST_REC_RAW], out[ST_REC_AVG], out[ST_REC_N] = k_new, above, r_raw, r_avg, r_n
+    out[ST_DIST] = iterate_distance(lazy, state, sc)
 
 
 class HoldoutWindow:
-    """The newest ``size`` held-out events as a ring of padded rows, scored by a compiled pass.
+    """The newest ``size`` held-out events as a ring of slots, scored by a compiled pass.
 
-    Rows are stored position-major (``idx[p, slot]``) with their numeric values scaled once the
-    model's warm-up scaling is frozen, so that scoring is a plain sparse product.
+    A slot holds an event's numeric features in a dense block (``num[j, slot]``) and its other
+    coordinates position-major (``idx[p, slot]``), numeric values scaled once the model's warm-up
+    scaling is frozen, so that scoring is a plain product.
+
+    Parameters
+    ----------
+    size
+        Events kept (the newest).
+    n_numeric
+        Coordinates ``0 .. n_numeric - 1`` are numeric features (the model's layout).
     """
 
-    def __init__(self, size: int, width: int = 1) -> None:
+    def __init__(self, size: int, n_numeric: int = 0, width: int = 1) -> None:
         self.size = size
+        self._num = np.zeros((n_numeric, size))
         self._idx = np.zeros((width, size), dtype=np.int32)
         self._val = np.zeros((width, size))
         self._meta = np.zeros((N_META, size))
@@ -193,12 +233,12 @@ class HoldoutWindow:
         """Keep the rows ``start..stop`` of ``rows`` whose ``mode`` is 2 (held out), with targets ``y``
         and event indices ``events`` (or ``first`` + row), all indexed by row."""
         events = _NO_EVENTS if events is None else events
-        args = (rows.indptr, rows.indices, rows.values, mode, y, events, start, stop, first)
-        nxt, kept = _put(self._idx, self._val, self._meta, self._next, *args, self._scaling)
+        args = (rows.indptr, rows.indices, rows.values, mode, y, events, start, stop, first, self._scaling)
+        nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._next, *args)
         if nxt < 0:  # a wider row than any before: widen the ring (rare) and copy again
             grow = ((0, -nxt - self._idx.shape[0]), (0, 0))
             self._idx, self._val = np.pad(self._idx, grow), np.pad(self._val, grow)
-            nxt, kept = _put(self._idx, self._val, self._meta, self._next, *args, self._scaling)
+            nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._next, *args)
         if kept and self._scaling.shape[0] == 0:
             self._unscaled = True
         self._next = nxt
@@ -209,7 +249,7 @@ class HoldoutWindow:
         order = np.arange(self._count) if self._count < self.size else (np.arange(self.size) + self._next) % self.size
         keep = order[self._meta[M_EVENT, order] >= event]
         k = len(keep)
-        for name in ("_idx", "_val", "_meta", "_work"):
+        for name in ("_num", "_idx", "_val", "_meta", "_work"):
             old = getattr(self, name)
             new = np.zeros_like(old)
             new[:, :k] = old[:, keep]
@@ -217,13 +257,11 @@ class HoldoutWindow:
         self._count, self._next = k, k % self.size
 
     def stats(self, model: LinearModel, prm: np.ndarray, out: np.ndarray, work: np.ndarray | None = None) -> None:
-        """Score every kept event with both iterates (see :func:`_window_stats`; fills ``prm``'s weights).
+        """Score every kept event with both iterates of ``model`` (see :func:`_window_stats`).
 
         With ``work`` given (a reader outside the check, perhaps on another thread) the ring is left
         untouched: it must hold no unscaled rows then.
         """
-        w_raw, prm[P_BRAW] = model.weights("raw")
-        w_avg, prm[P_BAVG] = model.weights("averaged")
         prm[P_UNSCALED] = 0.0
         if work is None:
             work = self._work
@@ -231,6 +269,6 @@ class HoldoutWindow:
                 self._scaling = np.stack(model.scaling)
             if self._unscaled and self._scaling.shape[0]:
                 prm[P_UNSCALED], self._unscaled = 1.0, False
-        _window_stats(self._idx, self._val, self._meta, self._count, w_raw, w_avg, self._scaling, prm, work, out)
-
-
+        lazy, state, sc = model.kernel_state()
+        _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
+                      prm, work, out)

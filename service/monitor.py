@@ -105,7 +105,7 @@ class Monitor:
         self.alarms_ignored = 0
         spec = model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
-        self.window = HoldoutWindow(cfg.window)
+        self.window = HoldoutWindow(cfg.window, len(spec.numeric))
         self._prm = np.zeros(N_PRM)
         self._prm[P_CODE] = LOSS_CODES[spec.loss]
         self._prm[P_DELTA] = spec.huber_delta
@@ -194,16 +194,19 @@ class Monitor:
 
     def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
         """Evaluate both iterates on the window, act if needed; return the check's record."""
-        cfg, st, prm, bounds = self.cfg, self._stats, self._prm, self._bounds
+        cfg, prm, bounds = self.cfg, self._prm, self._bounds
         prm[P_LAST] = bounds[-1]
         prm[P_RECENT] = bounds[-min(cfg.rollback_patience, len(bounds))]
-        self.window.stats(model, prm, st)
-        if st[ST_MEDIAN] > 0:
-            prm[P_CUT] = self._absurd * st[ST_MEDIAN]
+        self.window.stats(model, prm, self._stats)
+        # Python floats from here on (arithmetic on numpy scalars costs several times more)
+        st = self._stats.tolist()
+        median = st[ST_MEDIAN]
+        if median > 0:
+            prm[P_CUT] = self._absurd * median
         n, kept = len(self.window), int(st[ST_KEPT])
         raw = st[ST_RAW] / kept if kept else math.nan
         avg = st[ST_AVG] / kept if kept else math.nan
-        distance = float(st[ST_DIST])
+        distance = st[ST_DIST]
         g = model.grad_bound
         if g is not None and 0 < g * g < self._g2:
             self._g2 = g * g
@@ -274,7 +277,7 @@ class Monitor:
         model, self._restored = self._restored, None
         return model
 
-    def _drift(self, model: LinearModel, st: np.ndarray, event: int, ts, record: dict) -> None:
+    def _drift(self, model: LinearModel, st: list, event: int, ts, record: dict) -> None:
         if self._alarm_event is None:
             old = len(self.window) - st[ST_NEW]
             if st[ST_NEW] > 0 and old >= 10 and st[ST_MEDIAN] > 0:

@@ -97,6 +97,34 @@ def test_window_losses_are_the_models_losses(loss):
         assert got[key] == pytest.approx(want, rel=1e-9)
 
 
+@pytest.mark.parametrize("kernel", ["lazy", "dense"])
+def test_window_losses_with_missing_features_and_early_rows(kernel):
+    """Events with missing numeric features, some held out before the warm-up scaling froze (kept
+    unscaled, scaled at the first check after): the window still scores like ``score_rows``. (A
+    missing feature makes some losses large: no event is left out as absurd here.)"""
+    cfg = config_from_dict({**feeds.config_dict(absurd_factor=1e12), "model": {"kernel": kernel}})
+    eng = Engine(cfg)
+    s = feeds.stream(6_000, 5)
+    evs = feeds.events(s)
+    rng = np.random.default_rng(17)
+    for e, drop in zip(evs, rng.random((len(evs), 3)) < 0.2):
+        for name, gone in zip(feeds.NUMERIC, drop):
+            if gone:
+                del e.features[name]
+    b = eng.prepare(evs)
+    held = np.flatnonzero(b.mode == 2)
+    assert held[0] < cfg.features.warmup_events  # some were kept before the scaling froze
+    eng.apply(b)
+    held = held[-cfg.monitor.window:]
+    rows = b.rows.take(held)
+    assert np.count_nonzero(np.diff(rows.indptr) < 4) > 50  # rows with a missing feature
+    got = eng.holdout_losses()
+    assert eng.trace[-1]["excluded"] == 0
+    for it in ("raw", "averaged"):
+        want = np.mean(loss_value("squared", eng.model.score_rows(rows, it), b.y[held]))
+        assert got[it] == pytest.approx(want, rel=1e-9)
+
+
 def test_sign_test_matches_scipy():
     """The confirmation's sign test is the exact one-sided binomial test (scipy.stats.binomtest)."""
     for above, n in ((0, 10), (8, 10), (40, 52), (61, 66), (30, 60)):
