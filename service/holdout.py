@@ -26,7 +26,7 @@ LOSS_CODES = {"squared": 0, "huber": 1, "logistic": 2}
 # layouts of the arrays the compiled passes share: statistics out, scalars in, per-slot metadata
 (ST_MEDIAN, ST_RAW, ST_AVG, ST_KEPT, ST_NEW, ST_NEW_ABOVE, ST_REC_RAW, ST_REC_AVG, ST_REC_N, ST_DIST,
  N_STATS) = range(11)
-P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, N_PRM = range(7)
+P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, P_NEXT, N_PRM = range(8)
 M_Y, M_EVENT, M_SCALED, N_META = range(4)
 
 _jit = numba.njit(cache=True, nogil=True, error_model="numpy")
@@ -145,27 +145,39 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
             m_avg = (ua * da[i] + aa * dv[i] + ba) * ia
             dv[i] = _loss(code, delta, m_raw, y[i])
             da[i] = _loss(code, delta, m_avg, y[i])
-    s_raw = s_avg = kept = r_raw = r_avg = r_n = 0.0
-    k_old = k_new = 0
+    # sums over the events not left out as absurd (selects, no branches: one pass)
+    s_raw = s_avg = 0.0
+    kept = 0
     for i in range(n):
-        lr, la, ev = dv[i], da[i], events[i]
-        if ev > last_event:
-            scratch[n - 1 - k_new] = la  # new events from the top, a sample of the older ones from the bottom
-            k_new += 1
-        elif i % 4 == 0:
-            # a new event exceeds the median of any sample of the older events with probability 1/2
-            # just the same; every 4th costs a quarter of the work
-            scratch[k_old] = la
-            k_old += 1
-        if lr > cut and la > cut:
-            continue
-        s_raw += lr
-        s_avg += la
-        kept += 1.0
-        if ev > recent_from:
-            r_raw += lr
-            r_avg += la
+        keep = not (dv[i] > cut and da[i] > cut)
+        s_raw += dv[i] if keep else 0.0
+        s_avg += da[i] if keep else 0.0
+        kept += keep
+    # slots in arrival order start at ``oldest``; the newest events (held out since the last check,
+    # and since the check ``recent_from``) are a suffix of that order: walk back from the newest
+    size = dv.shape[0]
+    oldest = (int(prm[P_NEXT]) - n) % size
+    k_new = 0
+    while k_new < n and events[(oldest + n - 1 - k_new) % size] > last_event:
+        slot = (oldest + n - 1 - k_new) % size
+        scratch[n - 1 - k_new] = da[slot]  # new events from the top, a sample of the older ones from the bottom
+        k_new += 1
+    r_raw = r_avg = r_n = 0.0
+    k = 0
+    while k < n and events[(oldest + n - 1 - k) % size] > recent_from:
+        slot = (oldest + n - 1 - k) % size
+        if not (dv[slot] > cut and da[slot] > cut):
+            r_raw += dv[slot]
+            r_avg += da[slot]
             r_n += 1.0
+        k += 1
+    # a new event exceeds the median of any sample of the older events with probability 1/2 just
+    # the same; every 4th slot costs a quarter of the work
+    k_old = 0
+    for i in range(0, n, 4):
+        if events[i] <= last_event:
+            scratch[k_old] = da[i]
+            k_old += 1
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
     for k in range(n - k_new, n):
@@ -263,6 +275,7 @@ class HoldoutWindow:
         untouched: it must hold no unscaled rows then.
         """
         prm[P_UNSCALED] = 0.0
+        prm[P_NEXT] = self._next
         if work is None:
             work = self._work
             if self._scaling.shape[0] == 0 and model.scaling_frozen:  # frozen once, for good

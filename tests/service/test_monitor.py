@@ -366,4 +366,6 @@ def test_overhead_benchmark_reports_its_ratio():
 
     result = measure_monitor_overhead(n_events=24_000, repeats=1, prepare_events=4_000, prepare_repeats=1)
     assert result["monitor_overhead"] > 0 and math.isfinite(result["monitor_overhead"])
+    assert result["monitor_overhead_q1"] <= result["monitor_overhead"] <= result["monitor_overhead_q3"]
+    assert result["pairs"] == 3  # 5 batches of 5,000, the first 2 not paired (the window still filling)
     assert result["checks"] == pytest.approx(24_000 * 0.95 / 250, abs=3)
