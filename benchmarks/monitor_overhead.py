@@ -43,8 +43,8 @@ __all__ = ["measure_monitor_overhead"]
 _FEATURES = {"numeric": list(scenario.NUMERIC), "categorical": list(scenario.CATEGORICAL)}
 
 
-def _config(enabled: bool):
-    return config_from_dict({"name": "overhead", "features": _FEATURES, "monitor": {"enabled": enabled}})
+def _config(enabled: bool, **monitor):
+    return config_from_dict({"name": "overhead", "features": _FEATURES, "monitor": {"enabled": enabled, **monitor}})
 
 
 def _events(config, n_events: int, seed: int) -> list:
@@ -61,12 +61,13 @@ def _apply(config, batches) -> tuple[float, Engine]:
     return time.process_time() - start, engine
 
 
-def _paired(work: dict, n_batches: int, skip: int, repeats: int) -> tuple[list, dict]:
+def _paired(work: dict, n_batches: int, skip: int, repeats: int, **monitor) -> tuple[list, dict]:
     """Run ``work[on](state, k)`` for batches ``k``, the monitored and the plain engine taking
-    turns; return the per-batch ratios (batches from ``skip`` on) and the CPU seconds per side."""
+    turns (both with the ``[monitor]`` settings ``monitor``); return the per-batch ratios (batches
+    from ``skip`` on) and the CPU seconds per side."""
     ratios, seconds = [], {True: 0.0, False: 0.0}
     for _ in range(repeats):
-        state = {on: Engine(_config(on)) for on in (True, False)}
+        state = {on: Engine(_config(on, **monitor)) for on in (True, False)}
         for k in range(n_batches):
             t = {}
             for on in ((True, False) if k % 2 == 0 else (False, True)):
@@ -86,14 +87,15 @@ def _median_quartiles(xs: list) -> tuple[float, float, float]:
 
 
 def measure_monitor_overhead(n_events: int = 200_000, repeats: int = 5, batch: int = 5_000, seed: int = 3,
-                             prepare_events: int = 60_000, prepare_repeats: int = 3) -> dict:
+                             prepare_events: int = 60_000, prepare_repeats: int = 3,
+                             settings_grid: tuple = ((2000, 500), (1000, 250), (500, 250))) -> dict:
     """Per-event cost with the monitor on (defaults) and off, and their ratios.
 
     Returns ``{"monitor_overhead": median paired ratio (apply only, steady state),
     "monitor_overhead_q1"/"_q3": its quartiles, "monitor_overhead_with_prepare": ...,
     "monitor_overhead_total": ..., "us_per_event_on": ..., "us_per_event_off": ..., "pairs": ...,
-    "events": ..., "checks": ..., "rollbacks": ..., "restarts": ...}`` (microseconds of process
-    CPU time per event, steady state).
+    "events": ..., "checks": ..., "rollbacks": ..., "restarts": ..., "settings": {"window=W,check_every=C":
+    median paired ratio}}`` (microseconds of process CPU time per event, steady state).
     """
     cfg = {True: _config(True), False: _config(False)}
     events = _events(cfg[True], max(n_events, prepare_events), seed)
@@ -119,6 +121,13 @@ def measure_monitor_overhead(n_events: int = 200_000, repeats: int = 5, batch: i
             best[on] = min(best[on], t)
             engine_on = engine if on else engine_on
     med, q1, q3 = _median_quartiles(ratios)
+    # the cost scales with window / check_every (held-out events scored per learned event): the
+    # same measurement at other settings, for choosing them (not the goal's figure)
+    settings = {}
+    for window, check_every in settings_grid:
+        r, _ = _paired({on: (lambda eng, k, on=on: eng.apply(batches[on][k])) for on in (True, False)},
+                       n_batches, skip, max(1, repeats // 2), window=window, check_every=check_every)
+        settings[f"window={window},check_every={check_every}"] = statistics.median(r)
     kinds = [i["kind"] for i in engine_on.incidents]
     return {"monitor_overhead": med, "monitor_overhead_q1": q1, "monitor_overhead_q3": q3,
             "monitor_overhead_with_prepare": statistics.median(prep_ratios),
@@ -126,7 +135,7 @@ def measure_monitor_overhead(n_events: int = 200_000, repeats: int = 5, batch: i
             "us_per_event_on": seconds[True] / timed_events * 1e6,
             "us_per_event_off": seconds[False] / timed_events * 1e6, "pairs": len(ratios),
             "events": n_events, "checks": len(engine_on.trace), "rollbacks": kinds.count("rollback"),
-            "restarts": kinds.count("restart")}
+            "restarts": kinds.count("restart"), "settings": settings}
 
 
 def main() -> None:
@@ -139,6 +148,8 @@ def main() -> None:
           f"{result['pairs']} pairs")
     print(f"{'prepare + apply ratio':<40}{result['monitor_overhead_with_prepare']:>18.3f}")
     print(f"{'whole runs from an empty window':<40}{result['monitor_overhead_total']:>18.3f}")
+    for name, ratio in result["settings"].items():
+        print(f"{'  ' + name:<40}{ratio:>18.3f}")
     print(json.dumps(result))
 
 

@@ -368,4 +368,7 @@ def test_overhead_benchmark_reports_its_ratio():
     assert result["monitor_overhead"] > 0 and math.isfinite(result["monitor_overhead"])
     assert result["monitor_overhead_q1"] <= result["monitor_overhead"] <= result["monitor_overhead_q3"]
     assert result["pairs"] == 3  # 5 batches of 5,000, the first 2 not paired (the window still filling)
+    assert sorted(result["settings"]) == ["window=1000,check_every=250", "window=2000,check_every=500",
+                                          "window=500,check_every=250"]
+    assert all(r > 0 and math.isfinite(r) for r in result["settings"].values())
     assert result["checks"] == pytest.approx(24_000 * 0.95 / 250, abs=3)
