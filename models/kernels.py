@@ -38,6 +38,7 @@ __all__ = [
     "iterate_distance",
     "lazy_process",
     "lazy_rebase",
+    "margin_map",
     "materialize",
     "pair_margins",
     "point_loss",
@@ -148,6 +149,19 @@ def pair_margins(lazy, sc, dv, da):
         raw = dv + sc[S_B]
         avg = da + sc[S_SB] if sc[S_Z] > 0.0 else raw
     return raw, avg
+
+
+@_inline
+def margin_map(lazy, sc):
+    """:func:`pair_margins` for many events at once, as coefficients of an affine map:
+    ``raw = ar * dv + br`` and ``avg = (ua * da + aa * dv + ba) * ia``, returned as
+    ``(ar, br, ua, aa, ba, ia)`` (a product by ``1/Z`` instead of a division per event, so the
+    averaged margin may differ from ``pair_margins`` in the last bit)."""
+    ar = sc[S_A] if lazy else 1.0
+    br = sc[S_B]
+    if sc[S_Z] <= 0.0:  # nothing averaged yet: the average is the raw iterate
+        return ar, br, 0.0, ar, br, 1.0
+    return ar, br, 1.0, (sc[S_ACC] if lazy else 0.0), sc[S_SB], (1.0 / sc[S_Z] if lazy else 1.0)
 
 
 @_inline

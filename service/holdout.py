@@ -18,7 +18,7 @@ import numba
 import numpy as np
 
 from models import LinearModel, Rows
-from models.kernels import S_A, S_ACC, S_B, S_SB, S_Z, iterate_distance, point_loss
+from models.kernels import iterate_distance, margin_map, point_loss
 
 __all__ = ["HoldoutWindow", "LOSS_CODES", "N_PRM", "N_STATS"]
 
@@ -125,14 +125,8 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
             j, x = ip[i], vp[i]
             dv[i] += state[j, 0] * x
             da[i] += state[j, 1] * x
-    # margins (``pair_margins`` as an affine map: raw = ar dv + br, avg = (ua da + aa dv + ba) ia), losses
-    ar = sc[S_A] if lazy else 1.0
-    br = sc[S_B]
-    if sc[S_Z] > 0.0:
-        ia = 1.0 / sc[S_Z] if lazy else 1.0
-        ua, aa, ba = 1.0, (sc[S_ACC] if lazy else 0.0), sc[S_SB]
-    else:  # nothing averaged yet: the average is the raw iterate
-        ia, ua, aa, ba = 1.0, 0.0, ar, br
+    # margins, then losses
+    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
     if code == 0:
         for i in range(n):
             r = ar * dv[i] + br - y[i]
