@@ -93,7 +93,7 @@ class LinearModel:
     def kernel_state(self) -> tuple[bool, np.ndarray, np.ndarray]:
         """``(lazy, state, scalars)``: the learned arrays themselves (not copies), for compiled
         readers that score many rows with both iterates without building either vector (see
-        ``kernels.pair_margins``). Callers must not write to them."""
+        ``kernels.pair_margins`` and ``kernels.margin_map``). Callers must not write to them."""
         return self._lazy, self._st, self._sc
 
     @property
