@@ -26,22 +26,158 @@ LOSS_CODES = {"squared": 0, "huber": 1, "logistic": 2}
 # layouts of the arrays the compiled passes share: statistics out, scalars in, per-slot metadata
 (ST_MEDIAN, ST_RAW, ST_AVG, ST_KEPT, ST_NEW, ST_NEW_ABOVE, ST_REC_RAW, ST_REC_AVG, ST_REC_N, ST_DIST,
  N_STATS) = range(11)
-P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, P_NEXT, N_PRM = range(8)
+P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, P_NEXT, P_ABSURD, N_PRM = range(9)
 M_Y, M_EVENT, M_SCALED, N_META = range(4)
+# the running sums' bookkeeping (``HoldoutWindow._gst``): sums valid, events kept since the last
+# rebuild, residual bound of the non-suspects, largest ||x||, checks since the reference pass, the
+# averaged iterate's largest move since (coefficients, intercept), suspects kept (-1: too many),
+# reference pass due
+# and the sums of 1, y and y**2 over the kept events
+# and the sums of 1, y and y**2 over the kept events; local categorical coordinates handed out
+(G_VALID, G_INSERTS, G_TAU, G_XMAX, G_SINCE, G_DMAX, G_BMAX, G_NSUSP, G_FORCE, G_N, G_SY, G_SYY, G_HIGH,
+ N_G) = range(14)
+SUMS_CATEGORICAL = 64   # categorical coordinates the running sums follow at most
+SUMS_NUMERIC = 48       # numeric features beyond which the sums cost more than the pass
+SUSPECTS = 256          # events rescored one by one at each check at most
+REFERENCE_EVERY = 32    # checks between full passes at most
+_HT = 4 * SUMS_CATEGORICAL  # open-addressing table: bucket -> local coordinate
+# the integer bookkeeping ``HoldoutWindow._gi``: bucket of each local categorical coordinate (-1:
+# none), events using it, then the table's keys (-1: empty) and values
+K_KEY, K_REF, K_HTK, K_HTV, N_GI = (0, SUMS_CATEGORICAL, 2 * SUMS_CATEGORICAL, 2 * SUMS_CATEGORICAL + _HT,
+                                    2 * SUMS_CATEGORICAL + 2 * _HT)
 
 _jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 _loss = point_loss  # the kernels' own per-event loss, so window and progressive losses agree
 _NO_EVENTS = np.zeros(0, dtype=np.int64)
 
 
+_inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
+
+
+@_inline
+def _ht_slot(gi, key):
+    """The table position of ``key``: where it is, or the empty one where it would go."""
+    h = (key * 2654435761) % _HT
+    while gi[K_HTK + h] >= 0 and gi[K_HTK + h] != key:
+        h = (h + 1) % _HT
+    return h
+
+
 @_jit
-def _put(num, idx, val, meta, nxt, indptr, indices, values, mode, y, events, lo, hi, first, scaling):
+def _ht_fill(gi):
+    """Refill the table from the local coordinates' buckets (after one was given to another bucket)."""
+    for h in range(_HT):
+        gi[K_HTK + h] = -1
+    for c in range(SUMS_CATEGORICAL):
+        if gi[K_KEY + c] >= 0:
+            h = _ht_slot(gi, gi[K_KEY + c])
+            gi[K_HTK + h] = gi[K_KEY + c]
+            gi[K_HTV + h] = c
+
+
+@_inline
+def _local(gi, gst, nnum, key):
+    """The local coordinate (``nnum + c``) of categorical bucket ``key``, given one if it has none
+    (a free one: no kept event uses it); -1 when all are in use."""
+    h = _ht_slot(gi, key)
+    if gi[K_HTK + h] == key:
+        return nnum + gi[K_HTV + h]
+    for c in range(SUMS_CATEGORICAL):
+        if gi[K_REF + c] == 0:
+            stale = gi[K_KEY + c] >= 0
+            gi[K_KEY + c] = key
+            if stale:
+                _ht_fill(gi)
+            else:
+                gi[K_HTK + h] = key
+                gi[K_HTV + h] = c
+            gst[G_FORCE] = 1.0  # a coordinate the reference pass did not follow
+            gst[G_HIGH] = max(gst[G_HIGH], c + 1.0)
+            return nnum + c
+    return -1
+
+
+@_inline
+def _entry(num, val, loc, slot, a, nnum):
+    """Entry ``a`` of a kept event in local coordinates: ``(coordinate or -1, value)``."""
+    if a < nnum:
+        return a, num[a, slot]
+    return loc[a - nnum, slot], val[a - nnum, slot]
+
+
+@_inline
+def _accumulate(num, val, loc, y, slot, gm, gst, sign):
+    """Add (``sign`` 1) or take away (-1) the kept event in ``slot`` to the running sums: ``x x'``
+    in ``gm[:L]``, ``x`` in ``gm[L]``, ``y x`` in ``gm[L + 1]``; 1, y, y**2 in ``gst``. Returns ``||x||``."""
+    nnum, width, big_l = num.shape[0], loc.shape[0], gm.shape[1]
+    norm2 = 0.0
+    for a in range(nnum + width):
+        la, xa = _entry(num, val, loc, slot, a, nnum)
+        if la < 0 or xa == 0.0:
+            continue
+        norm2 += xa * xa
+        sx = sign * xa
+        gm[big_l, la] += sx
+        gm[big_l + 1, la] += sx * y
+        for j in range(nnum):  # numeric coordinates are local coordinates 0..nnum-1
+            gm[la, j] += sx * num[j, slot]
+        for p in range(width):
+            lb = loc[p, slot]
+            if lb >= 0:
+                gm[la, lb] += sx * val[p, slot]
+    gst[G_N] += sign
+    gst[G_SY] += sign * y
+    gst[G_SYY] += sign * y * y
+    return math.sqrt(norm2)
+
+
+@_inline
+def _release(loc, slot, nnum, gm, gi):
+    """The event in ``slot`` leaves: a local coordinate no kept event uses any more is zeroed (the
+    rounding left in its sums goes with it) and becomes free."""
+    big_l = gm.shape[1]
+    for p in range(loc.shape[0]):
+        la = loc[p, slot]
+        if la < 0:
+            continue
+        loc[p, slot] = -1
+        c = la - nnum
+        gi[K_REF + c] -= 1
+        if gi[K_REF + c] == 0:
+            for k in range(big_l):
+                gm[la, k] = 0.0
+                gm[k, la] = 0.0
+            gm[big_l, la] = 0.0
+            gm[big_l + 1, la] = 0.0
+
+
+@_inline
+def _claim(idx, val, loc, slot, nnum, gi, gst):
+    """Give the categorical entries of the event in ``slot`` their local coordinates; False when the
+    coordinates run out (the sums are given up until the next rebuild)."""
+    for p in range(loc.shape[0]):
+        loc[p, slot] = -1
+        if val[p, slot] == 0.0:
+            continue
+        la = _local(gi, gst, nnum, idx[p, slot])
+        if la < 0:
+            return False
+        gi[K_REF + la - nnum] += 1
+        loc[p, slot] = la
+    return True
+
+
+@_jit
+def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y, events, lo, hi, first,
+         scaling, gm, gi, gst, snum, sidx, sval, smeta):
     """Keep the rows ``r`` in ``lo..hi`` with ``mode[r] == 2`` in the ring from slot ``nxt`` on
-    (event index ``events[r]``, or ``first + r`` when ``events`` is empty). Numeric features go to
-    ``num[j, slot]`` (scaled when ``scaling`` is known; a missing one is 0 then, NaN until then),
-    the others to the padded ``idx`` / ``val`` positions. Return ``(next slot, rows kept)``, or
-    ``(-width, 0)`` when a row has more categorical entries than the ring is wide (nothing is
-    kept then)."""
+    (event index ``events[r]``, or ``first + r`` when ``events`` is empty; ``count`` slots are in
+    use). Numeric features go to ``num[j, slot]`` (scaled when ``scaling`` is known; a missing one
+    is 0 then, NaN until then), the others to the padded ``idx`` / ``val`` positions. While the
+    running sums are valid (``gst[G_VALID]``) the event overwritten leaves them and the new one
+    enters. Every 4th slot is copied to the sample block (``snum`` ...: the median's sample, side
+    by side). Return ``(next slot, rows kept)``, or ``(-width, 0)`` when a row has more categorical
+    entries than the ring is wide (nothing is kept then)."""
     width, size = idx.shape
     nnum = num.shape[0]
     scaled = scaling.shape[0] == 2
@@ -58,6 +194,10 @@ def _put(num, idx, val, meta, nxt, indptr, indices, values, mode, y, events, lo,
     for r in range(lo, hi):
         if mode[r] != 2:
             continue
+        sums = gst[G_VALID] > 0.0
+        if sums and count == size:  # the oldest event leaves the sums
+            _accumulate(num, val, loc, meta[M_Y, nxt], nxt, gm, gst, -1.0)
+            _release(loc, nxt, nnum, gm, gi)
         for j in range(nnum):
             num[j, nxt] = missing
         p = 0
@@ -76,9 +216,49 @@ def _put(num, idx, val, meta, nxt, indptr, indices, values, mode, y, events, lo,
         meta[M_Y, nxt] = y[r]
         meta[M_EVENT, nxt] = events[r] if events.shape[0] else first + r
         meta[M_SCALED, nxt] = 1.0 if scaled else 0.0
+        if nxt % 4 == 0:
+            _copy_slot(num, idx, val, meta, nxt, snum, sidx, sval, smeta, nxt // 4)
+        if sums:
+            if _claim(idx, val, loc, nxt, nnum, gi, gst):
+                norm = _accumulate(num, val, loc, y[r], nxt, gm, gst, 1.0)
+                gst[G_XMAX] = max(gst[G_XMAX], norm)
+            else:
+                gst[G_VALID] = 0.0
+        gst[G_INSERTS] += 1.0
         nxt = (nxt + 1) % size
+        count = min(count + 1, size)
         kept += 1
     return nxt, kept
+
+
+@_inline
+def _copy_slot(num, idx, val, meta, slot, snum, sidx, sval, smeta, k):
+    for j in range(num.shape[0]):
+        snum[j, k] = num[j, slot]
+    for p in range(idx.shape[0]):
+        sidx[p, k] = idx[p, slot]
+        sval[p, k] = val[p, slot]
+    smeta[M_Y, k] = meta[M_Y, slot]
+    smeta[M_EVENT, k] = meta[M_EVENT, slot]
+
+
+@_jit
+def _rebuild(num, idx, val, meta, loc, n, gm, gi, gst):
+    """Running sums from scratch over the ``n`` kept events (all scaled); they are valid after, unless
+    the events use more categorical coordinates than the sums follow."""
+    nnum = num.shape[0]
+    gm[:] = 0.0
+    for k in range(N_GI):
+        gi[k] = 0 if K_REF <= k < K_HTK else -1
+    for k in (G_N, G_SY, G_SYY, G_XMAX, G_INSERTS, G_HIGH):
+        gst[k] = 0.0
+    gst[G_VALID], gst[G_FORCE], gst[G_NSUSP] = 1.0, 1.0, 0.0
+    for slot in range(n):
+        if not _claim(idx, val, loc, slot, nnum, gi, gst):
+            gst[G_VALID] = 0.0
+            return
+        norm = _accumulate(num, val, loc, meta[M_Y, slot], slot, gm, gst, 1.0)
+        gst[G_XMAX] = max(gst[G_XMAX], norm)
 
 
 @_jit
@@ -182,6 +362,224 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
     out[ST_DIST] = iterate_distance(lazy, state, sc)
 
 
+@_inline
+def _slot_losses(num, idx, val, y, slot, lazy, state, sc, code, delta):
+    """Both iterates' losses on the kept event in ``slot``, as the full pass computes them (same
+    order of additions, so the same bits)."""
+    dv = da = 0.0
+    for j in range(num.shape[0]):
+        x = num[j, slot]
+        dv += x * state[j, 0]
+        da += x * state[j, 1]
+    for p in range(idx.shape[0]):
+        j, x = idx[p, slot], val[p, slot]
+        dv += state[j, 0] * x
+        da += state[j, 1] * x
+    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
+    if code == 0:
+        r = ar * dv + br - y
+        a = (ua * da + aa * dv + ba) * ia - y
+        return 0.5 * r * r, 0.5 * a * a
+    return _loss(code, delta, ar * dv + br, y), _loss(code, delta, (ua * da + aa * dv + ba) * ia, y)
+
+
+@_jit
+def _sample_losses(snum, sidx, sval, smeta, ks, lazy, state, sc, code, delta, last_event, dv, da, scratch):
+    """The averaged losses of the sample block's first ``ks`` events held out by ``last_event`` into
+    ``scratch`` (as the full pass computes them, stage by stage over the block); their count."""
+    for i in range(ks):
+        dv[i] = 0.0
+        da[i] = 0.0
+    for j in range(snum.shape[0]):
+        wv, wu, x = state[j, 0], state[j, 1], snum[j]
+        for i in range(ks):
+            dv[i] += x[i] * wv
+            da[i] += x[i] * wu
+    for p in range(sidx.shape[0]):
+        ip, vp = sidx[p], sval[p]
+        for i in range(ks):
+            j, x = ip[i], vp[i]
+            dv[i] += state[j, 0] * x
+            da[i] += state[j, 1] * x
+    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
+    y, events = smeta[M_Y], smeta[M_EVENT]
+    k_old = 0
+    for i in range(ks):
+        if events[i] <= last_event:
+            m_avg = (ua * da[i] + aa * dv[i] + ba) * ia
+            if code == 0:
+                a = m_avg - y[i]
+                scratch[k_old] = 0.5 * a * a
+            else:
+                scratch[k_old] = _loss(code, delta, m_avg, y[i])
+            k_old += 1
+    return k_old
+
+
+@_jit
+def _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst):
+    """After a full pass: the reference the following checks bound the averaged iterate's moves
+    from (``wref[0]``, filled from ``wref[2]`` by the caller), and the *suspects*, the events whose
+    averaged residual exceeds half the residual of the next cut, rescored one by one until the next
+    full pass; every other event is provably kept as long as the bound holds (see
+    :func:`_sums_stats`)."""
+    cut_next = prm[P_ABSURD] * out[ST_MEDIAN]
+    tau = 0.5 * math.sqrt(2.0 * cut_next) if cut_next > 0.0 and cut_next < math.inf else math.inf
+    half = 0.5 * tau * tau
+    ns = 0
+    events = meta[M_EVENT]
+    da = work[1]
+    for slot in range(n):
+        if da[slot] > half:
+            if ns == SUSPECTS:
+                ns = -1
+                break
+            susp[0, ns], susp[1, ns] = slot, int(events[slot])
+            ns += 1
+    xmax = 0.0
+    nnum = num.shape[0]
+    for slot in range(n):
+        norm2 = 0.0
+        for a in range(nnum + loc.shape[0]):
+            la, x = _entry(num, val, loc, slot, a, nnum)
+            if la >= 0:
+                norm2 += x * x
+        xmax = max(xmax, norm2)
+    wref[0, :] = wref[2, :]
+    gst[G_TAU], gst[G_XMAX], gst[G_NSUSP] = tau, math.sqrt(xmax), ns
+    gst[G_SINCE] = gst[G_DMAX] = gst[G_BMAX] = gst[G_FORCE] = 0.0
+
+
+@_jit
+def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work, out, gm, gi, gst, wref, susp,
+                snum, sidx, sval, smeta):
+    """:func:`_window_stats` for the squared loss from the running sums, without scoring every event.
+
+    The window's loss of an iterate ``(w, b)`` is ``(w'Gw + 2b w's + n b**2 - 2(w'g + b Sy) + Syy) / 2``
+    from ``G = sum x x'``, ``s = sum x``, ``g = sum y x`` (kept up to date as events come and go,
+    over the window's few coordinates): O(coordinates**2) instead of O(events x entries). What
+    needs single events is scored one by one: the newest events (the drift statistic), the recent
+    ones (the rollback rule's "following" test), a quarter of the older ones (the median), and the
+    *suspects* (events far from the average at the last full pass). An event is left out as absurd
+    only when its averaged loss exceeds the cut; for a non-suspect, whose averaged residual was at
+    most ``tau`` when last scored, Cauchy-Schwarz bounds it now by ``tau + ||x||max (D + Dmax) +
+    (B + Bmax)`` (``D``, ``B``: the averaged iterate's move since the reference pass, coefficients
+    and intercept; ``Dmax``, ``Bmax``: the largest at any check since). While that bound is below
+    the cut's residual, the absurd events are among the suspects and the figures are the full
+    pass's (sums up to rounding); otherwise, and every ``REFERENCE_EVERY`` checks, a full pass
+    runs. ``wref`` rows: reference, raw and averaged coefficients (intercept last)."""
+    nnum, big_l = num.shape[0], gm.shape[1]
+    used = nnum + int(gst[G_HIGH])  # coordinates beyond were never handed out: zero sums, zero weights
+    code, delta = int(prm[P_CODE]), prm[P_DELTA]
+    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
+    wr, wa = wref[1], wref[2]
+    for la in range(used):
+        if la < nnum:
+            j = la
+        elif gi[K_REF + la - nnum] > 0:
+            j = gi[K_KEY + la - nnum]
+        else:
+            wr[la] = wa[la] = 0.0
+            continue
+        wr[la] = ar * state[j, 0]
+        wa[la] = (ua * state[j, 1] + aa * state[j, 0]) * ia
+    wr[big_l], wa[big_l] = br, ba * ia
+    d2 = 0.0
+    for la in range(used):
+        d2 += (wa[la] - wref[0, la]) ** 2
+    move, bmove = math.sqrt(d2), abs(wa[big_l] - wref[0, big_l])
+    cut = prm[P_CUT]
+    full = gst[G_FORCE] > 0.0 or gst[G_NSUSP] < 0.0 or gst[G_SINCE] >= REFERENCE_EVERY or gst[G_N] != n
+    if not full and cut < math.inf:
+        bound = gst[G_TAU] + gst[G_XMAX] * (move + gst[G_DMAX]) + bmove + gst[G_BMAX]
+        full = not bound < math.sqrt(2.0 * cut)
+    s_raw = s_avg = 0.0
+    if not full:
+        q_raw = q_avg = l_raw = l_avg = m_raw = m_avg = 0.0
+        for a in range(used):
+            g_raw = g_avg = 0.0
+            for b in range(used):
+                g_raw += gm[a, b] * wr[b]
+                g_avg += gm[a, b] * wa[b]
+            q_raw += wr[a] * g_raw
+            q_avg += wa[a] * g_avg
+            l_raw += wr[a] * gm[big_l, a]
+            l_avg += wa[a] * gm[big_l, a]
+            m_raw += wr[a] * gm[big_l + 1, a]
+            m_avg += wa[a] * gm[big_l + 1, a]
+        cnt, sy, syy = gst[G_N], gst[G_SY], gst[G_SYY]
+        b_raw, b_avg = wr[big_l], wa[big_l]
+        s_raw = 0.5 * (q_raw + 2.0 * b_raw * l_raw + cnt * b_raw * b_raw - 2.0 * (m_raw + b_raw * sy) + syy)
+        s_avg = 0.5 * (q_avg + 2.0 * b_avg * l_avg + cnt * b_avg * b_avg - 2.0 * (m_avg + b_avg * sy) + syy)
+        # the sums are differences of large terms when the targets sit far from 0: keep 8 digits
+        full = not (s_raw > 1e-8 * syy and s_avg > 1e-8 * syy)
+    if full:
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out)
+        _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst)
+        return
+    y, events = meta[M_Y], meta[M_EVENT]
+    last_event, recent_from = prm[P_LAST], prm[P_RECENT]
+    scratch = work[2]
+    size = work.shape[1]
+    oldest = (int(prm[P_NEXT]) - n) % size
+    tau2 = 0.5 * gst[G_TAU] ** 2
+    ns = int(gst[G_NSUSP])
+    k_new = 0
+    while k_new < n and events[(oldest + n - 1 - k_new) % size] > last_event:
+        slot = (oldest + n - 1 - k_new) % size
+        lr, la = _slot_losses(num, idx, val, y[slot], slot, lazy, state, sc, code, delta)
+        scratch[n - 1 - k_new] = la
+        if la > tau2 and ns >= 0:  # far from the average now: followed one by one from here on
+            if ns == SUSPECTS:
+                ns = -1
+            else:
+                susp[0, ns], susp[1, ns] = slot, int(events[slot])
+                ns += 1
+        k_new += 1
+    kept = n
+    if ns < 0:  # too many to follow: this check still needs them all
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out)
+        _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst)
+        return
+    k = 0
+    while k < ns:
+        slot = susp[0, k]
+        if events[slot] != susp[1, k]:  # gone from the window
+            ns -= 1
+            susp[0, k], susp[1, k] = susp[0, ns], susp[1, ns]
+            continue
+        lr, la = _slot_losses(num, idx, val, y[slot], slot, lazy, state, sc, code, delta)
+        if lr > cut and la > cut:
+            s_raw -= lr
+            s_avg -= la
+            kept -= 1
+        k += 1
+    r_raw = r_avg = r_n = 0.0
+    k = 0
+    while k < n and events[(oldest + n - 1 - k) % size] > recent_from:
+        slot = (oldest + n - 1 - k) % size
+        lr, la = _slot_losses(num, idx, val, y[slot], slot, lazy, state, sc, code, delta)
+        if not (lr > cut and la > cut):
+            r_raw += lr
+            r_avg += la
+            r_n += 1.0
+        k += 1
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + 3) // 4, lazy, state, sc, code, delta, last_event,
+                           work[0], work[1], scratch)
+    med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
+    above = 0.0
+    for k in range(n - k_new, n):
+        if scratch[k] > med:
+            above += 1.0
+    out[ST_MEDIAN], out[ST_RAW], out[ST_AVG], out[ST_KEPT] = med, s_raw, s_avg, kept
+    out[ST_NEW], out[ST_NEW_ABOVE], out[ST_REC_RAW], out[ST_REC_AVG], out[ST_REC_N] = k_new, above, r_raw, r_avg, r_n
+    out[ST_DIST] = iterate_distance(lazy, state, sc)
+    gst[G_NSUSP] = ns
+    gst[G_SINCE] += 1.0
+    gst[G_DMAX] = max(gst[G_DMAX], move)
+    gst[G_BMAX] = max(gst[G_BMAX], bmove)
+
+
 class HoldoutWindow:
     """The newest ``size`` held-out events as a ring of slots, scored by a compiled pass.
 
@@ -197,7 +595,7 @@ class HoldoutWindow:
         Coordinates ``0 .. n_numeric - 1`` are numeric features (the model's layout).
     """
 
-    def __init__(self, size: int, n_numeric: int = 0, width: int = 1) -> None:
+    def __init__(self, size: int, n_numeric: int = 0, width: int = 1, sums: bool = False) -> None:
         self.size = size
         self._num = np.zeros((n_numeric, size))
         self._idx = np.zeros((width, size), dtype=np.int32)
@@ -208,6 +606,28 @@ class HoldoutWindow:
         self._work = np.zeros((3, size))
         self._scaling = np.zeros((0, 0))
         self._unscaled = False
+        # running sums (squared loss, few numeric features): see _sums_stats
+        self._sums = sums and n_numeric <= SUMS_NUMERIC
+        big_l = (n_numeric + SUMS_CATEGORICAL) if self._sums else 0
+        self._loc = np.full((width, size), -1, dtype=np.int32)
+        self._gm = np.zeros((big_l + 2, big_l))
+        self._gi = np.full(N_GI, -1, dtype=np.int64)
+        self._gst = np.zeros(N_G)
+        self._gst[G_INSERTS] = size  # a rebuild is due (at the first check with every row scaled)
+        self._wref = np.zeros((3, big_l + 1))
+        self._susp = np.zeros((2, SUSPECTS), dtype=np.int64)
+        # every 4th slot side by side (the median's sample: a contiguous pass)
+        quarter = -(-size // 4)
+        self._snum = np.zeros((n_numeric, quarter))
+        self._sidx = np.zeros((width, quarter), dtype=np.int32)
+        self._sval = np.zeros((width, quarter))
+        self._smeta = np.zeros((2, quarter))
+
+    def _resample(self) -> None:
+        """Refill the sample block from the ring (after rows were scaled or moved)."""
+        self._snum[:] = self._num[:, ::4]
+        self._sidx, self._sval = self._idx[:, ::4].copy(), self._val[:, ::4].copy()
+        self._smeta[:] = self._meta[:2, ::4]
 
     def __len__(self) -> int:
         return self._count
@@ -239,12 +659,18 @@ class HoldoutWindow:
         """Keep the rows ``start..stop`` of ``rows`` whose ``mode`` is 2 (held out), with targets ``y``
         and event indices ``events`` (or ``first`` + row), all indexed by row."""
         events = _NO_EVENTS if events is None else events
-        args = (rows.indptr, rows.indices, rows.values, mode, y, events, start, stop, first, self._scaling)
-        nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._next, *args)
+        args = (rows.indptr, rows.indices, rows.values, mode, y, events, start, stop, first, self._scaling,
+                self._gm, self._gi, self._gst)
+        block = (self._snum, self._sidx, self._sval, self._smeta)
+        nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._loc, self._next, self._count, *args, *block)
         if nxt < 0:  # a wider row than any before: widen the ring (rare) and copy again
             grow = ((0, -nxt - self._idx.shape[0]), (0, 0))
             self._idx, self._val = np.pad(self._idx, grow), np.pad(self._val, grow)
-            nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._next, *args)
+            self._loc = np.pad(self._loc, grow, constant_values=-1)
+            self._sidx, self._sval = np.pad(self._sidx, grow), np.pad(self._sval, grow)
+            block = (self._snum, self._sidx, self._sval, self._smeta)
+            nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._loc, self._next, self._count, *args,
+                             *block)
         if kept and self._scaling.shape[0] == 0:
             self._unscaled = True
         self._next = nxt
@@ -255,27 +681,54 @@ class HoldoutWindow:
         order = np.arange(self._count) if self._count < self.size else (np.arange(self.size) + self._next) % self.size
         keep = order[self._meta[M_EVENT, order] >= event]
         k = len(keep)
-        for name in ("_num", "_idx", "_val", "_meta", "_work"):
+        for name in ("_num", "_idx", "_val", "_meta", "_work", "_loc"):
             old = getattr(self, name)
             new = np.zeros_like(old)
             new[:, :k] = old[:, keep]
             setattr(self, name, new)
         self._count, self._next = k, k % self.size
+        self._gst[G_VALID], self._gst[G_INSERTS] = 0.0, self.size  # rebuilt at the next check
+        self._resample()
 
     def stats(self, model: LinearModel, prm: np.ndarray, out: np.ndarray, work: np.ndarray | None = None) -> None:
-        """Score every kept event with both iterates of ``model`` (see :func:`_window_stats`).
+        """Score the kept events with both iterates of ``model`` and fill ``out`` (see
+        :func:`_window_stats`; a check of a window with running sums reads them, see
+        :func:`_sums_stats`, and then only the per-slot losses of events it scored are current).
 
         With ``work`` given (a reader outside the check, perhaps on another thread) the ring is left
-        untouched: it must hold no unscaled rows then.
+        untouched and every event is scored: it must hold no unscaled rows then.
         """
         prm[P_UNSCALED] = 0.0
         prm[P_NEXT] = self._next
-        if work is None:
-            work = self._work
-            if self._scaling.shape[0] == 0 and model.scaling_frozen:  # frozen once, for good
-                self._scaling = np.stack(model.scaling)
-            if self._unscaled and self._scaling.shape[0]:
-                prm[P_UNSCALED], self._unscaled = 1.0, False
+        lazy, state, sc = model.kernel_state()
+        if work is not None:
+            _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
+                          prm, work, out)
+            return
+        if self._scaling.shape[0] == 0 and model.scaling_frozen:  # frozen once, for good
+            self._scaling = np.stack(model.scaling)
+        gst = self._gst
+        if self._unscaled and self._scaling.shape[0]:
+            prm[P_UNSCALED], self._unscaled = 1.0, False
+            gst[G_VALID], gst[G_INSERTS] = 0.0, self.size  # rebuilt once these rows are scaled
+        elif self._sums and self._scaling.shape[0] and gst[G_INSERTS] >= self.size:
+            # from scratch once per window's worth of events: no rounding builds up in the sums
+            _rebuild(self._num, self._idx, self._val, self._meta, self._loc, self._count, self._gm, self._gi, gst)
+        if self._sums and gst[G_VALID] > 0.0:
+            _sums_stats(self._num, self._idx, self._val, self._meta, self._loc, self._count, lazy, state, sc,
+                        self._scaling, prm, self._work, out, self._gm, self._gi, gst, self._wref, self._susp,
+                        self._snum, self._sidx, self._sval, self._smeta)
+        else:
+            _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
+                          prm, self._work, out)
+            if prm[P_UNSCALED] > 0.0:  # the ring's rows were scaled in place: so must the sample's be
+                self._resample()
+
+    def score_all(self, model: LinearModel, prm: np.ndarray) -> None:
+        """Score every kept event now, so that ``loss_raw`` / ``loss_avg`` are all current (a check
+        that read the running sums scored only some; called within a check, rows scaled)."""
+        prm[P_UNSCALED] = 0.0
+        prm[P_NEXT] = self._next
         lazy, state, sc = model.kernel_state()
         _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
-                      prm, work, out)
+                      prm, self._work, np.zeros(N_STATS))

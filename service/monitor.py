@@ -66,7 +66,7 @@ from models import LinearModel, Rows
 from .config import MonitorConfig
 from .drift import ChangeDetector, sign_test_pvalue
 from .holdout import LOSS_CODES, N_PRM, N_STATS, HoldoutWindow
-from .holdout import (P_CODE, P_CUT, P_DELTA, P_LAST, P_RECENT, ST_AVG, ST_DIST,
+from .holdout import (P_ABSURD, P_CODE, P_CUT, P_DELTA, P_LAST, P_RECENT, ST_AVG, ST_DIST,
                       ST_KEPT, ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW)
 
 __all__ = ["Monitor"]
@@ -105,13 +105,14 @@ class Monitor:
         self.alarms_ignored = 0
         spec = model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
-        self.window = HoldoutWindow(cfg.window, len(spec.numeric))
+        self.window = HoldoutWindow(cfg.window, len(spec.numeric), sums=spec.loss == "squared")
         self._prm = np.zeros(N_PRM)
         self._prm[P_CODE] = LOSS_CODES[spec.loss]
         self._prm[P_DELTA] = spec.huber_delta
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
         self._absurd = math.inf if spec.loss == "logistic" else cfg.absurd_factor
         self._prm[P_CUT] = math.inf
+        self._prm[P_ABSURD] = self._absurd
         self._stats = np.zeros(N_STATS)
         self._detector = ChangeDetector.for_monitor(cfg)
         # event indices of the last checks (bounded: a patience set out of reach must not grow it)
@@ -295,6 +296,7 @@ class Monitor:
         self._alarm_checks += 1
         if self._alarm_checks < self.cfg.drift_confirm:
             return
+        self.window.score_all(model, self._prm)  # the check may have scored only some events
         ev = self.window.events()
         recent = ev > self._bounds[-min(self.cfg.confirm_recent, len(self._bounds))]
         before = ev < self._alarm_event
