@@ -34,8 +34,10 @@ M_Y, M_EVENT, M_SCALED, N_META = range(4)
 # reference pass due
 # and the sums of 1, y and y**2 over the kept events
 # and the sums of 1, y and y**2 over the kept events; local categorical coordinates handed out
+# the ring's shape and place (slots, numeric features, categorical width, slots in use, next slot),
+# whether the scaling is frozen (then stored in the float block) and the sums kept at all
 (G_VALID, G_INSERTS, G_TAU, G_XMAX, G_SINCE, G_DMAX, G_BMAX, G_NSUSP, G_FORCE, G_N, G_SY, G_SYY, G_HIGH,
- N_G) = range(14)
+ G_SIZE, G_NNUM, G_WIDTH, G_COUNT, G_NEXT, G_FROZEN, G_SUMS, N_G) = range(21)
 SUMS_CATEGORICAL = 64   # categorical coordinates the running sums follow at most
 SUMS_NUMERIC = 48       # numeric features beyond which the sums cost more than the pass
 SUSPECTS = 256          # events rescored one by one at each check at most
@@ -57,9 +59,9 @@ _inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always
 @_inline
 def _ht_slot(gi, key):
     """The table position of ``key``: where it is, or the empty one where it would go."""
-    h = (key * 2654435761) % _HT
+    h = (key * 2654435761) & (_HT - 1)
     while gi[K_HTK + h] >= 0 and gi[K_HTK + h] != key:
-        h = (h + 1) % _HT
+        h = (h + 1) & (_HT - 1)
     return h
 
 
@@ -580,12 +582,102 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     gst[G_BMAX] = max(gst[G_BMAX], bmove)
 
 
+def _block_rows(rows: int, cols: int, size: int) -> int:
+    """Rows of ``size`` columns that hold a ``rows x cols`` block (flattened)."""
+    return -(-(rows * cols) // size)
+
+
+@_inline
+def _block(a, first, rows, cols):
+    """The ``rows x cols`` block stored flattened from row ``first`` of ``a`` (a C-contiguous view)."""
+    size = a.shape[1]
+    return a[first:first + -(-(rows * cols) // size)].reshape(-1)[:rows * cols].reshape((rows, cols))
+
+
+@_inline
+def _views(f, i, g, k):
+    """The window's arrays as views of its four blocks (see :class:`HoldoutWindow`)."""
+    big_l = g.shape[1] - 1
+    gst = g[big_l + 5]
+    size, nnum, width = int(gst[G_SIZE]), int(gst[G_NNUM]), int(gst[G_WIDTH])
+    quarter = (size + 3) // 4
+    o = nnum + width
+    num, val, meta, work = f[:nnum], f[nnum:o], f[o:o + 3], f[o + 3:o + 6]
+    sample = _block(f, o + 6, o + 2, quarter)
+    scaling = _block(f, o + 6 + -(-((o + 2) * quarter) // size), 2, nnum)
+    idx, loc = i[:width], i[width:2 * width]
+    sidx = _block(i, 2 * width, width, quarter)
+    return (num, val, meta, work, sample[:nnum], sample[nnum:o], sample[o:o + 2], scaling, idx, loc, sidx,
+            g[:big_l + 2, :big_l], g[big_l + 2:big_l + 5], gst, k[:N_GI], k[N_GI:].reshape((2, SUSPECTS)))
+
+
+@_jit
+def _keep(f, i, g, k, indptr, indices, values, mode, y, events, lo, hi, first):
+    """:func:`_put` on the window's blocks; ``(next slot, kept)`` as it returns (the ring's place is
+    updated in the bookkeeping unless a row was too wide)."""
+    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
+    scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
+    nxt, kept = _put(num, idx, val, meta, loc, int(gst[G_NEXT]), int(gst[G_COUNT]), indptr, indices, values, mode,
+                     y, events, lo, hi, first, scal, gm, gi, gst, snum, sidx, sval, smeta)
+    if nxt >= 0:
+        gst[G_NEXT] = nxt
+        gst[G_COUNT] = min(gst[G_COUNT] + kept, gst[G_SIZE])
+    return nxt, kept
+
+
+@_jit
+def _resample(f, i, g, k):
+    """Refill the sample block from the ring (after rows were scaled in place or moved)."""
+    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
+    for q in range(snum.shape[1]):
+        if 4 * q < num.shape[1]:
+            _copy_slot(num, idx, val, meta, 4 * q, snum, sidx, sval, smeta, q)
+
+
+@_jit
+def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
+    """A check's figures into ``out``: scale rows kept before the scaling froze (a full pass), rebuild
+    the running sums when due, then read them (:func:`_sums_stats`) or score every event."""
+    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
+    n = int(gst[G_COUNT])
+    prm[P_NEXT] = gst[G_NEXT]
+    scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
+    if prm[P_UNSCALED] > 0.0:
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out)
+        _resample(f, i, g, k)
+        gst[G_VALID], gst[G_INSERTS] = 0.0, gst[G_SIZE]  # rebuilt at the next check, every row scaled
+        return
+    if gst[G_SUMS] > 0.0 and gst[G_FROZEN] > 0.0 and gst[G_INSERTS] >= gst[G_SIZE]:
+        # from scratch once per window's worth of events: no rounding builds up in the sums
+        _rebuild(num, idx, val, meta, loc, n, gm, gi, gst)
+    if gst[G_SUMS] > 0.0 and gst[G_VALID] > 0.0:
+        _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scal, prm, work, out, gm, gi, gst, wref, susp,
+                    snum, sidx, sval, smeta)
+    else:
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out)
+
+
+@_jit
+def _score_every(f, i, g, k, lazy, state, sc, prm, out, work):
+    """Every kept event scored into ``work`` (the window's own rows, or a reader's), figures into ``out``."""
+    num, val, meta, _, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
+    prm[P_NEXT] = gst[G_NEXT]
+    scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
+    _window_stats(num, idx, val, meta, int(gst[G_COUNT]), lazy, state, sc, scal, prm, work, out)
+
+
 class HoldoutWindow:
     """The newest ``size`` held-out events as a ring of slots, scored by a compiled pass.
 
     A slot holds an event's numeric features in a dense block (``num[j, slot]``) and its other
     coordinates position-major (``idx[p, slot]``), numeric values scaled once the model's warm-up
-    scaling is frozen, so that scoring is a plain product.
+    scaling is frozen, so that scoring is a plain product. With ``sums`` (squared loss) the window
+    also keeps running sums from which a check reads both losses (:func:`_sums_stats`).
+
+    Everything lives in four arrays (a float block of rows by slot: numeric features, categorical
+    values, metadata, work rows, the sample block and the scaling; an int32 block: buckets and their
+    local coordinates; the sums with their bookkeeping; the sums' integer tables), because each
+    array handed to a compiled function costs a fixed time per call, and a check makes two.
 
     Parameters
     ----------
@@ -593,102 +685,121 @@ class HoldoutWindow:
         Events kept (the newest).
     n_numeric
         Coordinates ``0 .. n_numeric - 1`` are numeric features (the model's layout).
+    width
+        Categorical entries per event the ring holds to begin with (it widens when needed).
+    sums
+        Keep the running sums (only for the squared loss; not with more than ``SUMS_NUMERIC``
+        numeric features).
     """
 
     def __init__(self, size: int, n_numeric: int = 0, width: int = 1, sums: bool = False) -> None:
         self.size = size
-        self._num = np.zeros((n_numeric, size))
-        self._idx = np.zeros((width, size), dtype=np.int32)
-        self._val = np.zeros((width, size))
-        self._meta = np.zeros((N_META, size))
-        self._next = 0
-        self._count = 0
-        self._work = np.zeros((3, size))
-        self._scaling = np.zeros((0, 0))
-        self._unscaled = False
-        # running sums (squared loss, few numeric features): see _sums_stats
         self._sums = sums and n_numeric <= SUMS_NUMERIC
-        big_l = (n_numeric + SUMS_CATEGORICAL) if self._sums else 0
-        self._loc = np.full((width, size), -1, dtype=np.int32)
-        self._gm = np.zeros((big_l + 2, big_l))
-        self._gi = np.full(N_GI, -1, dtype=np.int64)
-        self._gst = np.zeros(N_G)
-        self._gst[G_INSERTS] = size  # a rebuild is due (at the first check with every row scaled)
-        self._wref = np.zeros((3, big_l + 1))
-        self._susp = np.zeros((2, SUSPECTS), dtype=np.int64)
-        # every 4th slot side by side (the median's sample: a contiguous pass)
-        quarter = -(-size // 4)
-        self._snum = np.zeros((n_numeric, quarter))
-        self._sidx = np.zeros((width, quarter), dtype=np.int32)
-        self._sval = np.zeros((width, quarter))
-        self._smeta = np.zeros((2, quarter))
+        big_l = (n_numeric + SUMS_CATEGORICAL) if self._sums else N_G
+        self._g = np.zeros((big_l + 6, big_l + 1))
+        self._k = np.full(N_GI + 2 * SUSPECTS, -1, dtype=np.int64)
+        gst = self._gst
+        gst[G_SIZE], gst[G_NNUM], gst[G_SUMS] = size, n_numeric, float(self._sums)
+        gst[G_INSERTS] = size  # a rebuild is due (at the first check with every row scaled)
+        self._layout(width)
+        self._unscaled = False
 
-    def _resample(self) -> None:
-        """Refill the sample block from the ring (after rows were scaled or moved)."""
-        self._snum[:] = self._num[:, ::4]
-        self._sidx, self._sval = self._idx[:, ::4].copy(), self._val[:, ::4].copy()
-        self._smeta[:] = self._meta[:2, ::4]
+    def _layout(self, width: int) -> None:
+        """(Re)allocate the float and int blocks for ``width`` categorical entries, keeping the contents."""
+        old = self._parts() if hasattr(self, "_f") else None
+        size, nnum = self.size, int(self._gst[G_NNUM])
+        quarter, o = -(-size // 4), nnum + width
+        self._f = np.zeros((o + 6 + _block_rows(o + 2, quarter, size) + _block_rows(2, nnum, size), size))
+        self._i = np.zeros((2 * width + _block_rows(width, quarter, size), size), dtype=np.int32)
+        self._gst[G_WIDTH] = width
+        new = self._parts()
+        new["loc"][:] = -1
+        if old is not None:
+            for name, a in old.items():
+                new[name][tuple(slice(0, d) for d in a.shape)] = a
+
+    def _parts(self) -> dict:
+        """The blocks' views by name (the layout :func:`_views` reads)."""
+        size, nnum, width = self.size, int(self._gst[G_NNUM]), int(self._gst[G_WIDTH])
+        quarter, o = -(-size // 4), nnum + width
+        f, i = self._f, self._i
+
+        def block(a, first, rows, cols):
+            return a[first:first + _block_rows(rows, cols, size)].reshape(-1)[:rows * cols].reshape(rows, cols)
+
+        sample = block(f, o + 6, o + 2, quarter)
+        return {"num": f[:nnum], "val": f[nnum:o], "meta": f[o:o + 3], "work": f[o + 3:o + 6],
+                "snum": sample[:nnum], "sval": sample[nnum:o], "smeta": sample[o:o + 2],
+                "scaling": block(f, o + 6 + _block_rows(o + 2, quarter, size), 2, nnum),
+                "idx": i[:width], "loc": i[width:2 * width], "sidx": block(i, 2 * width, width, quarter)}
+
+    @property
+    def _gst(self) -> np.ndarray:
+        return self._g[-1]
+
+    @property
+    def _count(self) -> int:
+        return int(self._gst[G_COUNT])
+
+    @property
+    def _next(self) -> int:
+        return int(self._gst[G_NEXT])
 
     def __len__(self) -> int:
-        return self._count
+        return int(self._g[-1, G_COUNT])
 
     @property
     def unscaled(self) -> bool:
         """Whether rows kept before the scaling froze still wait to be scaled (at the next check)."""
-        return self._unscaled or (self._count > 0 and self._scaling.shape[0] == 0)
+        return self._unscaled or (self._count > 0 and self._gst[G_FROZEN] == 0.0)
 
     @property
     def loss_raw(self) -> np.ndarray:
-        """Per-slot losses of the raw iterate at the last scoring (slots ``0..len-1``)."""
-        return self._work[0, : self._count]
+        """Per-slot losses of the raw iterate at the last full scoring (slots ``0..len-1``)."""
+        return self._parts()["work"][0, : self._count]
 
     @property
     def loss_avg(self) -> np.ndarray:
-        return self._work[1, : self._count]
+        return self._parts()["work"][1, : self._count]
 
     def new_above(self, n_new: int, median: float) -> list:
         """1.0 / 0.0 per newly kept event of the last scoring: its averaged loss exceeds ``median``."""
-        return (self._work[2, self._count - n_new: self._count] > median).astype(np.float64).tolist()
+        work = self._parts()["work"]
+        return (work[2, self._count - n_new: self._count] > median).astype(np.float64).tolist()
 
     def events(self) -> np.ndarray:
         """Event indices of the kept events, slot order (matching ``loss_raw`` / ``loss_avg``)."""
-        return self._meta[M_EVENT, : self._count].astype(np.int64)
+        return self._parts()["meta"][M_EVENT, : self._count].astype(np.int64)
 
     def add(self, rows: Rows, y: np.ndarray, mode: np.ndarray, start: int, stop: int, first: int,
             events: np.ndarray | None = None) -> None:
         """Keep the rows ``start..stop`` of ``rows`` whose ``mode`` is 2 (held out), with targets ``y``
         and event indices ``events`` (or ``first`` + row), all indexed by row."""
         events = _NO_EVENTS if events is None else events
-        args = (rows.indptr, rows.indices, rows.values, mode, y, events, start, stop, first, self._scaling,
-                self._gm, self._gi, self._gst)
-        block = (self._snum, self._sidx, self._sval, self._smeta)
-        nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._loc, self._next, self._count, *args, *block)
+        nxt, kept = _keep(self._f, self._i, self._g, self._k, rows.indptr, rows.indices, rows.values, mode, y, events,
+                          start, stop, first)
         if nxt < 0:  # a wider row than any before: widen the ring (rare) and copy again
-            grow = ((0, -nxt - self._idx.shape[0]), (0, 0))
-            self._idx, self._val = np.pad(self._idx, grow), np.pad(self._val, grow)
-            self._loc = np.pad(self._loc, grow, constant_values=-1)
-            self._sidx, self._sval = np.pad(self._sidx, grow), np.pad(self._sval, grow)
-            block = (self._snum, self._sidx, self._sval, self._smeta)
-            nxt, kept = _put(self._num, self._idx, self._val, self._meta, self._loc, self._next, self._count, *args,
-                             *block)
-        if kept and self._scaling.shape[0] == 0:
+            self._layout(-nxt)
+            nxt, kept = _keep(self._f, self._i, self._g, self._k, rows.indptr, rows.indices, rows.values, mode, y,
+                              events, start, stop, first)
+        if kept and self._gst[G_FROZEN] == 0.0:
             self._unscaled = True
-        self._next = nxt
-        self._count = min(self._count + kept, self.size)
 
     def drop_before(self, event: int) -> None:
         """Forget the events held out before ``event`` (after a real change), keeping their order."""
-        order = np.arange(self._count) if self._count < self.size else (np.arange(self.size) + self._next) % self.size
-        keep = order[self._meta[M_EVENT, order] >= event]
+        count, size = self._count, self.size
+        parts = self._parts()
+        order = np.arange(count) if count < size else (np.arange(size) + self._next) % size
+        keep = order[parts["meta"][M_EVENT, order] >= event]
         k = len(keep)
-        for name in ("_num", "_idx", "_val", "_meta", "_work", "_loc"):
-            old = getattr(self, name)
-            new = np.zeros_like(old)
-            new[:, :k] = old[:, keep]
-            setattr(self, name, new)
-        self._count, self._next = k, k % self.size
-        self._gst[G_VALID], self._gst[G_INSERTS] = 0.0, self.size  # rebuilt at the next check
-        self._resample()
+        for name in ("num", "idx", "val", "meta", "work", "loc"):
+            a = parts[name]
+            a[:, :k] = a[:, keep]
+            a[:, k:] = -1 if name == "loc" else 0
+        gst = self._gst
+        gst[G_COUNT], gst[G_NEXT] = k, k % size
+        gst[G_VALID], gst[G_INSERTS] = 0.0, size  # rebuilt at the next check
+        _resample(self._f, self._i, self._g, self._k)
 
     def stats(self, model: LinearModel, prm: np.ndarray, out: np.ndarray, work: np.ndarray | None = None) -> None:
         """Score the kept events with both iterates of ``model`` and fill ``out`` (see
@@ -699,36 +810,29 @@ class HoldoutWindow:
         untouched and every event is scored: it must hold no unscaled rows then.
         """
         prm[P_UNSCALED] = 0.0
-        prm[P_NEXT] = self._next
         lazy, state, sc = model.kernel_state()
         if work is not None:
-            _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
-                          prm, work, out)
+            _score_every(self._f, self._i, self._g, self._k, lazy, state, sc, prm, out, work)
             return
-        if self._scaling.shape[0] == 0 and model.scaling_frozen:  # frozen once, for good
-            self._scaling = np.stack(model.scaling)
-        gst = self._gst
-        if self._unscaled and self._scaling.shape[0]:
+        self.prepare_check(model, prm)
+        _check_pass(self._f, self._i, self._g, self._k, lazy, state, sc, prm, out)
+
+    def prepare_check(self, model: LinearModel, prm: np.ndarray) -> None:
+        """What a check settles before its compiled pass (:func:`_check_pass`): take the model's
+        scaling once it is frozen, and have rows kept before then scaled by this check."""
+        prm[P_UNSCALED] = 0.0
+        gst = self._g[-1]
+        if gst[G_FROZEN] == 0.0:
+            if model.scaling_frozen:  # frozen once, for good
+                self._parts()["scaling"][:] = np.stack(model.scaling)
+                gst[G_FROZEN] = 1.0
+        if self._unscaled and gst[G_FROZEN] > 0.0:
             prm[P_UNSCALED], self._unscaled = 1.0, False
-            gst[G_VALID], gst[G_INSERTS] = 0.0, self.size  # rebuilt once these rows are scaled
-        elif self._sums and self._scaling.shape[0] and gst[G_INSERTS] >= self.size:
-            # from scratch once per window's worth of events: no rounding builds up in the sums
-            _rebuild(self._num, self._idx, self._val, self._meta, self._loc, self._count, self._gm, self._gi, gst)
-        if self._sums and gst[G_VALID] > 0.0:
-            _sums_stats(self._num, self._idx, self._val, self._meta, self._loc, self._count, lazy, state, sc,
-                        self._scaling, prm, self._work, out, self._gm, self._gi, gst, self._wref, self._susp,
-                        self._snum, self._sidx, self._sval, self._smeta)
-        else:
-            _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
-                          prm, self._work, out)
-            if prm[P_UNSCALED] > 0.0:  # the ring's rows were scaled in place: so must the sample's be
-                self._resample()
 
     def score_all(self, model: LinearModel, prm: np.ndarray) -> None:
         """Score every kept event now, so that ``loss_raw`` / ``loss_avg`` are all current (a check
         that read the running sums scored only some; called within a check, rows scaled)."""
         prm[P_UNSCALED] = 0.0
-        prm[P_NEXT] = self._next
         lazy, state, sc = model.kernel_state()
-        _window_stats(self._num, self._idx, self._val, self._meta, self._count, lazy, state, sc, self._scaling,
-                      prm, self._work, np.zeros(N_STATS))
+        _score_every(self._f, self._i, self._g, self._k, lazy, state, sc, prm, np.zeros(N_STATS),
+                     self._parts()["work"])

@@ -57,27 +57,37 @@ from __future__ import annotations
 import copy
 import math
 import pickle
-from collections import deque
-
 import numpy as np
 
 from models import LinearModel, Rows
 
 from .config import MonitorConfig
 from .drift import ChangeDetector, sign_test_pvalue
-from .holdout import LOSS_CODES, N_PRM, N_STATS, HoldoutWindow
-from .holdout import (P_ABSURD, P_CODE, P_CUT, P_DELTA, P_LAST, P_RECENT, ST_AVG, ST_DIST,
-                      ST_KEPT, ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW)
+from .drift import PageHinkley
+from .holdout import LOSS_CODES, N_PRM, N_STATS, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_KEPT, ST_MEDIAN, ST_NEW, ST_AVG
+from .holdout import ST_RAW, HoldoutWindow
+from . import rules as R
 
 __all__ = ["Monitor"]
 
-def _copy_model(model: LinearModel) -> LinearModel:
+def _copy_model(model: LinearModel, into: LinearModel | None = None) -> LinearModel:
     """An independent copy of ``model``, in a few microseconds: the learned state of a model lives in
     numpy arrays ("state lives in plain arrays so that a snapshot is a byte copy", models/kernels.py),
     which are copied; the rest (frozen spec, the mapper's growing cache of categorical names, the
-    empty warm-up buffer of a frozen model) is shared. The tests check it against ``to_bytes``."""
-    twin = copy.copy(model)
-    twin.__dict__.update({k: v.copy() for k, v in vars(model).items() if isinstance(v, np.ndarray)})
+    empty warm-up buffer of a frozen model) is shared. With ``into`` (an earlier copy) the arrays
+    are copied into its own where the shapes agree, which spares allocating them again (the trusted
+    copy is refreshed every few checks). The tests check it against ``to_bytes``."""
+    twin = copy.copy(model) if into is None else into
+    theirs = vars(twin)
+    for k, v in vars(model).items():
+        if isinstance(v, np.ndarray):
+            mine = theirs.get(k) if into is not None else None
+            if mine is not None and mine is not v and mine.shape == v.shape and mine.dtype == v.dtype:
+                np.copyto(mine, v)
+            else:
+                theirs[k] = v.copy()
+        elif into is not None:
+            theirs[k] = v
     return twin
 
 
@@ -101,8 +111,6 @@ class Monitor:
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
         self.cfg = cfg
-        #: rollback alarms raised while ``[monitor] rollback = false`` (reported, not acted on)
-        self.alarms_ignored = 0
         spec = model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self.window = HoldoutWindow(cfg.window, len(spec.numeric), sums=spec.loss == "squared")
@@ -114,20 +122,27 @@ class Monitor:
         self._prm[P_CUT] = math.inf
         self._prm[P_ABSURD] = self._absurd
         self._stats = np.zeros(N_STATS)
-        self._detector = ChangeDetector.for_monitor(cfg)
+        # the rules' settings and state, read and written by the compiled check (rules.py)
+        m = self._m = np.zeros(R.N_STATE)
+        m[R.C_MARGIN], m[R.C_PATIENCE], m[R.C_MIN_HOLDOUT] = cfg.rollback_margin, cfg.rollback_patience, cfg.min_holdout
+        m[R.C_LIMIT] = cfg.divergence_radii * self._radius if self._radius else math.nan  # else set per check
+        m[R.C_NOISE], m[R.C_SNAPSHOT], m[R.C_ROLLBACK] = cfg.noise_allowance, cfg.snapshot_every, float(cfg.rollback)
+        m[R.C_ABSURD], m[R.C_BETTER], m[R.C_DRIFT] = self._absurd, float(cfg.serve == "better"), R.DRIFT_CODES[cfg.drift]
+        m[R.C_CONFIRM], m[R.C_RECENT] = cfg.drift_confirm, cfg.confirm_recent
+        m[R.C_GFIX] = float(spec.grad_bound) if spec.grad_bound is not None else 0.0
         # event indices of the last checks (bounded: a patience set out of reach must not grow it)
-        self._bounds: deque = deque([-1], maxlen=min(max(cfg.rollback_patience, cfg.confirm_recent), 64) + 1)
-        self._worse_streak = 0
-        self._healthy = 0
-        self._alert = False
-        self._refused_since = 0
-        self._g2 = math.inf
-        self._alarm_event: int | None = None
-        self._alarm_checks = 0
+        m[R.C_BOUNDS] = min(max(cfg.rollback_patience, cfg.confirm_recent), 64) + 1
+        m[R.B_LEN], m[R.B_POS], m[R.B_RING] = 1.0, 1.0, -1.0
+        m[R.S_G2], m[R.S_ALARM], m[R.S_RAW_SERVED] = math.inf, -1.0, float(cfg.serve == "raw")
+        # Page-Hinkley on the per-check exceedance share (the detector ChangeDetector.for_monitor builds)
+        m[R.PH_MIN], m[R.PH_DELTA], m[R.PH_THRESHOLD] = cfg.drift_min_checks, cfg.drift_delta, cfg.drift_threshold
+        m[R.PH_ALPHA], m[R.PH_MODE] = PageHinkley().alpha, R.PH_MODES["up"]
+        R.ph_reset(m)
+        self._res = np.zeros(R.N_RES)
+        self._detector = ChangeDetector.for_monitor(cfg) if cfg.drift == "adwin" else None
         self._trusted: LinearModel | None = None
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None
-        self._serving = "raw" if cfg.serve == "raw" else "averaged"
         self._last: dict = {}
         self.incidents: list[dict] = []
         self._rejects: list[tuple[int, int]] = []
@@ -137,7 +152,12 @@ class Monitor:
     @property
     def serving(self) -> str:
         """The iterate the model serves now: ``"raw"`` or ``"averaged"``."""
-        return self._serving
+        return "raw" if self._m[R.S_RAW_SERVED] else "averaged"
+
+    @property
+    def alarms_ignored(self) -> int:
+        """Rollback alarms raised while ``[monitor] rollback = false`` (reported, not acted on)."""
+        return int(self._m[R.S_IGNORED])
 
     @property
     def last_check(self) -> dict:
@@ -155,7 +175,7 @@ class Monitor:
         self.window.add(rows, y, mode, start, stop, first)
 
     def note_refused(self, count: int) -> None:
-        self._refused_since += count
+        self._m[R.S_REFUSED] += count
 
     def note_rejected(self, rejected: int, total: int, event: int, ts: float | None = None) -> None:
         """Count rejected input; one incident per burst above ``reject_burst_share``."""
@@ -195,80 +215,65 @@ class Monitor:
 
     def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
         """Evaluate both iterates on the window, act if needed; return the check's record."""
-        cfg, prm, bounds = self.cfg, self._prm, self._bounds
-        prm[P_LAST] = bounds[-1]
-        prm[P_RECENT] = bounds[-min(cfg.rollback_patience, len(bounds))]
-        self.window.stats(model, prm, self._stats)
-        # Python floats from here on (arithmetic on numpy scalars costs several times more)
-        st = self._stats.tolist()
-        median = st[ST_MEDIAN]
-        if median > 0:
-            prm[P_CUT] = self._absurd * median
-        n, kept = len(self.window), int(st[ST_KEPT])
-        raw = st[ST_RAW] / kept if kept else math.nan
-        avg = st[ST_AVG] / kept if kept else math.nan
-        distance = st[ST_DIST]
-        g = model.grad_bound
-        if g is not None and 0 < g * g < self._g2:
-            self._g2 = g * g
-        allowance = cfg.noise_allowance * model.last_step * self._g2 / 4.0 if self._g2 < math.inf else 0.0
+        window, prm, m = self.window, self._prm, self._m
+        window.prepare_check(model, prm)
+        if self._radius is None:
+            m[R.C_LIMIT] = self.cfg.divergence_radii * max(model.norm("averaged"), 1.0)
+        lazy, state, sc = model.kernel_state()
+        R.decide(window._f, window._i, window._g, window._k, lazy, state, sc, prm, self._stats, m, self._res, event)
+        r = self._res.tolist()  # Python floats from here on
+        raw, avg, n, kept, distance, allowance = r[R.R_RAW], r[R.R_AVG], int(r[R.R_HELD]), int(r[R.R_KEPT]), \
+            r[R.R_DIST], r[R.R_ALLOWANCE]
         record = {"event": int(event), "holdout_raw": raw, "holdout_avg": avg, "held_out": n, "excluded": n - kept,
                   "action": None, "distance": distance, "allowance": allowance}
-        limit = cfg.divergence_radii * (self._radius or max(model.norm("averaged"), 1.0))
-        reason, by_loss = None, False
-        if self._refused_since:
-            reason = f"{self._refused_since} update(s) refused as non-finite"
-        elif distance > limit:
-            reason = f"raw iterate {distance:.3g} from the average (limit {limit:.3g})"
-        elif kept >= cfg.min_holdout:
-            worse = raw > (1.0 + cfg.rollback_margin) * avg + allowance
-            if worse and st[ST_REC_N] >= 10 and st[ST_REC_RAW] < st[ST_REC_AVG]:
-                worse = False
-                record["following"] = True
-            self._worse_streak = self._worse_streak + 1 if worse else 0
-            # right after a rollback the fault has shown itself: one worse check is enough then
-            if self._worse_streak >= (1 if self._alert else cfg.rollback_patience):
-                by_loss = True
-                reason = (f"held-out loss of the raw iterate {raw:.4g} vs averaged {avg:.4g} (worse by more "
-                          f"than {cfg.rollback_margin:.0%} plus its noise allowance {allowance:.3g} on "
-                          f"{self._worse_streak} checks in a row)")
-        if reason and not cfg.rollback:
-            record["alarm"] = reason  # observed, not acted on: this config has rollbacks switched off
-            self.alarms_ignored += 1
-            reason = None
-        if reason:
-            model = self._rollback(model, event, ts, reason, by_loss, {
-                "holdout_raw": raw, "holdout_avg": avg, "distance": distance, "allowance": allowance,
-                "held_out": kept})
-            record["action"] = "rollback"
-        elif self._worse_streak:
-            self._healthy = 0
-        else:
-            self._healthy += 1
-            self._alert = self._alert and self._healthy < cfg.rollback_patience
-            if self._healthy % cfg.snapshot_every == 0 and model.scaling_frozen:
-                self._trusted, self._trusted_event = _copy_model(model), int(event)
-        self._refused_since = 0
-        if self._detector is not None:
-            self._drift(model, st, event, ts, record)
-        if cfg.serve == "better" and kept:
-            self._serving = "raw" if raw < avg else "averaged"
-        record["serving"] = self._serving
-        bounds.append(int(event))
+        if r[R.R_FOLLOWING]:
+            record["following"] = True
+        if r[R.R_REASON]:
+            reason = self._reason(r)
+            if r[R.R_IGNORED]:
+                record["alarm"] = reason  # observed, not acted on: this config has rollbacks switched off
+            else:
+                model = self._rollback(model, event, ts, reason, r[R.R_REASON] == R.REASON_LOSS,
+                                       int(r[R.R_REFUSED]), {"holdout_raw": raw, "holdout_avg": avg,
+                                                             "distance": distance, "allowance": allowance,
+                                                             "held_out": kept})
+                record["action"] = "rollback"
+        elif r[R.R_SNAPSHOT]:
+            self._trusted, self._trusted_event = _copy_model(model, self._trusted), int(event)
+        if r[R.R_EXCEEDANCE] == r[R.R_EXCEEDANCE]:
+            record["exceedance"] = r[R.R_EXCEEDANCE]
+        if r[R.R_ADWIN]:
+            st = self._stats
+            if self._detector.update_many(window.new_above(int(st[ST_NEW]), float(st[ST_MEDIAN]))):
+                m[R.S_ALARM], m[R.S_ALARM_CHECKS] = r[R.R_LAST] + 1.0, 0.0
+                record["alarm"] = int(m[R.S_ALARM])
+        if r[R.R_ALARM] >= 0.0:
+            record["alarm"] = int(r[R.R_ALARM])
+        if r[R.R_CONFIRM]:
+            self._confirm(model, event, ts, record, r[R.R_CONFIRM_FROM])
+        record["serving"] = self.serving
         self._last = record
         return record
 
-    def _rollback(self, model: LinearModel, event: int, ts, reason: str, by_loss: bool,
+    def _reason(self, r: list) -> str:
+        cfg = self.cfg
+        if r[R.R_REASON] == R.REASON_REFUSED:
+            return f"{int(r[R.R_REFUSED])} update(s) refused as non-finite"
+        if r[R.R_REASON] == R.REASON_DISTANCE:
+            return f"raw iterate {r[R.R_DIST]:.3g} from the average (limit {r[R.R_LIMIT]:.3g})"
+        return (f"held-out loss of the raw iterate {r[R.R_RAW]:.4g} vs averaged {r[R.R_AVG]:.4g} (worse by more "
+                f"than {cfg.rollback_margin:.0%} plus its noise allowance {r[R.R_ALLOWANCE]:.3g} on "
+                f"{int(r[R.R_STREAK])} checks in a row)")
+
+    def _rollback(self, model: LinearModel, event: int, ts, reason: str, by_loss: bool, refused: int,
                   evidence: dict) -> LinearModel:
         """Go back to the last trusted copy (not after a refused update: nothing was learned then),
-        set raw := averaged and shrink the steps; return the model now in use. After a rollback by
-        the loss rule, the next worse check is enough for another (``_alert``)."""
-        restore = self._trusted is not None and not self._refused_since
+        set raw := averaged and shrink the steps; return the model now in use. (The rules' state,
+        and after a rollback by the loss rule the one-check trigger, are set by ``rules.decide``.)"""
+        restore = self._trusted is not None and not refused
         if restore:
             model = self._restored = _copy_model(self._trusted)
         model.rollback(self.cfg.rollback_shrink)
-        self._worse_streak = self._healthy = 0
-        self._alert = by_loss
         self._incident("rollback", event, ts, reason, {**evidence, "step_scale": model.step_scale,
                                                       "restored_from": self._trusted_event if restore else None})
         return model
@@ -278,47 +283,33 @@ class Monitor:
         model, self._restored = self._restored, None
         return model
 
-    def _drift(self, model: LinearModel, st: list, event: int, ts, record: dict) -> None:
-        if self._alarm_event is None:
-            old = len(self.window) - st[ST_NEW]
-            if st[ST_NEW] > 0 and old >= 10 and st[ST_MEDIAN] > 0:
-                share = st[ST_NEW_ABOVE] / st[ST_NEW]
-                record["exceedance"] = share
-                if self._detector.kind == "adwin":  # ADWIN's bound counts inputs: one per event
-                    fired = self._detector.update_many(self.window.new_above(int(st[ST_NEW]), st[ST_MEDIAN]))
-                else:
-                    fired = self._detector.update(share)
-                if fired:
-                    self._alarm_event = self._bounds[-1] + 1
-                    self._alarm_checks = 0
-                    record["alarm"] = self._alarm_event
-            return
-        self._alarm_checks += 1
-        if self._alarm_checks < self.cfg.drift_confirm:
-            return
+    def _confirm(self, model: LinearModel, event: int, ts, record: dict, recent_from: float) -> None:
+        """An alarm's ``drift_confirm`` checks are up: restart if the averaged iterate got worse."""
+        m = self._m
+        alarm = int(m[R.S_ALARM])
         self.window.score_all(model, self._prm)  # the check may have scored only some events
         ev = self.window.events()
-        recent = ev > self._bounds[-min(self.cfg.confirm_recent, len(self._bounds))]
-        before = ev < self._alarm_event
+        recent = ev > recent_from
+        before = ev < alarm
         verdicts = {name: self._worse(losses[: len(ev)], before, recent)
                     for name, losses in (("raw", self.window.loss_raw), ("averaged", self.window.loss_avg))}
         if verdicts["averaged"]["worse"]:
             model.restart()
-            self.window.drop_before(self._alarm_event)
-            self._g2 = math.inf
-            self._worse_streak = self._healthy = 0
-            self._alert = False
+            self.window.drop_before(alarm)
+            m[R.S_G2], m[R.S_STREAK], m[R.S_HEALTHY], m[R.S_ALERT] = math.inf, 0.0, 0.0, 0.0
             self._trusted = self._trusted_event = None  # a copy from the old world must not come back
             record["action"] = "restart"
             v = verdicts["averaged"]
             self._incident("restart", event, ts,
-                           f"after event {self._alarm_event} the averaged iterate's held-out loss rose from "
+                           f"after event {alarm} the averaged iterate's held-out loss rose from "
                            f"{v['before']:.4g} to {v['recent']:.4g} (medians; {v['above']} of {v['n']} recent "
                            f"events above the old median, p = {v['p']:.2g}): the feed changed",
-                           {"alarm_event": self._alarm_event, "checks": self._alarm_checks, **{
+                           {"alarm_event": alarm, "checks": int(m[R.S_ALARM_CHECKS]), **{
                                f"{k}_{name}": val for name, d in verdicts.items() for k, val in d.items()}})
-        self._alarm_event = None
-        self._detector.reset()
+        m[R.S_ALARM] = -1.0
+        R.ph_reset(m)
+        if self._detector is not None:
+            self._detector.reset()
 
     def _worse(self, losses: np.ndarray, before: np.ndarray, recent: np.ndarray) -> dict:
         """Whether ``losses`` of the recent events exceed those of the pre-alarm events (sign test)."""
@@ -339,7 +330,7 @@ class Monitor:
 
     def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request") -> None:
         model.rollback(self.cfg.rollback_shrink)
-        self._worse_streak = 0
+        self._m[R.S_STREAK] = 0.0
         self._incident("rollback", event, None, reason, {"step_scale": model.step_scale})
 
     # ---------------------------------------------------------------- state

@@ -15,10 +15,9 @@ import numpy as np
 import pytest
 
 from models import Rows
-from service import holdout
+from service import holdout, rules
 from service.config import config_from_dict
 from service.engine import Engine, PreparedBatch, holdout_fraction
-from service.holdout import HoldoutWindow
 
 from . import monitor_feeds as feeds
 
@@ -31,27 +30,28 @@ CLOSE = (holdout.ST_RAW, holdout.ST_AVG, holdout.ST_REC_RAW, holdout.ST_REC_AVG)
 def compared(monkeypatch):
     """Every check's figures side by side with a full pass's on the same state: counts per path."""
     seen = {"sums": 0, "full": 0, "excluded": 0}
-    stats = HoldoutWindow.stats
+    decide = rules.decide
 
-    def checked(self, model, prm, out, work=None):
-        if work is not None:
-            return stats(self, model, prm, out, work)
-        before, pending = prm.copy(), self.unscaled
-        stats(self, model, prm, out)
+    def checked(f, i, g, k, lazy, state, sc, prm, out, m, res, event):
+        cut, pending = prm[holdout.P_CUT], prm[holdout.P_UNSCALED] > 0
+        decide(f, i, g, k, lazy, state, sc, prm, out, m, res, event)
         if pending:  # rows scaled by this very check: the full pass ran
             seen["full"] += 1
             return
+        again = prm.copy()
+        again[holdout.P_CUT] = cut  # the cut this check used (it sets the next one)
         want = np.zeros_like(out)
-        stats(self, model, before, want, np.zeros((3, self.size)))
-        for k in EXACT:
-            assert out[k] == want[k] or (np.isnan(out[k]) and np.isnan(want[k])), (k, out[k], want[k])
-        for k in CLOSE:
-            assert out[k] == pytest.approx(want[k], rel=1e-9, abs=1e-12), (k, out[k], want[k])
-        used = self._sums and self._gst[holdout.G_VALID] > 0 and self._gst[holdout.G_SINCE] > 0
+        holdout._score_every(f, i, g, k, lazy, state, sc, again, want, np.zeros((3, f.shape[1])))
+        for q in EXACT:
+            assert out[q] == want[q] or (np.isnan(out[q]) and np.isnan(want[q])), (q, out[q], want[q])
+        for q in CLOSE:
+            assert out[q] == pytest.approx(want[q], rel=1e-9, abs=1e-12), (q, out[q], want[q])
+        gst = g[-1]
+        used = gst[holdout.G_SUMS] > 0 and gst[holdout.G_VALID] > 0 and gst[holdout.G_SINCE] > 0
         seen["sums" if used else "full"] += 1
-        seen["excluded"] += int(len(self) - out[holdout.ST_KEPT])
+        seen["excluded"] += int(gst[holdout.G_COUNT] - out[holdout.ST_KEPT])
 
-    monkeypatch.setattr(HoldoutWindow, "stats", checked)
+    monkeypatch.setattr(rules, "decide", checked)
     return seen
 
 
@@ -103,7 +103,7 @@ def test_sums_step_aside_when_the_window_uses_too_many_coordinates(compared):
     _run(eng, b.__class__(b.ids[:40_000], b.ts[:40_000], b.rows.take(np.arange(40_000)), b.y[:40_000],
                           b.mode[:40_000]))
     assert compared["sums"] == 0 and compared["full"] > 100
-    assert eng.monitor.window._gst[holdout.G_VALID] == 0
+    assert eng.monitor.window._g[-1, holdout.G_VALID] == 0
     _run(eng, b.__class__(b.ids[40_000:], b.ts[40_000:], b.rows.take(np.arange(40_000, n)), b.y[40_000:],
                           b.mode[40_000:]))
     print(compared)

@@ -316,6 +316,11 @@ def test_trusted_copy_is_an_independent_model():
     for m in (twin, snap):
         m.process(rest.rows, rest.y, rest.mode, Outcome.empty(len(rest)))
     assert twin.digest == snap.digest
+    # refreshed in place (the monitor's way every few checks): the original's state, still independent
+    again = _copy_model(eng.model, twin)
+    assert again is twin and twin.digest == eng.model.digest and twin._st is not eng.model._st
+    apply(eng, s, 0, 500)
+    assert twin.digest != eng.model.digest
 
 
 def test_serve_better_follows_the_lower_window_loss():
