@@ -166,17 +166,18 @@ class Engine:
             self._seg_n += int(np.count_nonzero(learn))
             self._since_check += int(np.count_nonzero(learn))
             refused = int(np.count_nonzero(out.code[seg] == 2))
-            if self.monitor is not None:
-                self.monitor.hold_out(rows, y, mode, i, nxt, first)
-                if refused:
-                    self.monitor.note_refused(refused)
+            if self.monitor is not None and refused:
+                self.monitor.note_refused(refused)
             self.refused += refused
+            held = (rows, y, mode, i, nxt, first)
             i = nxt
             if self._since_check >= self._check_every:
                 self._since_check = 0
-                record = self._check(first + i - 1, batch.ts[i - 1])
+                record = self._check(first + i - 1, batch.ts[i - 1], held)  # the check keeps them first
                 if record.get("action"):
                     actions.append(record)
+            elif self.monitor is not None:
+                self.monitor.hold_out(*held)
         learned = int(np.count_nonzero(mode == 1))
         held = int(np.count_nonzero(mode == 2))
         self.events += n
@@ -188,11 +189,11 @@ class Engine:
         self._loss_n += len(lossed)
         return Applied(out, first, learned, held, n - learned - held, int(np.count_nonzero(out.code == 2)), actions)
 
-    def _check(self, event: int, ts: float) -> dict:
+    def _check(self, event: int, ts: float, held: tuple | None = None) -> dict:
         ts = None if np.isnan(ts) else float(ts)
         record = {"event": event}
         if self.monitor is not None:
-            record = self.monitor.check(self.model, event, ts)
+            record = self.monitor.check(self.model, event, ts, held)
             restored = self.monitor.take_restored()
             if restored is not None:  # a rollback went back to the last trusted state
                 self.model = restored

@@ -779,10 +779,19 @@ class HoldoutWindow:
         nxt, kept = _keep(self._f, self._i, self._g, self._k, rows.indptr, rows.indices, rows.values, mode, y, events,
                           start, stop, first)
         if nxt < 0:  # a wider row than any before: widen the ring (rare) and copy again
-            self._layout(-nxt)
+            self.widen(-nxt)
             nxt, kept = _keep(self._f, self._i, self._g, self._k, rows.indptr, rows.indices, rows.values, mode, y,
                               events, start, stop, first)
-        if kept and self._gst[G_FROZEN] == 0.0:
+        if kept:
+            self.note_kept()
+
+    def widen(self, width: int) -> None:
+        """Make room for ``width`` categorical entries per event."""
+        self._layout(width)
+
+    def note_kept(self) -> None:
+        """Rows were just kept: before the scaling froze they wait to be scaled."""
+        if self._g[-1, G_FROZEN] == 0.0:
             self._unscaled = True
 
     def drop_before(self, event: int) -> None:

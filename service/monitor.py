@@ -91,6 +91,10 @@ def _copy_model(model: LinearModel, into: LinearModel | None = None) -> LinearMo
     return twin
 
 
+_NOTHING_HELD = (Rows(np.zeros(1, dtype=np.int64), np.zeros(0, dtype=np.int64), np.zeros(0)), np.zeros(0),
+                 np.zeros(0, dtype=np.int8), 0, 0, 0)
+
+
 class Monitor:
     """Watches a model on held-out events and decides rollbacks, restarts and the serving iterate.
 
@@ -114,16 +118,15 @@ class Monitor:
         spec = model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self.window = HoldoutWindow(cfg.window, len(spec.numeric), sums=spec.loss == "squared")
-        self._prm = np.zeros(N_PRM)
+        self._mon = np.zeros(R.N_MONITOR)  # window scalars and figures, the rules' results and state
         self._prm[P_CODE] = LOSS_CODES[spec.loss]
         self._prm[P_DELTA] = spec.huber_delta
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
         self._absurd = math.inf if spec.loss == "logistic" else cfg.absurd_factor
         self._prm[P_CUT] = math.inf
         self._prm[P_ABSURD] = self._absurd
-        self._stats = np.zeros(N_STATS)
         # the rules' settings and state, read and written by the compiled check (rules.py)
-        m = self._m = np.zeros(R.N_STATE)
+        m = self._m
         m[R.C_MARGIN], m[R.C_PATIENCE], m[R.C_MIN_HOLDOUT] = cfg.rollback_margin, cfg.rollback_patience, cfg.min_holdout
         m[R.C_LIMIT] = cfg.divergence_radii * self._radius if self._radius else math.nan  # else set per check
         m[R.C_NOISE], m[R.C_SNAPSHOT], m[R.C_ROLLBACK] = cfg.noise_allowance, cfg.snapshot_every, float(cfg.rollback)
@@ -138,7 +141,6 @@ class Monitor:
         m[R.PH_MIN], m[R.PH_DELTA], m[R.PH_THRESHOLD] = cfg.drift_min_checks, cfg.drift_delta, cfg.drift_threshold
         m[R.PH_ALPHA], m[R.PH_MODE] = PageHinkley().alpha, R.PH_MODES["up"]
         R.ph_reset(m)
-        self._res = np.zeros(R.N_RES)
         self._detector = ChangeDetector.for_monitor(cfg) if cfg.drift == "adwin" else None
         self._trusted: LinearModel | None = None
         self._trusted_event: int | None = None
@@ -147,6 +149,24 @@ class Monitor:
         self.incidents: list[dict] = []
         self._rejects: list[tuple[int, int]] = []
         self._reject_open = False
+
+    # views of the one array the compiled check reads and writes (views are made on access, so that
+    # a pickled monitor is one array again when loaded)
+    @property
+    def _prm(self) -> np.ndarray:
+        return self._mon[R.O_PRM:R.O_PRM + N_PRM]
+
+    @property
+    def _stats(self) -> np.ndarray:
+        return self._mon[R.O_OUT:R.O_OUT + N_STATS]
+
+    @property
+    def _res(self) -> np.ndarray:
+        return self._mon[R.O_RES:R.O_RES + R.N_RES]
+
+    @property
+    def _m(self) -> np.ndarray:
+        return self._mon[R.O_STATE:]
 
     # ---------------------------------------------------------------- inputs
     @property
@@ -213,14 +233,22 @@ class Monitor:
         kept = st[ST_KEPT]
         return {"raw": st[ST_RAW] / kept, "averaged": st[ST_AVG] / kept} if kept else {"raw": None, "averaged": None}
 
-    def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
-        """Evaluate both iterates on the window, act if needed; return the check's record."""
-        window, prm, m = self.window, self._prm, self._m
-        window.prepare_check(model, prm)
+    def check(self, model: LinearModel, event: int, ts: float | None = None, held: tuple | None = None) -> dict:
+        """Evaluate both iterates on the window, act if needed; return the check's record. ``held``:
+        ``(rows, y, mode, start, stop, first)`` as for :meth:`hold_out`, rows kept first (one call)."""
+        window, mon = self.window, self._mon
+        window.prepare_check(model, self._prm)
         if self._radius is None:
-            m[R.C_LIMIT] = self.cfg.divergence_radii * max(model.norm("averaged"), 1.0)
+            self._m[R.C_LIMIT] = self.cfg.divergence_radii * max(model.norm("averaged"), 1.0)
         lazy, state, sc = model.kernel_state()
-        R.decide(window._f, window._i, window._g, window._k, lazy, state, sc, prm, self._stats, m, self._res, event)
+        rows, y, mode, lo, hi, first = held if held is not None else _NOTHING_HELD
+        args = (rows.indptr, rows.indices, rows.values, mode, y, lo, hi, first, lazy, state, sc, mon, event)
+        R.decide(window._f, window._i, window._g, window._k, *args)
+        if mon[R.O_RES + R.R_WIDEN]:  # a wider row than any before: widen the window (rare), then again
+            window.widen(int(mon[R.O_RES + R.R_WIDEN]))
+            R.decide(window._f, window._i, window._g, window._k, *args)
+        if mon[R.O_RES + R.R_KEPT_NOW]:
+            window.note_kept()
         r = self._res.tolist()  # Python floats from here on
         raw, avg, n, kept, distance, allowance = r[R.R_RAW], r[R.R_AVG], int(r[R.R_HELD]), int(r[R.R_KEPT]), \
             r[R.R_DIST], r[R.R_ALLOWANCE]
@@ -245,6 +273,7 @@ class Monitor:
         if r[R.R_ADWIN]:
             st = self._stats
             if self._detector.update_many(window.new_above(int(st[ST_NEW]), float(st[ST_MEDIAN]))):
+                m = self._m
                 m[R.S_ALARM], m[R.S_ALARM_CHECKS] = r[R.R_LAST] + 1.0, 0.0
                 record["alarm"] = int(m[R.S_ALARM])
         if r[R.R_ALARM] >= 0.0:

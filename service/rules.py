@@ -22,10 +22,10 @@ import numpy as np
 
 from models.kernels import S_GN, S_GSQ, S_LASTETA
 
-from .holdout import (G_COUNT, G_FROZEN, P_CUT, P_LAST, P_RECENT, ST_AVG, ST_DIST, ST_KEPT, ST_MEDIAN, ST_NEW,
-                      ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _check_pass)
+from .holdout import (G_COUNT, G_FROZEN, N_PRM, N_STATS, P_CUT, P_LAST, P_RECENT, ST_AVG, ST_DIST, ST_KEPT,
+                      ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _check_pass, _keep)
 
-__all__ = ["BOUNDS", "N_RES", "N_STATE", "decide", "ph_reset"]
+__all__ = ["BOUNDS", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_reset"]
 
 # settings (fixed at start)
 (C_MARGIN, C_PATIENCE, C_MIN_HOLDOUT, C_LIMIT, C_NOISE, C_SNAPSHOT, C_ROLLBACK, C_ABSURD, C_BETTER, C_DRIFT,
@@ -44,7 +44,11 @@ PH_MODES = {"up": 0, "down": 1, "both": 2}
 # what a check found and asks for
 (R_RAW, R_AVG, R_HELD, R_KEPT, R_DIST, R_ALLOWANCE, R_LIMIT, R_FOLLOWING, R_REASON, R_STREAK, R_REFUSED,
  R_IGNORED, R_ROLLBACK, R_SNAPSHOT, R_EXCEEDANCE, R_ALARM, R_CONFIRM, R_ADWIN, R_LAST, R_CONFIRM_FROM,
- N_RES) = range(21)
+ R_WIDEN, R_KEPT_NOW, N_RES) = range(23)
+# the monitor's one float array: window scalars (holdout.P_*), window figures (ST_*), results, state
+O_PRM, O_OUT, O_RES = 0, N_PRM, N_PRM + N_STATS
+O_STATE = O_RES + N_RES
+N_MONITOR = O_STATE + N_STATE
 REASON_REFUSED, REASON_DISTANCE, REASON_LOSS = 1, 2, 3
 
 _jit = numba.njit(cache=True, nogil=True, error_model="numpy")
@@ -103,8 +107,17 @@ def _bound(m, back):
 
 
 @_jit
-def decide(f, i, g, k, lazy, state, sc, prm, out, m, res, event):
-    """Score the window (figures into ``out``) and apply the rules for the check at ``event``."""
+def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event):
+    """Keep the held-out rows among ``lo..hi`` (as ``holdout._put``), score the window and apply the
+    rules for the check at ``event``; ``mon`` holds the window scalars, figures, results and the
+    rules' state (layout ``O_*``). A row wider than the window stops it before anything changes
+    (``res[R_WIDEN]``: the width needed)."""
+    prm, out = mon[O_PRM:O_PRM + N_PRM], mon[O_OUT:O_OUT + N_STATS]
+    res, m = mon[O_RES:O_RES + N_RES], mon[O_STATE:]
+    nxt, kept_now = _keep(f, i, g, k, indptr, indices, values, mode, y, indptr[:0], lo, hi, first)
+    if nxt < 0:
+        res[R_WIDEN] = -nxt
+        return
     n_bounds = int(m[B_LEN])
     patience = m[C_PATIENCE]
     prm[P_LAST] = _bound(m, 1)
@@ -129,6 +142,7 @@ def decide(f, i, g, k, lazy, state, sc, prm, out, m, res, event):
         res[q] = 0.0
     res[R_EXCEEDANCE] = math.nan
     res[R_ALARM] = -1.0
+    res[R_KEPT_NOW] = kept_now
     res[R_RAW], res[R_AVG], res[R_HELD], res[R_KEPT], res[R_DIST] = raw, avg, n, kept, dist
     res[R_ALLOWANCE], res[R_LIMIT], res[R_REFUSED] = allowance, m[C_LIMIT], m[S_REFUSED]
     reason = 0

@@ -32,9 +32,12 @@ def compared(monkeypatch):
     seen = {"sums": 0, "full": 0, "excluded": 0}
     decide = rules.decide
 
-    def checked(f, i, g, k, lazy, state, sc, prm, out, m, res, event):
+    def checked(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event):
+        prm, out = mon[rules.O_PRM:rules.O_OUT], mon[rules.O_OUT:rules.O_RES]
         cut, pending = prm[holdout.P_CUT], prm[holdout.P_UNSCALED] > 0
-        decide(f, i, g, k, lazy, state, sc, prm, out, m, res, event)
+        decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event)
+        if mon[rules.O_RES + rules.R_WIDEN]:
+            return
         if pending:  # rows scaled by this very check: the full pass ran
             seen["full"] += 1
             return
