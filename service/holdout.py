@@ -28,6 +28,7 @@ LOSS_CODES = {"squared": 0, "huber": 1, "logistic": 2}
  N_STATS) = range(11)
 P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, P_NEXT, P_ABSURD, N_PRM = range(9)
 M_Y, M_EVENT, M_SCALED, N_META = range(4)
+N_WORK = 4  # work rows: raw losses, averaged losses, scratch, the sample's products
 # the running sums' bookkeeping (``HoldoutWindow._gst``): sums valid, events kept since the last
 # rebuild, residual bound of the non-suspects, largest ||x||, checks since the reference pass, the
 # averaged iterate's largest move since (coefficients, intercept), suspects kept (-1: too many),
@@ -42,6 +43,7 @@ SUMS_CATEGORICAL = 64   # categorical coordinates the running sums follow at mos
 SUMS_NUMERIC = 48       # numeric features beyond which the sums cost more than the pass
 SUSPECTS = 256          # events rescored one by one at each check at most
 REFERENCE_EVERY = 32    # checks between full passes at most
+TAU_SHARE = 0.7         # suspects: averaged residual above this share of the cut's (see _sums_stats)
 _HT = 4 * SUMS_CATEGORICAL  # open-addressing table: bucket -> local coordinate
 # the integer bookkeeping ``HoldoutWindow._gi``: bucket of each local categorical coordinate (-1:
 # none), events using it, then the table's keys (-1: empty) and values
@@ -264,7 +266,7 @@ def _rebuild(num, idx, val, meta, loc, n, gm, gi, gst):
 
 
 @_jit
-def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out):
+def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out, snum, sidx, sval, smeta):
     """Score the ``n`` kept events with both iterates of the model whose learned arrays are
     ``state`` / ``sc`` (``lazy`` representation or not) and fill ``out`` (layout ``ST_*``).
 
@@ -285,6 +287,8 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
                 for j in range(nnum):
                     x = num[j, i]
                     num[j, i] = 0.0 if math.isnan(x) else (x - scaling[0, j]) / scaling[1, j]
+                    if i % 4 == 0:  # and its copy in the sample block
+                        snum[j, i // 4] = num[j, i]
                 meta[M_SCALED, i] = 1.0
     # <state[:, 0], x> and <state[:, 1], x> of every event: the dense numeric block first
     for i in range(n):
@@ -348,12 +352,9 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
             r_n += 1.0
         k += 1
     # a new event exceeds the median of any sample of the older events with probability 1/2 just
-    # the same; every 4th slot costs a quarter of the work
-    k_old = 0
-    for i in range(0, n, 4):
-        if events[i] <= last_event:
-            scratch[k_old] = da[i]
-            k_old += 1
+    # the same; every 4th slot (the sample block) costs a quarter of the work
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + 3) // 4, lazy, state, sc, code, delta, last_event,
+                           work[3], scratch)
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
     for k in range(n - k_new, n):
@@ -386,34 +387,33 @@ def _slot_losses(num, idx, val, y, slot, lazy, state, sc, code, delta):
 
 
 @_jit
-def _sample_losses(snum, sidx, sval, smeta, ks, lazy, state, sc, code, delta, last_event, dv, da, scratch):
+def _sample_losses(snum, sidx, sval, smeta, ks, lazy, state, sc, code, delta, last_event, acc, scratch):
     """The averaged losses of the sample block's first ``ks`` events held out by ``last_event`` into
-    ``scratch`` (as the full pass computes them, stage by stage over the block); their count."""
+    ``scratch``; their count. One product per event with the averaged coefficients
+    ``(ua * state[:, 1] + aa * state[:, 0]) * ia`` (``kernels.margin_map``), stage by stage over the
+    block; both the full pass and the running sums take the median from here."""
+    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
     for i in range(ks):
-        dv[i] = 0.0
-        da[i] = 0.0
+        acc[i] = 0.0
     for j in range(snum.shape[0]):
-        wv, wu, x = state[j, 0], state[j, 1], snum[j]
+        w, x = (ua * state[j, 1] + aa * state[j, 0]) * ia, snum[j]
         for i in range(ks):
-            dv[i] += x[i] * wv
-            da[i] += x[i] * wu
+            acc[i] += x[i] * w
     for p in range(sidx.shape[0]):
         ip, vp = sidx[p], sval[p]
         for i in range(ks):
-            j, x = ip[i], vp[i]
-            dv[i] += state[j, 0] * x
-            da[i] += state[j, 1] * x
-    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
+            j = ip[i]
+            acc[i] += (ua * state[j, 1] + aa * state[j, 0]) * ia * vp[i]
     y, events = smeta[M_Y], smeta[M_EVENT]
+    b = ba * ia
     k_old = 0
     for i in range(ks):
         if events[i] <= last_event:
-            m_avg = (ua * da[i] + aa * dv[i] + ba) * ia
             if code == 0:
-                a = m_avg - y[i]
+                a = acc[i] + b - y[i]
                 scratch[k_old] = 0.5 * a * a
             else:
-                scratch[k_old] = _loss(code, delta, m_avg, y[i])
+                scratch[k_old] = _loss(code, delta, acc[i] + b, y[i])
             k_old += 1
     return k_old
 
@@ -422,11 +422,11 @@ def _sample_losses(snum, sidx, sval, smeta, ks, lazy, state, sc, code, delta, la
 def _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst):
     """After a full pass: the reference the following checks bound the averaged iterate's moves
     from (``wref[0]``, filled from ``wref[2]`` by the caller), and the *suspects*, the events whose
-    averaged residual exceeds half the residual of the next cut, rescored one by one until the next
+    averaged residual exceeds ``TAU_SHARE`` of the next cut's residual, rescored one by one until the next
     full pass; every other event is provably kept as long as the bound holds (see
     :func:`_sums_stats`)."""
     cut_next = prm[P_ABSURD] * out[ST_MEDIAN]
-    tau = 0.5 * math.sqrt(2.0 * cut_next) if cut_next > 0.0 and cut_next < math.inf else math.inf
+    tau = TAU_SHARE * math.sqrt(2.0 * cut_next) if cut_next > 0.0 and cut_next < math.inf else math.inf
     half = 0.5 * tau * tau
     ns = 0
     events = meta[M_EVENT]
@@ -516,7 +516,7 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
         # the sums are differences of large terms when the targets sit far from 0: keep 8 digits
         full = not (s_raw > 1e-8 * syy and s_avg > 1e-8 * syy)
     if full:
-        _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out)
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out, snum, sidx, sval, smeta)
         _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst)
         return
     y, events = meta[M_Y], meta[M_EVENT]
@@ -526,21 +526,31 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     oldest = (int(prm[P_NEXT]) - n) % size
     tau2 = 0.5 * gst[G_TAU] ** 2
     ns = int(gst[G_NSUSP])
+    # the recent events (held out during the last checks) are the newest, walked back from the
+    # newest slot; the new ones (since the last check) come first among them
     k_new = 0
-    while k_new < n and events[(oldest + n - 1 - k_new) % size] > last_event:
-        slot = (oldest + n - 1 - k_new) % size
+    r_raw = r_avg = r_n = 0.0
+    k = 0
+    while k < n and events[(oldest + n - 1 - k) % size] > recent_from:
+        slot = (oldest + n - 1 - k) % size
         lr, la = _slot_losses(num, idx, val, y[slot], slot, lazy, state, sc, code, delta)
-        scratch[n - 1 - k_new] = la
-        if la > tau2 and ns >= 0:  # far from the average now: followed one by one from here on
-            if ns == SUSPECTS:
-                ns = -1
-            else:
-                susp[0, ns], susp[1, ns] = slot, int(events[slot])
-                ns += 1
-        k_new += 1
+        if not (lr > cut and la > cut):
+            r_raw += lr
+            r_avg += la
+            r_n += 1.0
+        if k == k_new and events[slot] > last_event:
+            scratch[n - 1 - k_new] = la
+            if la > tau2 and ns >= 0:  # far from the average now: followed one by one from here on
+                if ns == SUSPECTS:
+                    ns = -1
+                else:
+                    susp[0, ns], susp[1, ns] = slot, int(events[slot])
+                    ns += 1
+            k_new += 1
+        k += 1
     kept = n
     if ns < 0:  # too many to follow: this check still needs them all
-        _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out)
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out, snum, sidx, sval, smeta)
         _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst)
         return
     k = 0
@@ -556,18 +566,8 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
             s_avg -= la
             kept -= 1
         k += 1
-    r_raw = r_avg = r_n = 0.0
-    k = 0
-    while k < n and events[(oldest + n - 1 - k) % size] > recent_from:
-        slot = (oldest + n - 1 - k) % size
-        lr, la = _slot_losses(num, idx, val, y[slot], slot, lazy, state, sc, code, delta)
-        if not (lr > cut and la > cut):
-            r_raw += lr
-            r_avg += la
-            r_n += 1.0
-        k += 1
     k_old = _sample_losses(snum, sidx, sval, smeta, (n + 3) // 4, lazy, state, sc, code, delta, last_event,
-                           work[0], work[1], scratch)
+                           work[3], scratch)
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
     for k in range(n - k_new, n):
@@ -602,9 +602,9 @@ def _views(f, i, g, k):
     size, nnum, width = int(gst[G_SIZE]), int(gst[G_NNUM]), int(gst[G_WIDTH])
     quarter = (size + 3) // 4
     o = nnum + width
-    num, val, meta, work = f[:nnum], f[nnum:o], f[o:o + 3], f[o + 3:o + 6]
-    sample = _block(f, o + 6, o + 2, quarter)
-    scaling = _block(f, o + 6 + -(-((o + 2) * quarter) // size), 2, nnum)
+    num, val, meta, work = f[:nnum], f[nnum:o], f[o:o + 3], f[o + 3:o + 3 + N_WORK]
+    sample = _block(f, o + 3 + N_WORK, o + 2, quarter)
+    scaling = _block(f, o + 3 + N_WORK + -(-((o + 2) * quarter) // size), 2, nnum)
     idx, loc = i[:width], i[width:2 * width]
     sidx = _block(i, 2 * width, width, quarter)
     return (num, val, meta, work, sample[:nnum], sample[nnum:o], sample[o:o + 2], scaling, idx, loc, sidx,
@@ -643,8 +643,7 @@ def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
     prm[P_NEXT] = gst[G_NEXT]
     scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
     if prm[P_UNSCALED] > 0.0:
-        _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out)
-        _resample(f, i, g, k)
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out, snum, sidx, sval, smeta)
         gst[G_VALID], gst[G_INSERTS] = 0.0, gst[G_SIZE]  # rebuilt at the next check, every row scaled
         return
     if gst[G_SUMS] > 0.0 and gst[G_FROZEN] > 0.0 and gst[G_INSERTS] >= gst[G_SIZE]:
@@ -654,7 +653,7 @@ def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
         _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scal, prm, work, out, gm, gi, gst, wref, susp,
                     snum, sidx, sval, smeta)
     else:
-        _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out)
+        _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out, snum, sidx, sval, smeta)
 
 
 @_jit
@@ -663,7 +662,8 @@ def _score_every(f, i, g, k, lazy, state, sc, prm, out, work):
     num, val, meta, _, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
     prm[P_NEXT] = gst[G_NEXT]
     scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
-    _window_stats(num, idx, val, meta, int(gst[G_COUNT]), lazy, state, sc, scal, prm, work, out)
+    _window_stats(num, idx, val, meta, int(gst[G_COUNT]), lazy, state, sc, scal, prm, work, out, snum, sidx, sval,
+                  smeta)
 
 
 class HoldoutWindow:
@@ -709,7 +709,7 @@ class HoldoutWindow:
         old = self._parts() if hasattr(self, "_f") else None
         size, nnum = self.size, int(self._gst[G_NNUM])
         quarter, o = -(-size // 4), nnum + width
-        self._f = np.zeros((o + 6 + _block_rows(o + 2, quarter, size) + _block_rows(2, nnum, size), size))
+        self._f = np.zeros((o + 3 + N_WORK + _block_rows(o + 2, quarter, size) + _block_rows(2, nnum, size), size))
         self._i = np.zeros((2 * width + _block_rows(width, quarter, size), size), dtype=np.int32)
         self._gst[G_WIDTH] = width
         new = self._parts()
@@ -727,10 +727,10 @@ class HoldoutWindow:
         def block(a, first, rows, cols):
             return a[first:first + _block_rows(rows, cols, size)].reshape(-1)[:rows * cols].reshape(rows, cols)
 
-        sample = block(f, o + 6, o + 2, quarter)
-        return {"num": f[:nnum], "val": f[nnum:o], "meta": f[o:o + 3], "work": f[o + 3:o + 6],
+        sample = block(f, o + 3 + N_WORK, o + 2, quarter)
+        return {"num": f[:nnum], "val": f[nnum:o], "meta": f[o:o + 3], "work": f[o + 3:o + 3 + N_WORK],
                 "snum": sample[:nnum], "sval": sample[nnum:o], "smeta": sample[o:o + 2],
-                "scaling": block(f, o + 6 + _block_rows(o + 2, quarter, size), 2, nnum),
+                "scaling": block(f, o + 3 + N_WORK + _block_rows(o + 2, quarter, size), 2, nnum),
                 "idx": i[:width], "loc": i[width:2 * width], "sidx": block(i, 2 * width, width, quarter)}
 
     @property

@@ -64,7 +64,7 @@ from models import LinearModel, Rows
 from .config import MonitorConfig
 from .drift import ChangeDetector, sign_test_pvalue
 from .drift import PageHinkley
-from .holdout import LOSS_CODES, N_PRM, N_STATS, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_KEPT, ST_MEDIAN, ST_NEW, ST_AVG
+from .holdout import LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_KEPT, ST_MEDIAN, ST_NEW, ST_AVG
 from .holdout import ST_RAW, HoldoutWindow
 from . import rules as R
 
@@ -229,7 +229,7 @@ class Monitor:
         if not len(self.window) or self.window.unscaled:
             return {"raw": self._last.get("holdout_raw"), "averaged": self._last.get("holdout_avg")}
         st, prm = np.zeros(N_STATS), self._prm.copy()
-        self.window.stats(model, prm, st, np.zeros((3, self.window.size)))
+        self.window.stats(model, prm, st, np.zeros((N_WORK, self.window.size)))
         kept = st[ST_KEPT]
         return {"raw": st[ST_RAW] / kept, "averaged": st[ST_AVG] / kept} if kept else {"raw": None, "averaged": None}
 

@@ -44,9 +44,9 @@ def compared(monkeypatch):
         again = prm.copy()
         again[holdout.P_CUT] = cut  # the cut this check used (it sets the next one)
         want = np.zeros_like(out)
-        holdout._score_every(f, i, g, k, lazy, state, sc, again, want, np.zeros((3, f.shape[1])))
+        holdout._score_every(f, i, g, k, lazy, state, sc, again, want, np.zeros((holdout.N_WORK, f.shape[1])))
         for q in EXACT:
-            assert out[q] == want[q] or (np.isnan(out[q]) and np.isnan(want[q])), (q, out[q], want[q])
+            assert out[q] == want[q] or (np.isnan(out[q]) and np.isnan(want[q])), (q, out[q], want[q], prm, again)
         for q in CLOSE:
             assert out[q] == pytest.approx(want[q], rel=1e-9, abs=1e-12), (q, out[q], want[q])
         gst = g[-1]
