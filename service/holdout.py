@@ -644,6 +644,7 @@ def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
     scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
     if prm[P_UNSCALED] > 0.0:
         _window_stats(num, idx, val, meta, n, lazy, state, sc, scal, prm, work, out, snum, sidx, sval, smeta)
+        prm[P_UNSCALED] = 0.0  # done, once
         gst[G_VALID], gst[G_INSERTS] = 0.0, gst[G_SIZE]  # rebuilt at the next check, every row scaled
         return
     if gst[G_SUMS] > 0.0 and gst[G_FROZEN] > 0.0 and gst[G_INSERTS] >= gst[G_SIZE]:
@@ -703,6 +704,9 @@ class HoldoutWindow:
         gst[G_INSERTS] = size  # a rebuild is due (at the first check with every row scaled)
         self._layout(width)
         self._unscaled = False
+        #: the scaling is frozen and every kept row scaled (or being scaled by the check under way):
+        #: checks need no :meth:`prepare_check` any more
+        self.ready = False
 
     def _layout(self, width: int) -> None:
         """(Re)allocate the float and int blocks for ``width`` categorical entries, keeping the contents."""
@@ -837,6 +841,7 @@ class HoldoutWindow:
                 gst[G_FROZEN] = 1.0
         if self._unscaled and gst[G_FROZEN] > 0.0:
             prm[P_UNSCALED], self._unscaled = 1.0, False
+        self.ready = gst[G_FROZEN] > 0.0
 
     def score_all(self, model: LinearModel, prm: np.ndarray) -> None:
         """Score every kept event now, so that ``loss_raw`` / ``loss_avg`` are all current (a check

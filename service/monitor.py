@@ -237,19 +237,21 @@ class Monitor:
         """Evaluate both iterates on the window, act if needed; return the check's record. ``held``:
         ``(rows, y, mode, start, stop, first)`` as for :meth:`hold_out`, rows kept first (one call)."""
         window, mon = self.window, self._mon
-        window.prepare_check(model, self._prm)
+        if not window.ready:  # until the scaling froze and the rows kept before it were scaled
+            window.prepare_check(model, self._prm)
         if self._radius is None:
             self._m[R.C_LIMIT] = self.cfg.divergence_radii * max(model.norm("averaged"), 1.0)
         lazy, state, sc = model.kernel_state()
         rows, y, mode, lo, hi, first = held if held is not None else _NOTHING_HELD
         args = (rows.indptr, rows.indices, rows.values, mode, y, lo, hi, first, lazy, state, sc, mon, event)
         R.decide(window._f, window._i, window._g, window._k, *args)
-        if mon[R.O_RES + R.R_WIDEN]:  # a wider row than any before: widen the window (rare), then again
-            window.widen(int(mon[R.O_RES + R.R_WIDEN]))
+        r = mon[R.O_RES:R.O_RES + R.N_RES].tolist()  # Python floats from here on
+        if r[R.R_WIDEN]:  # a wider row than any before: widen the window (rare), then again
+            window.widen(int(r[R.R_WIDEN]))
             R.decide(window._f, window._i, window._g, window._k, *args)
-        if mon[R.O_RES + R.R_KEPT_NOW]:
+            r = mon[R.O_RES:R.O_RES + R.N_RES].tolist()
+        if r[R.R_KEPT_NOW] and not window.ready:
             window.note_kept()
-        r = self._res.tolist()  # Python floats from here on
         raw, avg, n, kept, distance, allowance = r[R.R_RAW], r[R.R_AVG], int(r[R.R_HELD]), int(r[R.R_KEPT]), \
             r[R.R_DIST], r[R.R_ALLOWANCE]
         record = {"event": int(event), "holdout_raw": raw, "holdout_avg": avg, "held_out": n, "excluded": n - kept,
@@ -280,7 +282,7 @@ class Monitor:
             record["alarm"] = int(r[R.R_ALARM])
         if r[R.R_CONFIRM]:
             self._confirm(model, event, ts, record, r[R.R_CONFIRM_FROM])
-        record["serving"] = self.serving
+        record["serving"] = "raw" if r[R.R_RAW_SERVED] else "averaged"
         self._last = record
         return record
 

@@ -44,7 +44,7 @@ PH_MODES = {"up": 0, "down": 1, "both": 2}
 # what a check found and asks for
 (R_RAW, R_AVG, R_HELD, R_KEPT, R_DIST, R_ALLOWANCE, R_LIMIT, R_FOLLOWING, R_REASON, R_STREAK, R_REFUSED,
  R_IGNORED, R_ROLLBACK, R_SNAPSHOT, R_EXCEEDANCE, R_ALARM, R_CONFIRM, R_ADWIN, R_LAST, R_CONFIRM_FROM,
- R_WIDEN, R_KEPT_NOW, N_RES) = range(23)
+ R_WIDEN, R_KEPT_NOW, R_RAW_SERVED, N_RES) = range(24)
 # the monitor's one float array: window scalars (holdout.P_*), window figures (ST_*), results, state
 O_PRM, O_OUT, O_RES = 0, N_PRM, N_PRM + N_STATS
 O_STATE = O_RES + N_RES
@@ -198,6 +198,7 @@ def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, st
                 res[R_CONFIRM] = 1.0
     if m[C_BETTER] > 0.0 and kept > 0.0:
         m[S_RAW_SERVED] = 1.0 if raw < avg else 0.0
+    res[R_RAW_SERVED] = m[S_RAW_SERVED]
     # the ring of the last checks' event indices (as deque(maxlen=C_BOUNDS).append)
     m[B_RING + int(m[B_POS])] = event
     m[B_POS] = (m[B_POS] + 1.0) % BOUNDS
