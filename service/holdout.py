@@ -386,6 +386,36 @@ def _slot_losses(num, idx, val, y, slot, lazy, state, sc, code, delta):
     return _loss(code, delta, ar * dv + br, y), _loss(code, delta, (ua * da + aa * dv + ba) * ia, y)
 
 
+@_inline
+def _range_losses(num, idx, val, y, lo, hi, lazy, state, sc, code, delta, lr, la):
+    """Both iterates' losses on the kept events in slots ``lo..hi`` into ``lr`` / ``la``, stage by
+    stage as the full pass computes them (the same bits)."""
+    for i in range(lo, hi):
+        lr[i] = 0.0
+        la[i] = 0.0
+    for j in range(num.shape[0]):
+        wv, wu, x = state[j, 0], state[j, 1], num[j]
+        for i in range(lo, hi):
+            lr[i] += x[i] * wv
+            la[i] += x[i] * wu
+    for p in range(idx.shape[0]):
+        ip, vp = idx[p], val[p]
+        for i in range(lo, hi):
+            j, x = ip[i], vp[i]
+            lr[i] += state[j, 0] * x
+            la[i] += state[j, 1] * x
+    ar, br, ua, aa, ba, ia = margin_map(lazy, sc)
+    for i in range(lo, hi):
+        dv, da = lr[i], la[i]
+        if code == 0:
+            r = ar * dv + br - y[i]
+            a = (ua * da + aa * dv + ba) * ia - y[i]
+            lr[i], la[i] = 0.5 * r * r, 0.5 * a * a
+        else:
+            lr[i] = _loss(code, delta, ar * dv + br, y[i])
+            la[i] = _loss(code, delta, (ua * da + aa * dv + ba) * ia, y[i])
+
+
 @_jit
 def _sample_losses(snum, sidx, sval, smeta, ks, lazy, state, sc, code, delta, last_event, acc, scratch):
     """The averaged losses of the sample block's first ``ks`` events held out by ``last_event`` into
@@ -498,13 +528,14 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     s_raw = s_avg = 0.0
     if not full:
         q_raw = q_avg = l_raw = l_avg = m_raw = m_avg = 0.0
-        for a in range(used):
-            g_raw = g_avg = 0.0
-            for b in range(used):
+        for a in range(used):  # G is exactly symmetric (both halves get the same products)
+            g_raw = 0.5 * gm[a, a] * wr[a]
+            g_avg = 0.5 * gm[a, a] * wa[a]
+            for b in range(a + 1, used):
                 g_raw += gm[a, b] * wr[b]
                 g_avg += gm[a, b] * wa[b]
-            q_raw += wr[a] * g_raw
-            q_avg += wa[a] * g_avg
+            q_raw += 2.0 * wr[a] * g_raw
+            q_avg += 2.0 * wa[a] * g_avg
             l_raw += wr[a] * gm[big_l, a]
             l_avg += wa[a] * gm[big_l, a]
             m_raw += wr[a] * gm[big_l + 1, a]
@@ -526,14 +557,22 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     oldest = (int(prm[P_NEXT]) - n) % size
     tau2 = 0.5 * gst[G_TAU] ** 2
     ns = int(gst[G_NSUSP])
-    # the recent events (held out during the last checks) are the newest, walked back from the
-    # newest slot; the new ones (since the last check) come first among them
+    # the recent events (held out during the last checks) are the newest: the slots just before the
+    # next one (wrapping), scored stage by stage; the new ones (since the last check) come first
+    n_rec = 0
+    while n_rec < n and events[(oldest + n - 1 - n_rec) % size] > recent_from:
+        n_rec += 1
+    lo_rec = (oldest + n - n_rec) % size
+    if lo_rec + n_rec <= size:
+        _range_losses(num, idx, val, y, lo_rec, lo_rec + n_rec, lazy, state, sc, code, delta, work[0], work[1])
+    else:
+        _range_losses(num, idx, val, y, lo_rec, size, lazy, state, sc, code, delta, work[0], work[1])
+        _range_losses(num, idx, val, y, 0, lo_rec + n_rec - size, lazy, state, sc, code, delta, work[0], work[1])
     k_new = 0
     r_raw = r_avg = r_n = 0.0
-    k = 0
-    while k < n and events[(oldest + n - 1 - k) % size] > recent_from:
+    for k in range(n_rec):
         slot = (oldest + n - 1 - k) % size
-        lr, la = _slot_losses(num, idx, val, y[slot], slot, lazy, state, sc, code, delta)
+        lr, la = work[0, slot], work[1, slot]
         if not (lr > cut and la > cut):
             r_raw += lr
             r_avg += la
@@ -547,7 +586,6 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
                     susp[0, ns], susp[1, ns] = slot, int(events[slot])
                     ns += 1
             k_new += 1
-        k += 1
     kept = n
     if ns < 0:  # too many to follow: this check still needs them all
         _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out, snum, sidx, sval, smeta)
