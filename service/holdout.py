@@ -42,7 +42,13 @@ N_WORK = 4  # work rows: raw losses, averaged losses, scratch, the sample's prod
 SUMS_CATEGORICAL = 64   # categorical coordinates the running sums follow at most
 SUMS_NUMERIC = 48       # numeric features beyond which the sums cost more than the pass
 SUSPECTS = 256          # events rescored one by one at each check at most
-REFERENCE_EVERY = 32    # checks between full passes at most
+REFERENCE_EVERY = 128   # checks between full passes at most (the bound forces one sooner when needed)
+REBUILD_WINDOWS = 16    # events kept between rebuilds of valid sums, in windows (rounding stays ~1e-13)
+# the median's sample: every SAMPLE_EVERY-th slot. A new event exceeds the median of any sample of
+# the older events with probability 1/2 (exchangeability), whatever its size; 250 events of the
+# default window put the sample median's quantile within about 3% of 1/2, and Page-Hinkley's own
+# running mean absorbs such an offset. Every 4th slot cost about 0.07 more of the learning loop.
+SAMPLE_EVERY = 8
 TAU_SHARE = 0.7         # suspects: averaged residual above this share of the cut's (see _sums_stats)
 _HT = 4 * SUMS_CATEGORICAL  # open-addressing table: bucket -> local coordinate
 # the integer bookkeeping ``HoldoutWindow._gi``: bucket of each local categorical coordinate (-1:
@@ -179,7 +185,7 @@ def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y,
     use). Numeric features go to ``num[j, slot]`` (scaled when ``scaling`` is known; a missing one
     is 0 then, NaN until then), the others to the padded ``idx`` / ``val`` positions. While the
     running sums are valid (``gst[G_VALID]``) the event overwritten leaves them and the new one
-    enters. Every 4th slot is copied to the sample block (``snum`` ...: the median's sample, side
+    enters. Every ``SAMPLE_EVERY``-th slot is copied to the sample block (``snum`` ...: the median's sample, side
     by side). Return ``(next slot, rows kept)``, or ``(-width, 0)`` when a row has more categorical
     entries than the ring is wide (nothing is kept then)."""
     width, size = idx.shape
@@ -220,8 +226,8 @@ def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y,
         meta[M_Y, nxt] = y[r]
         meta[M_EVENT, nxt] = events[r] if events.shape[0] else first + r
         meta[M_SCALED, nxt] = 1.0 if scaled else 0.0
-        if nxt % 4 == 0:
-            _copy_slot(num, idx, val, meta, nxt, snum, sidx, sval, smeta, nxt // 4)
+        if nxt % SAMPLE_EVERY == 0:
+            _copy_slot(num, idx, val, meta, nxt, snum, sidx, sval, smeta, nxt // SAMPLE_EVERY)
         if sums:
             if _claim(idx, val, loc, nxt, nnum, gi, gst):
                 norm = _accumulate(num, val, loc, y[r], nxt, gm, gst, 1.0)
@@ -287,8 +293,8 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
                 for j in range(nnum):
                     x = num[j, i]
                     num[j, i] = 0.0 if math.isnan(x) else (x - scaling[0, j]) / scaling[1, j]
-                    if i % 4 == 0:  # and its copy in the sample block
-                        snum[j, i // 4] = num[j, i]
+                    if i % SAMPLE_EVERY == 0:  # and its copy in the sample block
+                        snum[j, i // SAMPLE_EVERY] = num[j, i]
                 meta[M_SCALED, i] = 1.0
     # <state[:, 0], x> and <state[:, 1], x> of every event: the dense numeric block first
     for i in range(n):
@@ -352,8 +358,8 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
             r_n += 1.0
         k += 1
     # a new event exceeds the median of any sample of the older events with probability 1/2 just
-    # the same; every 4th slot (the sample block) costs a quarter of the work
-    k_old = _sample_losses(snum, sidx, sval, smeta, (n + 3) // 4, lazy, state, sc, code, delta, last_event,
+    # the same; every SAMPLE_EVERY-th slot (the sample block) costs a fraction of the work
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc, code, delta, last_event,
                            work[3], scratch)
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
@@ -491,7 +497,7 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     from ``G = sum x x'``, ``s = sum x``, ``g = sum y x`` (kept up to date as events come and go,
     over the window's few coordinates): O(coordinates**2) instead of O(events x entries). What
     needs single events is scored one by one: the newest events (the drift statistic), the recent
-    ones (the rollback rule's "following" test), a quarter of the older ones (the median), and the
+    ones (the rollback rule's "following" test), the sample block's older ones (the median), and the
     *suspects* (events far from the average at the last full pass). An event is left out as absurd
     only when its averaged loss exceeds the cut; for a non-suspect, whose averaged residual was at
     most ``tau`` when last scored, Cauchy-Schwarz bounds it now by ``tau + ||x||max (D + Dmax) +
@@ -604,7 +610,7 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
             s_avg -= la
             kept -= 1
         k += 1
-    k_old = _sample_losses(snum, sidx, sval, smeta, (n + 3) // 4, lazy, state, sc, code, delta, last_event,
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc, code, delta, last_event,
                            work[3], scratch)
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
@@ -638,13 +644,13 @@ def _views(f, i, g, k):
     big_l = g.shape[1] - 1
     gst = g[big_l + 5]
     size, nnum, width = int(gst[G_SIZE]), int(gst[G_NNUM]), int(gst[G_WIDTH])
-    quarter = (size + 3) // 4
+    part = (size + SAMPLE_EVERY - 1) // SAMPLE_EVERY
     o = nnum + width
     num, val, meta, work = f[:nnum], f[nnum:o], f[o:o + 3], f[o + 3:o + 3 + N_WORK]
-    sample = _block(f, o + 3 + N_WORK, o + 2, quarter)
-    scaling = _block(f, o + 3 + N_WORK + -(-((o + 2) * quarter) // size), 2, nnum)
+    sample = _block(f, o + 3 + N_WORK, o + 2, part)
+    scaling = _block(f, o + 3 + N_WORK + -(-((o + 2) * part) // size), 2, nnum)
     idx, loc = i[:width], i[width:2 * width]
-    sidx = _block(i, 2 * width, width, quarter)
+    sidx = _block(i, 2 * width, width, part)
     return (num, val, meta, work, sample[:nnum], sample[nnum:o], sample[o:o + 2], scaling, idx, loc, sidx,
             g[:big_l + 2, :big_l], g[big_l + 2:big_l + 5], gst, k[:N_GI], k[N_GI:].reshape((2, SUSPECTS)))
 
@@ -668,8 +674,8 @@ def _resample(f, i, g, k):
     """Refill the sample block from the ring (after rows were scaled in place or moved)."""
     num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
     for q in range(snum.shape[1]):
-        if 4 * q < num.shape[1]:
-            _copy_slot(num, idx, val, meta, 4 * q, snum, sidx, sval, smeta, q)
+        if SAMPLE_EVERY * q < num.shape[1]:
+            _copy_slot(num, idx, val, meta, SAMPLE_EVERY * q, snum, sidx, sval, smeta, q)
 
 
 @_jit
@@ -685,8 +691,9 @@ def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
         prm[P_UNSCALED] = 0.0  # done, once
         gst[G_VALID], gst[G_INSERTS] = 0.0, gst[G_SIZE]  # rebuilt at the next check, every row scaled
         return
-    if gst[G_SUMS] > 0.0 and gst[G_FROZEN] > 0.0 and gst[G_INSERTS] >= gst[G_SIZE]:
-        # from scratch once per window's worth of events: no rounding builds up in the sums
+    due = gst[G_SIZE] * (REBUILD_WINDOWS if gst[G_VALID] > 0.0 else 1.0)
+    if gst[G_SUMS] > 0.0 and gst[G_FROZEN] > 0.0 and gst[G_INSERTS] >= due:
+        # from scratch now and then (no rounding builds up), and a window after they were given up
         _rebuild(num, idx, val, meta, loc, n, gm, gi, gst)
     if gst[G_SUMS] > 0.0 and gst[G_VALID] > 0.0:
         _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scal, prm, work, out, gm, gi, gst, wref, susp,
@@ -750,9 +757,9 @@ class HoldoutWindow:
         """(Re)allocate the float and int blocks for ``width`` categorical entries, keeping the contents."""
         old = self._parts() if hasattr(self, "_f") else None
         size, nnum = self.size, int(self._gst[G_NNUM])
-        quarter, o = -(-size // 4), nnum + width
-        self._f = np.zeros((o + 3 + N_WORK + _block_rows(o + 2, quarter, size) + _block_rows(2, nnum, size), size))
-        self._i = np.zeros((2 * width + _block_rows(width, quarter, size), size), dtype=np.int32)
+        part, o = -(-size // SAMPLE_EVERY), nnum + width
+        self._f = np.zeros((o + 3 + N_WORK + _block_rows(o + 2, part, size) + _block_rows(2, nnum, size), size))
+        self._i = np.zeros((2 * width + _block_rows(width, part, size), size), dtype=np.int32)
         self._gst[G_WIDTH] = width
         new = self._parts()
         new["loc"][:] = -1
@@ -763,17 +770,17 @@ class HoldoutWindow:
     def _parts(self) -> dict:
         """The blocks' views by name (the layout :func:`_views` reads)."""
         size, nnum, width = self.size, int(self._gst[G_NNUM]), int(self._gst[G_WIDTH])
-        quarter, o = -(-size // 4), nnum + width
+        part, o = -(-size // SAMPLE_EVERY), nnum + width
         f, i = self._f, self._i
 
         def block(a, first, rows, cols):
             return a[first:first + _block_rows(rows, cols, size)].reshape(-1)[:rows * cols].reshape(rows, cols)
 
-        sample = block(f, o + 3 + N_WORK, o + 2, quarter)
+        sample = block(f, o + 3 + N_WORK, o + 2, part)
         return {"num": f[:nnum], "val": f[nnum:o], "meta": f[o:o + 3], "work": f[o + 3:o + 3 + N_WORK],
                 "snum": sample[:nnum], "sval": sample[nnum:o], "smeta": sample[o:o + 2],
-                "scaling": block(f, o + 3 + N_WORK + _block_rows(o + 2, quarter, size), 2, nnum),
-                "idx": i[:width], "loc": i[width:2 * width], "sidx": block(i, 2 * width, width, quarter)}
+                "scaling": block(f, o + 3 + N_WORK + _block_rows(o + 2, part, size), 2, nnum),
+                "idx": i[:width], "loc": i[width:2 * width], "sidx": block(i, 2 * width, width, part)}
 
     @property
     def _gst(self) -> np.ndarray:

@@ -34,7 +34,7 @@ Triggers:
 **Restart** (the world changed): restart the average from the raw iterate, re-warm the step
 schedule and ``G``, drop the held-out events from before the change, forget the trusted copy. A
 change detector (river's ``drift.PageHinkley`` or ``drift.ADWIN``) reads at each check the share
-of the newly held-out events whose averaged-iterate loss exceeds the median of (a fixed quarter of)
+of the newly held-out events whose averaged-iterate loss exceeds the median of (a fixed eighth of)
 the older window events: on a stationary feed that share is binomial around 1/2 whatever the loss
 or the noise (the events are exchangeable and none was learned), so one threshold fits every feed.
 An alarm opens ``drift_confirm`` checks; then the events held out in the last ``confirm_recent``
