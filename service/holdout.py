@@ -359,8 +359,8 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
         k += 1
     # a new event exceeds the median of any sample of the older events with probability 1/2 just
     # the same; every SAMPLE_EVERY-th slot (the sample block) costs a fraction of the work
-    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc, code, delta, last_event,
-                           work[3], scratch)
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc,
+                           code, delta, last_event, work[3], scratch)
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
     for k in range(n - k_new, n):
@@ -610,8 +610,8 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
             s_avg -= la
             kept -= 1
         k += 1
-    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc, code, delta, last_event,
-                           work[3], scratch)
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc,
+                           code, delta, last_event, work[3], scratch)
     med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
     above = 0.0
     for k in range(n - k_new, n):

@@ -62,11 +62,10 @@ import numpy as np
 from models import LinearModel, Rows
 
 from .config import MonitorConfig
-from .drift import ChangeDetector, sign_test_pvalue
-from .drift import PageHinkley
-from .holdout import LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_KEPT, ST_MEDIAN, ST_NEW, ST_AVG
-from .holdout import ST_RAW, HoldoutWindow
 from . import rules as R
+from .drift import ChangeDetector, PageHinkley, sign_test_pvalue
+from .holdout import (LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_AVG, ST_KEPT,
+                      ST_MEDIAN, ST_NEW, ST_RAW, HoldoutWindow)
 
 __all__ = ["Monitor"]
 
@@ -130,7 +129,8 @@ class Monitor:
         m[R.C_MARGIN], m[R.C_PATIENCE], m[R.C_MIN_HOLDOUT] = cfg.rollback_margin, cfg.rollback_patience, cfg.min_holdout
         m[R.C_LIMIT] = cfg.divergence_radii * self._radius if self._radius else math.nan  # else set per check
         m[R.C_NOISE], m[R.C_SNAPSHOT], m[R.C_ROLLBACK] = cfg.noise_allowance, cfg.snapshot_every, float(cfg.rollback)
-        m[R.C_ABSURD], m[R.C_BETTER], m[R.C_DRIFT] = self._absurd, float(cfg.serve == "better"), R.DRIFT_CODES[cfg.drift]
+        m[R.C_ABSURD], m[R.C_BETTER] = self._absurd, float(cfg.serve == "better")
+        m[R.C_DRIFT] = R.DRIFT_CODES[cfg.drift]
         m[R.C_CONFIRM], m[R.C_RECENT] = cfg.drift_confirm, cfg.confirm_recent
         m[R.C_GFIX] = float(spec.grad_bound) if spec.grad_bound is not None else 0.0
         # event indices of the last checks (bounded: a patience set out of reach must not grow it)

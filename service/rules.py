@@ -18,7 +18,6 @@ from __future__ import annotations
 import math
 
 import numba
-import numpy as np
 
 from models.kernels import S_GN, S_GSQ, S_LASTETA
 
