@@ -51,12 +51,13 @@ def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y,
                 return -wide, 0
     kept = 0
     missing = 0.0 if scaled else math.nan
+    ent_l, ent_x = np.empty(nnum + width, dtype=np.int64), np.empty(nnum + width)  # _accumulate's scratch
     for r in range(lo, hi):
         if mode[r] != 2:
             continue
         sums = gst[G_VALID] > 0.0
         if sums and count == size:  # the oldest event leaves the sums
-            _accumulate(num, val, loc, meta[M_Y, nxt], nxt, gm, gst, -1.0)
+            _accumulate(num, val, loc, meta[M_Y, nxt], nxt, gm, gst, -1.0, ent_l, ent_x)
             _release(loc, nxt, nnum, gm, gi)
         for j in range(nnum):
             num[j, nxt] = missing
@@ -80,7 +81,7 @@ def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y,
             _copy_slot(num, idx, val, meta, nxt, snum, sidx, sval, smeta, nxt // SAMPLE_EVERY)
         if sums:
             if _claim(idx, val, loc, nxt, nnum, gi, gst):
-                norm = _accumulate(num, val, loc, y[r], nxt, gm, gst, 1.0)
+                norm = _accumulate(num, val, loc, y[r], nxt, gm, gst, 1.0, ent_l, ent_x)
                 gst[G_XMAX] = max(gst[G_XMAX], norm)
             else:
                 gst[G_VALID] = 0.0

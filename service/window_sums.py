@@ -57,13 +57,10 @@ def _ht_fill(gi):
             gi[K_HTV + h] = c
 
 
-@_inline
-def _local(gi, gst, nnum, key):
-    """The local coordinate (``nnum + c``) of categorical bucket ``key``, given one if it has none
-    (a free one: no kept event uses it); -1 when all are in use."""
-    h = _ht_slot(gi, key)
-    if gi[K_HTK + h] == key:
-        return nnum + gi[K_HTV + h]
+@_jit
+def _allocate(gi, gst, nnum, key, h):
+    """Give bucket ``key`` (table position ``h``) a free local coordinate (no kept event uses it);
+    -1 when all are in use."""
     for c in range(SUMS_CATEGORICAL):
         if gi[K_REF + c] == 0:
             stale = gi[K_KEY + c] >= 0
@@ -80,6 +77,15 @@ def _local(gi, gst, nnum, key):
 
 
 @_inline
+def _local(gi, gst, nnum, key):
+    """The local coordinate (``nnum + c``) of categorical bucket ``key``, given one if it has none."""
+    h = _ht_slot(gi, key)
+    if gi[K_HTK + h] == key:
+        return nnum + gi[K_HTV + h]
+    return _allocate(gi, gst, nnum, key, h)
+
+
+@_inline
 def _entry(num, val, loc, slot, a, nnum):
     """Entry ``a`` of a kept event in local coordinates: ``(coordinate or -1, value)``."""
     if a < nnum:
@@ -88,25 +94,33 @@ def _entry(num, val, loc, slot, a, nnum):
 
 
 @_inline
-def _accumulate(num, val, loc, y, slot, gm, gst, sign):
+def _accumulate(num, val, loc, y, slot, gm, gst, sign, ent_l, ent_x):
     """Add (``sign`` 1) or take away (-1) the kept event in ``slot`` to the running sums: ``x x'``
-    in ``gm[:L]``, ``x`` in ``gm[L]``, ``y x`` in ``gm[L + 1]``; 1, y, y**2 in ``gst``. Returns ``||x||``."""
+    in ``gm[:L]`` (upper triangle: ``gm[a, b]`` for ``a <= b`` holds the sum over both orders of a
+    pair, which is all the quadratic form reads), ``x`` in ``gm[L]``, ``y x`` in ``gm[L + 1]``; 1, y,
+    y**2 in ``gst``. ``ent_l`` / ``ent_x``: scratch for the event's entries. Returns ``||x||``."""
     nnum, width, big_l = num.shape[0], loc.shape[0], gm.shape[1]
+    m = 0
     norm2 = 0.0
     for a in range(nnum + width):
         la, xa = _entry(num, val, loc, slot, a, nnum)
-        if la < 0 or xa == 0.0:
-            continue
-        norm2 += xa * xa
-        sx = sign * xa
+        if la >= 0 and xa != 0.0:
+            ent_l[m], ent_x[m] = la, xa
+            norm2 += xa * xa
+            m += 1
+    for a in range(m):
+        la, sx = ent_l[a], sign * ent_x[a]
         gm[big_l, la] += sx
         gm[big_l + 1, la] += sx * y
-        for j in range(nnum):  # numeric coordinates are local coordinates 0..nnum-1
-            gm[la, j] += sx * num[j, slot]
-        for p in range(width):
-            lb = loc[p, slot]
-            if lb >= 0:
-                gm[la, lb] += sx * val[p, slot]
+        gm[la, la] += sx * ent_x[a]
+        for b in range(a + 1, m):
+            lb = ent_l[b]
+            if lb == la:
+                gm[la, la] += 2.0 * sx * ent_x[b]
+            elif lb > la:
+                gm[la, lb] += sx * ent_x[b]
+            else:
+                gm[lb, la] += sx * ent_x[b]
     gst[G_N] += sign
     gst[G_SY] += sign * y
     gst[G_SYY] += sign * y * y
@@ -160,11 +174,12 @@ def _rebuild(num, idx, val, meta, loc, n, gm, gi, gst):
     for k in (G_N, G_SY, G_SYY, G_XMAX, G_INSERTS, G_HIGH):
         gst[k] = 0.0
     gst[G_VALID], gst[G_FORCE], gst[G_NSUSP] = 1.0, 1.0, 0.0
+    ent_l, ent_x = np.empty(nnum + loc.shape[0], dtype=np.int64), np.empty(nnum + loc.shape[0])
     for slot in range(n):
         if not _claim(idx, val, loc, slot, nnum, gi, gst):
             gst[G_VALID] = 0.0
             return
-        norm = _accumulate(num, val, loc, meta[M_Y, slot], slot, gm, gst, 1.0)
+        norm = _accumulate(num, val, loc, meta[M_Y, slot], slot, gm, gst, 1.0, ent_l, ent_x)
         gst[G_XMAX] = max(gst[G_XMAX], norm)
 
 
@@ -248,7 +263,7 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     s_raw = s_avg = 0.0
     if not full:
         q_raw = q_avg = l_raw = l_avg = m_raw = m_avg = 0.0
-        for a in range(used):  # G is exactly symmetric (both halves get the same products)
+        for a in range(used):  # the upper triangle holds the pairs (see _accumulate)
             g_raw = 0.5 * gm[a, a] * wr[a]
             g_avg = 0.5 * gm[a, a] * wa[a]
             for b in range(a + 1, used):
