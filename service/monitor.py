@@ -2,8 +2,10 @@
 
 The convergence guarantees of projected SGD hold in expectation on a stationary feed; live feeds
 change and labels are sometimes wrong. The monitor keeps the newest ``window`` held-out events
-(never learned) and every ``check_every`` learned events scores them with both iterates in one
-compiled pass. Losses over the window leave out the events whose loss under *both* iterates exceeds
+(never learned) and every ``check_every`` learned events scores them with both iterates, and
+applies the rules below, in one compiled call (``rules.decide``; for the squared loss the window's
+losses come from running sums, ``window_sums.py``, equal to a full pass up to rounding). Losses over
+the window leave out the events whose loss under *both* iterates exceeds
 ``absurd_factor`` times the window's median (a garbage target is far from both, so it says nothing
 about which is better; with Gaussian noise the default 50 drops about 2 clean events in a million).
 

@@ -2,16 +2,20 @@
 
 E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41: river implements the test with a
 running mean, a forgetting factor and a tolerance; ours follows the same steps, so both must fire at
-the same indices on every stream, for every mode and parameter set.
+the same indices on every stream, for every mode and parameter set. That holds for both of ours: the
+Python class (``service.drift.PageHinkley``) and the compiled update the monitor's check runs
+(``service.rules``).
 """
 
 from __future__ import annotations
 
 import random
 
+import numpy as np
 import pytest
 from river import drift
 
+from service import rules
 from service.drift import ChangeDetector, PageHinkley
 
 
@@ -24,6 +28,15 @@ def _fires(detector, stream):
     return out
 
 
+def _compiled_fires(stream, min_instances=30, delta=0.005, threshold=50.0, alpha=1 - 0.0001, mode="both"):
+    """The monitor's compiled Page-Hinkley (``rules.ph_feed``), river's defaults unless given."""
+    m = np.zeros(rules.N_STATE)
+    m[rules.PH_MIN], m[rules.PH_DELTA], m[rules.PH_THRESHOLD] = min_instances, delta, threshold
+    m[rules.PH_ALPHA], m[rules.PH_MODE] = alpha, rules.PH_MODES[mode]
+    rules.ph_reset(m)
+    return list(rules.ph_feed(m, np.asarray(stream, dtype=np.float64)))
+
+
 def test_river_documented_example():
     """river's documentation: ``random.Random(12345)``, 1,000 draws of {0, 1} then 1,000 of 4..7:
     Page-Hinkley fires at index 1006 (river ``drift/page_hinkley.py`` docstring)."""
@@ -32,6 +45,7 @@ def test_river_documented_example():
     assert _fires(PageHinkley(), stream) == [1006]
     det = ChangeDetector("page_hinkley")
     assert [i for i, x in enumerate(stream) if det.update(x)] == [1006]
+    assert _compiled_fires(stream) == [1006]
 
 
 @pytest.mark.parametrize("mode", ["up", "down", "both"])
@@ -51,6 +65,7 @@ def test_same_detections_as_river_on_random_streams(mode, params):
         ours = _fires(PageHinkley(mode=mode, **params), stream)
         theirs = _fires(drift.PageHinkley(mode=mode, **params), stream)
         assert ours == theirs
+        assert _compiled_fires(stream, mode=mode, **params) == theirs
         if params:
             assert ours, "the stream should trigger the sensitive settings at least once"
 

@@ -25,6 +25,7 @@ from models import Outcome
 from models.losses import loss_value
 from service.config import ConfigError, config_from_dict
 from service.engine import Engine
+from service import rules
 from service.drift import ChangeDetector, sign_test_pvalue
 from service.monitor import _copy_model
 
@@ -143,6 +144,12 @@ def test_detector_reproduces_river_documentation(kind, index):
     detector = ChangeDetector(kind)
     fired = [i for i, x in enumerate(stream) if detector.update(x)]
     assert fired[0] == index
+    if kind == "page_hinkley":  # and the compiled update the monitor's check runs (river's defaults)
+        m = np.zeros(rules.N_STATE)
+        m[rules.PH_MIN], m[rules.PH_DELTA], m[rules.PH_THRESHOLD] = 30, 0.005, 50.0
+        m[rules.PH_ALPHA], m[rules.PH_MODE] = 1 - 0.0001, rules.PH_MODES["both"]
+        rules.ph_reset(m)
+        assert list(rules.ph_feed(m, np.asarray(stream, dtype=np.float64)))[0] == index
 
 
 def test_noise_allowance_is_the_raw_iterates_stationary_excess():
