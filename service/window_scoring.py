@@ -48,6 +48,27 @@ _inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always
 _loss = point_loss  # the kernels' own per-event loss, so window and progressive losses agree
 
 
+@_inline
+def _figures(snum, sidx, sval, smeta, n, lazy, state, sc, code, delta, last_event, work, k_new, s_raw, s_avg, kept,
+             r_raw, r_avg, r_n, out):
+    """A pass's last stage, the same for the full pass and the running sums: the median averaged
+    loss of the older events in the sample block, how many of the ``k_new`` new events (their losses
+    at the top of the scratch row) exceed it, and ``out`` filled (layout ``ST_*``). A new event
+    exceeds the median of any sample of the older events with probability 1/2 just the same; every
+    SAMPLE_EVERY-th slot (the sample block) costs a fraction of the work."""
+    scratch = work[2]
+    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc,
+                           code, delta, last_event, work[3], scratch)
+    med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
+    above = 0.0
+    for k in range(n - k_new, n):
+        if scratch[k] > med:
+            above += 1.0
+    out[ST_MEDIAN], out[ST_RAW], out[ST_AVG], out[ST_KEPT] = med, s_raw, s_avg, kept
+    out[ST_NEW], out[ST_NEW_ABOVE], out[ST_REC_RAW], out[ST_REC_AVG], out[ST_REC_N] = k_new, above, r_raw, r_avg, r_n
+    out[ST_DIST] = iterate_distance(lazy, state, sc)
+
+
 @_jit
 def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out, snum, sidx, sval, smeta):
     """Score the ``n`` kept events with both iterates of the model whose learned arrays are
@@ -134,18 +155,8 @@ def _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, o
             r_avg += da[slot]
             r_n += 1.0
         k += 1
-    # a new event exceeds the median of any sample of the older events with probability 1/2 just
-    # the same; every SAMPLE_EVERY-th slot (the sample block) costs a fraction of the work
-    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc,
-                           code, delta, last_event, work[3], scratch)
-    med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
-    above = 0.0
-    for k in range(n - k_new, n):
-        if scratch[k] > med:
-            above += 1.0
-    out[ST_MEDIAN], out[ST_RAW], out[ST_AVG], out[ST_KEPT] = med, s_raw, s_avg, kept
-    out[ST_NEW], out[ST_NEW_ABOVE], out[ST_REC_RAW], out[ST_REC_AVG], out[ST_REC_N] = k_new, above, r_raw, r_avg, r_n
-    out[ST_DIST] = iterate_distance(lazy, state, sc)
+    _figures(snum, sidx, sval, smeta, n, lazy, state, sc, code, delta, last_event, work, k_new, s_raw, s_avg, kept,
+             r_raw, r_avg, r_n, out)
 
 
 @_inline

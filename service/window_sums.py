@@ -15,13 +15,12 @@ import math
 
 import numpy as np
 
-from models.kernels import iterate_distance, margin_map
+from models.kernels import margin_map
 
-from .window_scoring import (G_BMAX, G_DMAX, G_FORCE, G_HIGH, G_INSERTS, G_N, G_NSUSP, G_SINCE, G_SY,
-                             G_SYY, G_TAU, G_VALID, G_XMAX, M_EVENT, M_Y, P_ABSURD, P_CODE, P_CUT, P_DELTA,
-                             P_LAST, P_NEXT, P_RECENT, SAMPLE_EVERY, ST_AVG, ST_DIST, ST_KEPT, ST_MEDIAN, ST_NEW,
-                             ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _inline, _jit, _range_losses,
-                             _sample_losses, _slot_losses, _window_stats)
+from .window_scoring import (G_BMAX, G_DMAX, G_FORCE, G_HIGH, G_INSERTS, G_N, G_NSUSP, G_SINCE, G_SY, G_SYY,
+                             G_TAU, G_VALID, G_XMAX, M_EVENT, M_Y, P_ABSURD, P_CODE, P_CUT, P_DELTA, P_LAST,
+                             P_NEXT, P_RECENT, ST_MEDIAN, _figures, _inline, _jit, _range_losses, _slot_losses,
+                             _window_stats)
 
 SUMS_CATEGORICAL = 64   # categorical coordinates the running sums follow at most
 SUMS_NUMERIC = 48       # numeric features beyond which the sums cost more than the pass
@@ -339,16 +338,8 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
             s_avg -= la
             kept -= 1
         k += 1
-    k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc,
-                           code, delta, last_event, work[3], scratch)
-    med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
-    above = 0.0
-    for k in range(n - k_new, n):
-        if scratch[k] > med:
-            above += 1.0
-    out[ST_MEDIAN], out[ST_RAW], out[ST_AVG], out[ST_KEPT] = med, s_raw, s_avg, kept
-    out[ST_NEW], out[ST_NEW_ABOVE], out[ST_REC_RAW], out[ST_REC_AVG], out[ST_REC_N] = k_new, above, r_raw, r_avg, r_n
-    out[ST_DIST] = iterate_distance(lazy, state, sc)
+    _figures(snum, sidx, sval, smeta, n, lazy, state, sc, code, delta, last_event, work, k_new, s_raw, s_avg, kept,
+             r_raw, r_avg, r_n, out)
     gst[G_NSUSP] = ns
     gst[G_SINCE] += 1.0
     gst[G_DMAX] = max(gst[G_DMAX], move)
