@@ -136,7 +136,13 @@ def _views(f, i, g, k):
 def _keep(f, i, g, k, indptr, indices, values, mode, y, events, lo, hi, first):
     """:func:`_put` on the window's blocks; ``(next slot, kept)`` as it returns (the ring's place is
     updated in the bookkeeping unless a row was too wide)."""
-    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
+    return _keep_in(_views(f, i, g, k), indptr, indices, values, mode, y, events, lo, hi, first)
+
+
+@_inline
+def _keep_in(v, indptr, indices, values, mode, y, events, lo, hi, first):
+    """:func:`_keep` on the blocks' views ``v`` (:func:`_views`; a check makes them once)."""
+    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = v
     scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]
     nxt, kept = _put(num, idx, val, meta, loc, int(gst[G_NEXT]), int(gst[G_COUNT]), indptr, indices, values, mode,
                      y, events, lo, hi, first, scal, gm, gi, gst, snum, sidx, sval, smeta)
@@ -159,7 +165,13 @@ def _resample(f, i, g, k):
 def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
     """A check's figures into ``out``: scale rows kept before the scaling froze (a full pass), rebuild
     the running sums when due, then read them (:func:`_sums_stats`) or score every event."""
-    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = _views(f, i, g, k)
+    _check_in(_views(f, i, g, k), lazy, state, sc, prm, out)
+
+
+@_inline
+def _check_in(v, lazy, state, sc, prm, out):
+    """:func:`_check_pass` on the blocks' views ``v``."""
+    num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = v
     n = int(gst[G_COUNT])
     prm[P_NEXT] = gst[G_NEXT]
     scal = scaling if gst[G_FROZEN] > 0.0 else scaling[:0]

@@ -22,7 +22,9 @@ import numba
 from models.kernels import S_GN, S_GSQ, S_LASTETA
 
 from .holdout import (G_COUNT, G_FROZEN, N_PRM, N_STATS, P_CUT, P_LAST, P_RECENT, ST_AVG, ST_DIST, ST_KEPT,
-                      ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _check_pass, _keep)
+                      ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _check_in, _keep_in,
+                      _views)
+from .window_sums import recent_figures
 
 __all__ = ["BOUNDS", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_reset"]
 
@@ -113,7 +115,8 @@ def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, st
     (``res[R_WIDEN]``: the width needed)."""
     prm, out = mon[O_PRM:O_PRM + N_PRM], mon[O_OUT:O_OUT + N_STATS]
     res, m = mon[O_RES:O_RES + N_RES], mon[O_STATE:]
-    nxt, kept_now = _keep(f, i, g, k, indptr, indices, values, mode, y, indptr[:0], lo, hi, first)
+    v = _views(f, i, g, k)  # once for both stages
+    nxt, kept_now = _keep_in(v, indptr, indices, values, mode, y, indptr[:0], lo, hi, first)
     if nxt < 0:
         res[R_WIDEN] = -nxt
         return
@@ -121,11 +124,12 @@ def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, st
     patience = m[C_PATIENCE]
     prm[P_LAST] = _bound(m, 1)
     prm[P_RECENT] = _bound(m, min(int(patience), n_bounds))
-    _check_pass(f, i, g, k, lazy, state, sc, prm, out)
+    _check_in(v, lazy, state, sc, prm, out)
     median = out[ST_MEDIAN]
     if median > 0.0:
         prm[P_CUT] = m[C_ABSURD] * median
-    n = g[g.shape[0] - 1, G_COUNT]
+    gst = v[13]
+    n = gst[G_COUNT]
     kept = out[ST_KEPT]
     raw = out[ST_RAW] / kept if kept > 0.0 else math.nan
     avg = out[ST_AVG] / kept if kept > 0.0 else math.nan
@@ -152,6 +156,8 @@ def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, st
         reason = REASON_DISTANCE
     elif kept >= m[C_MIN_HOLDOUT]:
         worse = raw > (1.0 + m[C_MARGIN]) * avg + allowance
+        if worse and out[ST_REC_N] < 0.0:  # the running sums leave the recent events' figures to here
+            recent_figures(v[0], v[8], v[1], v[2], int(n), lazy, state, sc, prm, v[3], out)
         if worse and out[ST_REC_N] >= 10.0 and out[ST_REC_RAW] < out[ST_REC_AVG]:
             worse = False
             res[R_FOLLOWING] = 1.0
@@ -174,7 +180,7 @@ def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, st
     else:
         m[S_HEALTHY] += 1.0
         m[S_ALERT] = 1.0 if (m[S_ALERT] > 0.0 and m[S_HEALTHY] < patience) else 0.0
-        if m[S_HEALTHY] % m[C_SNAPSHOT] == 0.0 and g[g.shape[0] - 1, G_FROZEN] > 0.0:
+        if m[S_HEALTHY] % m[C_SNAPSHOT] == 0.0 and gst[G_FROZEN] > 0.0:
             res[R_SNAPSHOT] = 1.0
     m[S_REFUSED] = 0.0
     res[R_LAST] = _bound(m, 1)

@@ -19,8 +19,8 @@ from models.kernels import margin_map
 
 from .window_scoring import (G_BMAX, G_DMAX, G_FORCE, G_HIGH, G_INSERTS, G_N, G_NSUSP, G_SINCE, G_SY, G_SYY,
                              G_TAU, G_VALID, G_XMAX, M_EVENT, M_Y, P_ABSURD, P_CODE, P_CUT, P_DELTA, P_LAST,
-                             P_NEXT, P_RECENT, ST_MEDIAN, _figures, _inline, _jit, _range_losses, _slot_losses,
-                             _window_stats)
+                             P_NEXT, P_RECENT, ST_MEDIAN, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _figures, _inline, _jit,
+                             _range_losses, _slot_losses, _window_stats)
 
 SUMS_CATEGORICAL = 64   # categorical coordinates the running sums follow at most
 SUMS_NUMERIC = 48       # numeric features beyond which the sums cost more than the pass
@@ -216,6 +216,49 @@ def _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst):
     gst[G_SINCE] = gst[G_DMAX] = gst[G_BMAX] = gst[G_FORCE] = 0.0
 
 
+@_inline
+def _newest(events, n, oldest, after):
+    """How many of the newest kept events (walking back from the newest slot) came after ``after``."""
+    size = events.shape[0]
+    k = 0
+    while k < n and events[(oldest + n - 1 - k) % size] > after:
+        k += 1
+    return k
+
+
+@_inline
+def _slots_losses(num, idx, val, y, n, oldest, count, lazy, state, sc, code, delta, work):
+    """Both losses of the ``count`` newest kept events into ``work[0]`` / ``work[1]`` by slot."""
+    size = work.shape[1]
+    lo = (oldest + n - count) % size
+    if lo + count <= size:
+        _range_losses(num, idx, val, y, lo, lo + count, lazy, state, sc, code, delta, work[0], work[1])
+    else:
+        _range_losses(num, idx, val, y, lo, size, lazy, state, sc, code, delta, work[0], work[1])
+        _range_losses(num, idx, val, y, 0, lo + count - size, lazy, state, sc, code, delta, work[0], work[1])
+
+
+@_inline
+def recent_figures(num, idx, val, meta, n, lazy, state, sc, prm, work, out):
+    """The recent events' figures (``ST_REC_*``: held out since the check ``prm[P_RECENT]``, absurd
+    ones left out), for a check that read the running sums and whose loss rule needs them."""
+    code, delta, cut = int(prm[P_CODE]), prm[P_DELTA], prm[P_CUT]
+    events = meta[M_EVENT]
+    size = work.shape[1]
+    oldest = (int(prm[P_NEXT]) - n) % size
+    n_rec = _newest(events, n, oldest, prm[P_RECENT])
+    _slots_losses(num, idx, val, meta[M_Y], n, oldest, n_rec, lazy, state, sc, code, delta, work)
+    r_raw = r_avg = r_n = 0.0
+    for k in range(n_rec):
+        slot = (oldest + n - 1 - k) % size
+        lr, la = work[0, slot], work[1, slot]
+        if not (lr > cut and la > cut):
+            r_raw += lr
+            r_avg += la
+            r_n += 1.0
+    out[ST_REC_RAW], out[ST_REC_AVG], out[ST_REC_N] = r_raw, r_avg, r_n
+
+
 @_jit
 def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work, out, gm, gi, gst, wref, susp,
                 snum, sidx, sval, smeta):
@@ -285,41 +328,29 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
         _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst)
         return
     y, events = meta[M_Y], meta[M_EVENT]
-    last_event, recent_from = prm[P_LAST], prm[P_RECENT]
+    last_event = prm[P_LAST]
     scratch = work[2]
     size = work.shape[1]
     oldest = (int(prm[P_NEXT]) - n) % size
     tau2 = 0.5 * gst[G_TAU] ** 2
     ns = int(gst[G_NSUSP])
-    # the recent events (held out during the last checks) are the newest: the slots just before the
-    # next one (wrapping), scored stage by stage; the new ones (since the last check) come first
-    n_rec = 0
-    while n_rec < n and events[(oldest + n - 1 - n_rec) % size] > recent_from:
-        n_rec += 1
-    lo_rec = (oldest + n - n_rec) % size
-    if lo_rec + n_rec <= size:
-        _range_losses(num, idx, val, y, lo_rec, lo_rec + n_rec, lazy, state, sc, code, delta, work[0], work[1])
-    else:
-        _range_losses(num, idx, val, y, lo_rec, size, lazy, state, sc, code, delta, work[0], work[1])
-        _range_losses(num, idx, val, y, 0, lo_rec + n_rec - size, lazy, state, sc, code, delta, work[0], work[1])
-    k_new = 0
-    r_raw = r_avg = r_n = 0.0
-    for k in range(n_rec):
+    # the new events (held out since the last check) are the newest: the slots just before the next
+    # one (wrapping), scored stage by stage; the recent ones only when the loss rule asks
+    # (:func:`recent_figures`; ``out[ST_REC_N]`` is -1 until then)
+    k_new = _newest(events, n, oldest, last_event)
+    _slots_losses(num, idx, val, y, n, oldest, k_new, lazy, state, sc, code, delta, work)
+    for k in range(k_new):
         slot = (oldest + n - 1 - k) % size
-        lr, la = work[0, slot], work[1, slot]
-        if not (lr > cut and la > cut):
-            r_raw += lr
-            r_avg += la
-            r_n += 1.0
-        if k == k_new and events[slot] > last_event:
-            scratch[n - 1 - k_new] = la
-            if la > tau2 and ns >= 0:  # far from the average now: followed one by one from here on
-                if ns == SUSPECTS:
-                    ns = -1
-                else:
-                    susp[0, ns], susp[1, ns] = slot, int(events[slot])
-                    ns += 1
-            k_new += 1
+        la = work[1, slot]
+        scratch[n - 1 - k] = la
+        if la > tau2 and ns >= 0:  # far from the average now: followed one by one from here on
+            if ns == SUSPECTS:
+                ns = -1
+            else:
+                susp[0, ns], susp[1, ns] = slot, int(events[slot])
+                ns += 1
+    r_raw = r_avg = 0.0
+    r_n = -1.0
     kept = n
     if ns < 0:  # too many to follow: this check still needs them all
         _window_stats(num, idx, val, meta, n, lazy, state, sc, scaling, prm, work, out, snum, sidx, sval, smeta)
