@@ -118,8 +118,8 @@ def _block(a, first, rows, cols):
 @_inline
 def _views(f, i, g, k):
     """The window's arrays as views of its four blocks (see :class:`HoldoutWindow`)."""
-    big_l = g.shape[1] - 1
-    gst = g[big_l + 5]
+    big_l = g.shape[1]
+    gst = g[big_l + 6]
     size, nnum, width = int(gst[G_SIZE]), int(gst[G_NNUM]), int(gst[G_WIDTH])
     part = (size + SAMPLE_EVERY - 1) // SAMPLE_EVERY
     o = nnum + width
@@ -129,7 +129,7 @@ def _views(f, i, g, k):
     idx, loc = i[:width], i[width:2 * width]
     sidx = _block(i, 2 * width, width, part)
     return (num, val, meta, work, sample[:nnum], sample[nnum:o], sample[o:o + 2], scaling, idx, loc, sidx,
-            g[:big_l + 2, :big_l], g[big_l + 2:big_l + 5], gst, k[:N_GI], k[N_GI:].reshape((2, SUSPECTS)))
+            g[:big_l + 2], g[big_l + 2:big_l + 6], gst, k[:N_GI], k[N_GI:].reshape((2, SUSPECTS)))
 
 
 @_jit
@@ -212,7 +212,7 @@ class HoldoutWindow:
     Everything lives in four arrays (a float block of rows by slot: numeric features, categorical
     values, metadata, work rows, the sample block and the scaling; an int32 block: buckets and their
     local coordinates; the sums with their bookkeeping; the sums' integer tables), because each
-    array handed to a compiled function costs a fixed time per call, and a check makes two.
+    array handed to a compiled function costs a fixed time per call.
 
     Parameters
     ----------
@@ -231,7 +231,7 @@ class HoldoutWindow:
         self.size = size
         self._sums = sums and n_numeric <= SUMS_NUMERIC
         big_l = (n_numeric + SUMS_CATEGORICAL) if self._sums else N_G
-        self._g = np.zeros((big_l + 6, big_l + 1))
+        self._g = np.zeros((big_l + 7, big_l))
         self._k = np.full(N_GI + 2 * SUSPECTS, -1, dtype=np.int64)
         gst = self._gst
         gst[G_SIZE], gst[G_NNUM], gst[G_SUMS] = size, n_numeric, float(self._sums)

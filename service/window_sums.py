@@ -212,6 +212,7 @@ def _reference(num, val, loc, meta, n, work, out, prm, wref, susp, gst):
                 norm2 += x * x
         xmax = max(xmax, norm2)
     wref[0, :] = wref[2, :]
+    wref[3, 0] = wref[3, 2]
     gst[G_TAU], gst[G_XMAX], gst[G_NSUSP] = tau, math.sqrt(xmax), ns
     gst[G_SINCE] = gst[G_DMAX] = gst[G_BMAX] = gst[G_FORCE] = 0.0
 
@@ -276,7 +277,7 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
     and intercept; ``Dmax``, ``Bmax``: the largest at any check since). While that bound is below
     the cut's residual, the absurd events are among the suspects and the figures are the full
     pass's (sums up to rounding); otherwise, and every ``REFERENCE_EVERY`` checks, a full pass
-    runs. ``wref`` rows: reference, raw and averaged coefficients (intercept last)."""
+    runs. ``wref`` rows: reference, raw and averaged coefficients, then their three intercepts."""
     nnum, big_l = num.shape[0], gm.shape[1]
     used = nnum + int(gst[G_HIGH])  # coordinates beyond were never handed out: zero sums, zero weights
     code, delta = int(prm[P_CODE]), prm[P_DELTA]
@@ -292,11 +293,11 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
             continue
         wr[la] = ar * state[j, 0]
         wa[la] = (ua * state[j, 1] + aa * state[j, 0]) * ia
-    wr[big_l], wa[big_l] = br, ba * ia
+    wref[3, 1], wref[3, 2] = br, ba * ia  # the intercepts: reference, raw, averaged
     d2 = 0.0
     for la in range(used):
         d2 += (wa[la] - wref[0, la]) ** 2
-    move, bmove = math.sqrt(d2), abs(wa[big_l] - wref[0, big_l])
+    move, bmove = math.sqrt(d2), abs(wref[3, 2] - wref[3, 0])
     cut = prm[P_CUT]
     full = gst[G_FORCE] > 0.0 or gst[G_NSUSP] < 0.0 or gst[G_SINCE] >= REFERENCE_EVERY or gst[G_N] != n
     if not full and cut < math.inf:
@@ -318,7 +319,7 @@ def _sums_stats(num, idx, val, meta, loc, n, lazy, state, sc, scaling, prm, work
             m_raw += wr[a] * gm[big_l + 1, a]
             m_avg += wa[a] * gm[big_l + 1, a]
         cnt, sy, syy = gst[G_N], gst[G_SY], gst[G_SYY]
-        b_raw, b_avg = wr[big_l], wa[big_l]
+        b_raw, b_avg = wref[3, 1], wref[3, 2]
         s_raw = 0.5 * (q_raw + 2.0 * b_raw * l_raw + cnt * b_raw * b_raw - 2.0 * (m_raw + b_raw * sy) + syy)
         s_avg = 0.5 * (q_avg + 2.0 * b_avg * l_avg + cnt * b_avg * b_avg - 2.0 * (m_avg + b_avg * sy) + syy)
         # the sums are differences of large terms when the targets sit far from 0: keep 8 digits
