@@ -161,16 +161,11 @@ def _resample(f, i, g, k):
             _copy_slot(num, idx, val, meta, SAMPLE_EVERY * q, snum, sidx, sval, smeta, q)
 
 
-@_jit
-def _check_pass(f, i, g, k, lazy, state, sc, prm, out):
-    """A check's figures into ``out``: scale rows kept before the scaling froze (a full pass), rebuild
-    the running sums when due, then read them (:func:`_sums_stats`) or score every event."""
-    _check_in(_views(f, i, g, k), lazy, state, sc, prm, out)
-
-
 @_inline
 def _check_in(v, lazy, state, sc, prm, out):
-    """:func:`_check_pass` on the blocks' views ``v``."""
+    """A check's figures into ``out`` from the blocks' views ``v`` (:func:`_views`): scale rows kept
+    before the scaling froze (a full pass), rebuild the running sums when due, then read them
+    (:func:`_sums_stats`) or score every event. ``rules.decide`` runs it within the check's call."""
     num, val, meta, work, snum, sval, smeta, scaling, idx, loc, sidx, gm, wref, gst, gi, susp = v
     n = int(gst[G_COUNT])
     prm[P_NEXT] = gst[G_NEXT]
@@ -348,24 +343,16 @@ class HoldoutWindow:
         gst[G_VALID], gst[G_INSERTS] = 0.0, size  # rebuilt at the next check
         _resample(self._f, self._i, self._g, self._k)
 
-    def stats(self, model: LinearModel, prm: np.ndarray, out: np.ndarray, work: np.ndarray | None = None) -> None:
-        """Score the kept events with both iterates of ``model`` and fill ``out`` (see
-        :func:`_window_stats`; a check of a window with running sums reads them, see
-        :func:`_sums_stats`, and then only the per-slot losses of events it scored are current).
-
-        With ``work`` given (a reader outside the check, perhaps on another thread) the ring is left
-        untouched and every event is scored: it must hold no unscaled rows then.
-        """
+    def stats(self, model: LinearModel, prm: np.ndarray, out: np.ndarray, work: np.ndarray) -> None:
+        """Score every kept event with both iterates of ``model`` into ``work`` and fill ``out`` (see
+        :func:`_window_stats`), for a reader outside the checks, perhaps on another thread: the ring
+        is left untouched, so it must hold no unscaled rows. (A check runs ``rules.decide``.)"""
         prm[P_UNSCALED] = 0.0
         lazy, state, sc = model.kernel_state()
-        if work is not None:
-            _score_every(self._f, self._i, self._g, self._k, lazy, state, sc, prm, out, work)
-            return
-        self.prepare_check(model, prm)
-        _check_pass(self._f, self._i, self._g, self._k, lazy, state, sc, prm, out)
+        _score_every(self._f, self._i, self._g, self._k, lazy, state, sc, prm, out, work)
 
     def prepare_check(self, model: LinearModel, prm: np.ndarray) -> None:
-        """What a check settles before its compiled pass (:func:`_check_pass`): take the model's
+        """What a check settles before its compiled call (``rules.decide``): take the model's
         scaling once it is frozen, and have rows kept before then scaled by this check."""
         prm[P_UNSCALED] = 0.0
         gst = self._g[-1]

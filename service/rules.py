@@ -1,7 +1,7 @@
 """The monitor's per-check rules, compiled: one call scores the window and decides.
 
 ``Monitor.check`` (``monitor.py``, where the rules are documented) calls :func:`decide` once per
-check. It scores the held-out window (``holdout._check_pass``), applies the rollback rule, keeps
+check. It scores the held-out window (``holdout._check_in``), applies the rollback rule, keeps
 the healthy-check count, runs the Page-Hinkley test on the exceedance share and picks the serving
 iterate, all on one array of settings and state (layout ``C_*``, ``S_*``, ``PH_*``, ``B_*``), and
 writes what happened to ``res`` (layout ``R_*``). Python runs afterwards only to build the check's
