@@ -169,15 +169,15 @@ class Engine:
             if self.monitor is not None and refused:
                 self.monitor.note_refused(refused)
             self.refused += refused
-            held = (rows, y, mode, i, nxt, first)
+            segment = (rows, y, mode, i, nxt, first)
             i = nxt
             if self._since_check >= self._check_every:
                 self._since_check = 0
-                record = self._check(first + i - 1, batch.ts[i - 1], held)  # the check keeps them first
+                record = self._check(first + i - 1, batch.ts[i - 1], segment)  # the check keeps its held-out rows
                 if record.get("action"):
                     actions.append(record)
             elif self.monitor is not None:
-                self.monitor.hold_out(*held)
+                self.monitor.hold_out(*segment)
         learned = int(np.count_nonzero(mode == 1))
         held = int(np.count_nonzero(mode == 2))
         self.events += n
