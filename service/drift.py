@@ -113,6 +113,11 @@ class ChangeDetector:
             return cls("adwin", delta=cfg.adwin_delta)
         return None
 
+    @property
+    def detector(self):
+        """The detector itself (:class:`PageHinkley` or river's ``ADWIN``)."""
+        return self._det
+
     def update(self, x: float) -> bool:
         """Feed one value; ``True`` when the detector signals a change at this value."""
         self._det.update(float(x))

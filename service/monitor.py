@@ -65,7 +65,7 @@ from models import LinearModel, Rows
 
 from .config import MonitorConfig
 from . import rules as R
-from .drift import ChangeDetector, PageHinkley, sign_test_pvalue
+from .drift import ChangeDetector, sign_test_pvalue
 from .holdout import (LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_AVG, ST_KEPT,
                       ST_MEDIAN, ST_NEW, ST_RAW, HoldoutWindow)
 
@@ -139,11 +139,12 @@ class Monitor:
         m[R.C_BOUNDS] = min(max(cfg.rollback_patience, cfg.confirm_recent), 64) + 1
         m[R.B_LEN], m[R.B_POS], m[R.B_RING] = 1.0, 1.0, -1.0
         m[R.S_G2], m[R.S_ALARM], m[R.S_RAW_SERVED] = math.inf, -1.0, float(cfg.serve == "raw")
-        # Page-Hinkley on the per-check exceedance share (the detector ChangeDetector.for_monitor builds)
-        m[R.PH_MIN], m[R.PH_DELTA], m[R.PH_THRESHOLD] = cfg.drift_min_checks, cfg.drift_delta, cfg.drift_threshold
-        m[R.PH_ALPHA], m[R.PH_MODE] = PageHinkley().alpha, R.PH_MODES["up"]
-        R.ph_reset(m)
-        self._detector = ChangeDetector.for_monitor(cfg) if cfg.drift == "adwin" else None
+        # the detector cfg asks for: Page-Hinkley runs compiled in the check (its settings copied),
+        # ADWIN as river's object, fed by the check's caller
+        detector = ChangeDetector.for_monitor(cfg)
+        self._detector = detector if cfg.drift == "adwin" else None
+        if cfg.drift == "page_hinkley":
+            R.ph_load(m, detector.detector)
         self._trusted: LinearModel | None = None
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None

@@ -26,7 +26,7 @@ from .holdout import (G_COUNT, G_FROZEN, N_PRM, N_STATS, P_CUT, P_LAST, P_RECENT
                       _views)
 from .window_sums import recent_figures
 
-__all__ = ["BOUNDS", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_reset"]
+__all__ = ["BOUNDS", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_feed", "ph_load", "ph_reset"]
 
 # settings (fixed at start)
 (C_MARGIN, C_PATIENCE, C_MIN_HOLDOUT, C_LIMIT, C_NOISE, C_SNAPSHOT, C_ROLLBACK, C_ABSURD, C_BETTER, C_DRIFT,
@@ -54,6 +54,13 @@ REASON_REFUSED, REASON_DISTANCE, REASON_LOSS = 1, 2, 3
 
 _jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 _inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
+
+
+def ph_load(m, ph) -> None:
+    """Take the settings of a :class:`service.drift.PageHinkley` ``ph`` into ``m``, state as new."""
+    m[PH_MIN], m[PH_DELTA], m[PH_THRESHOLD] = ph.min_instances, ph.delta, ph.threshold
+    m[PH_ALPHA], m[PH_MODE] = ph.alpha, PH_MODES[ph.mode]
+    ph_reset(m)
 
 
 @_jit

@@ -28,12 +28,10 @@ def _fires(detector, stream):
     return out
 
 
-def _compiled_fires(stream, min_instances=30, delta=0.005, threshold=50.0, alpha=1 - 0.0001, mode="both"):
-    """The monitor's compiled Page-Hinkley (``rules.ph_feed``), river's defaults unless given."""
+def _compiled_fires(stream, **params):
+    """The monitor's compiled Page-Hinkley (``rules.ph_feed``) with the settings of ``PageHinkley(**params)``."""
     m = np.zeros(rules.N_STATE)
-    m[rules.PH_MIN], m[rules.PH_DELTA], m[rules.PH_THRESHOLD] = min_instances, delta, threshold
-    m[rules.PH_ALPHA], m[rules.PH_MODE] = alpha, rules.PH_MODES[mode]
-    rules.ph_reset(m)
+    rules.ph_load(m, PageHinkley(**params))
     return list(rules.ph_feed(m, np.asarray(stream, dtype=np.float64)))
 
 

@@ -146,9 +146,7 @@ def test_detector_reproduces_river_documentation(kind, index):
     assert fired[0] == index
     if kind == "page_hinkley":  # and the compiled update the monitor's check runs (river's defaults)
         m = np.zeros(rules.N_STATE)
-        m[rules.PH_MIN], m[rules.PH_DELTA], m[rules.PH_THRESHOLD] = 30, 0.005, 50.0
-        m[rules.PH_ALPHA], m[rules.PH_MODE] = 1 - 0.0001, rules.PH_MODES["both"]
-        rules.ph_reset(m)
+        rules.ph_load(m, detector.detector)
         assert list(rules.ph_feed(m, np.asarray(stream, dtype=np.float64)))[0] == index
 
 
