@@ -25,6 +25,7 @@ from .window_sums import (N_GI, REBUILD_WINDOWS, SUMS_CATEGORICAL, SUMS_NUMERIC,
 __all__ = ["HoldoutWindow", "LOSS_CODES", "N_PRM", "N_STATS"]
 
 _NO_EVENTS = np.zeros(0, dtype=np.int64)
+_PARTS = ("num", "val", "meta", "work", "snum", "sval", "smeta", "scaling", "idx", "loc", "sidx")  # _views' first
 
 
 @_jit
@@ -252,19 +253,8 @@ class HoldoutWindow:
                 new[name][tuple(slice(0, d) for d in a.shape)] = a
 
     def _parts(self) -> dict:
-        """The blocks' views by name (the layout :func:`_views` reads)."""
-        size, nnum, width = self.size, int(self._gst[G_NNUM]), int(self._gst[G_WIDTH])
-        part, o = -(-size // SAMPLE_EVERY), nnum + width
-        f, i = self._f, self._i
-
-        def block(a, first, rows, cols):
-            return a[first:first + _block_rows(rows, cols, size)].reshape(-1)[:rows * cols].reshape(rows, cols)
-
-        sample = block(f, o + 3 + N_WORK, o + 2, part)
-        return {"num": f[:nnum], "val": f[nnum:o], "meta": f[o:o + 3], "work": f[o + 3:o + 3 + N_WORK],
-                "snum": sample[:nnum], "sval": sample[nnum:o], "smeta": sample[o:o + 2],
-                "scaling": block(f, o + 3 + N_WORK + _block_rows(o + 2, part, size), 2, nnum),
-                "idx": i[:width], "loc": i[width:2 * width], "sidx": block(i, 2 * width, width, part)}
+        """The float and int blocks' views by name (:func:`_views`, the one definition of the layout)."""
+        return dict(zip(_PARTS, _views(self._f, self._i, self._g, self._k)))
 
     @property
     def _gst(self) -> np.ndarray:
