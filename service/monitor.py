@@ -374,7 +374,16 @@ class Monitor:
         return pickle.dumps(state, protocol=5)
 
     def load_bytes(self, blob: bytes) -> None:
+        """Restore a state :meth:`to_bytes` wrote; a state of another layout (an older trimtab's) is
+        refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint
+        or replays the journal)."""
         state = pickle.loads(blob)
+        mine = self._mon.shape, self.window._g.shape
+        theirs = (getattr(state.get("_mon"), "shape", None), getattr(getattr(state.get("window"), "_g", None), "shape",
+                                                                      None))
+        if theirs != mine:
+            raise ValueError(f"monitor state of another layout (arrays {theirs}, this version's {mine}): it was "
+                             "written by another trimtab version")
         trusted = state.pop("_trusted")
         self.__dict__.update(state)
         self._trusted = LinearModel.from_bytes(trusted) if trusted is not None else None

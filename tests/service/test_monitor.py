@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import pickle
 import random
 import sys
 from pathlib import Path
@@ -305,6 +306,20 @@ def test_rollback_leaves_a_usable_model_and_checkpoints_replay_it():
     assert restored.state_digest == eng.state_digest == whole.state_digest
     assert restored.incidents == eng.incidents == whole.incidents
     assert math.isfinite(serving_loss(eng, feeds.eval_set(feeds.BASE, 5000, 4)))
+
+
+def test_monitor_state_of_another_layout_is_refused():
+    """A checkpoint's monitor state written by a trimtab with another layout (here: the previous
+    one, without the packed arrays) is refused with a clear error, and the monitor is unchanged."""
+    eng = engine()
+    apply(eng, feeds.stream(3000, 8), 0, 3000)
+    before = eng.monitor.to_bytes()
+    old = pickle.loads(before)
+    del old["_mon"]
+    old["_bounds"], old["_worse_streak"] = [-1], 0
+    with pytest.raises(ValueError, match="another layout"):
+        eng.monitor.load_bytes(pickle.dumps(old))
+    assert eng.monitor.to_bytes() == before
 
 
 def test_trusted_copy_is_an_independent_model():
