@@ -17,13 +17,12 @@ from __future__ import annotations
 
 import math
 
-import numba
-
 from models.kernels import S_GN, S_GSQ, S_LASTETA
 
 from .holdout import (G_COUNT, G_FROZEN, N_PRM, N_STATS, P_CUT, P_LAST, P_RECENT, ST_AVG, ST_DIST, ST_KEPT,
                       ST_MEDIAN, ST_NEW, ST_NEW_ABOVE, ST_RAW, ST_REC_AVG, ST_REC_N, ST_REC_RAW, _check_in, _keep_in,
                       _views)
+from .window_scoring import _inline, _jit  # the window's compile settings, one definition
 from .window_sums import recent_figures
 
 __all__ = ["BOUNDS", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_feed", "ph_load", "ph_reset"]
@@ -51,9 +50,6 @@ O_PRM, O_OUT, O_RES = 0, N_PRM, N_PRM + N_STATS
 O_STATE = O_RES + N_RES
 N_MONITOR = O_STATE + N_STATE
 REASON_REFUSED, REASON_DISTANCE, REASON_LOSS = 1, 2, 3
-
-_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-_inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
 
 
 def ph_load(m, ph) -> None:
