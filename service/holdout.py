@@ -17,8 +17,8 @@ from models import LinearModel, Rows
 
 from .window_scoring import *  # noqa: F401,F403  (the layouts, importable from here as before)
 from .window_scoring import (G_COUNT, G_FROZEN, G_INSERTS, G_NEXT, G_NNUM, G_SIZE, G_SUMS, G_VALID, G_WIDTH,
-                             G_XMAX, M_EVENT, M_SCALED, M_Y, N_G, N_STATS, N_WORK, P_NEXT, P_UNSCALED, SAMPLE_EVERY,
-                             _inline, _jit, _window_stats)
+                             G_XMAX, M_EVENT, M_SCALED, M_Y, N_G, N_META, N_STATS, N_WORK, P_NEXT, P_UNSCALED,
+                             SAMPLE_EVERY, _inline, _jit, _window_stats)
 from .window_sums import (N_GI, REBUILD_WINDOWS, SUMS_CATEGORICAL, SUMS_NUMERIC, SUSPECTS, _accumulate, _claim,
                           _rebuild, _release, _sums_stats)
 
@@ -124,9 +124,10 @@ def _views(f, i, g, k):
     size, nnum, width = int(gst[G_SIZE]), int(gst[G_NNUM]), int(gst[G_WIDTH])
     part = (size + SAMPLE_EVERY - 1) // SAMPLE_EVERY
     o = nnum + width
-    num, val, meta, work = f[:nnum], f[nnum:o], f[o:o + 3], f[o + 3:o + 3 + N_WORK]
-    sample = _block(f, o + 3 + N_WORK, o + 2, part)
-    scaling = _block(f, o + 3 + N_WORK + -(-((o + 2) * part) // size), 2, nnum)
+    w = o + N_META  # the work rows, then the sample block (its numeric, categorical, y and event rows)
+    num, val, meta, work = f[:nnum], f[nnum:o], f[o:w], f[w:w + N_WORK]
+    sample = _block(f, w + N_WORK, o + 2, part)
+    scaling = _block(f, w + N_WORK + -(-((o + 2) * part) // size), 2, nnum)
     idx, loc = i[:width], i[width:2 * width]
     sidx = _block(i, 2 * width, width, part)
     return (num, val, meta, work, sample[:nnum], sample[nnum:o], sample[o:o + 2], scaling, idx, loc, sidx,
@@ -243,7 +244,8 @@ class HoldoutWindow:
         old = self._parts() if hasattr(self, "_f") else None
         size, nnum = self.size, int(self._gst[G_NNUM])
         part, o = -(-size // SAMPLE_EVERY), nnum + width
-        self._f = np.zeros((o + 3 + N_WORK + _block_rows(o + 2, part, size) + _block_rows(2, nnum, size), size))
+        self._f = np.zeros((o + N_META + N_WORK + _block_rows(o + 2, part, size) + _block_rows(2, nnum, size),
+                            size))
         self._i = np.zeros((2 * width + _block_rows(width, part, size), size), dtype=np.int32)
         self._gst[G_WIDTH] = width
         new = self._parts()
