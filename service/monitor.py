@@ -71,6 +71,9 @@ from .holdout import (LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CU
 
 __all__ = ["Monitor"]
 
+(R_RAW, R_AVG, R_HELD, R_KEPT, R_DIST, R_ALLOWANCE, R_EXCEEDANCE, R_KEPT_NOW, R_RAW_SERVED) = (
+    R.R_RAW, R.R_AVG, R.R_HELD, R.R_KEPT, R.R_DIST, R.R_ALLOWANCE, R.R_EXCEEDANCE, R.R_KEPT_NOW, R.R_RAW_SERVED)
+
 def _copy_model(model: LinearModel, into: LinearModel | None = None) -> LinearModel:
     """An independent copy of ``model``, in a few microseconds: the learned state of a model lives in
     numpy arrays ("state lives in plain arrays so that a snapshot is a byte copy", models/kernels.py),
@@ -120,6 +123,7 @@ class Monitor:
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self.window = HoldoutWindow(cfg.window, len(spec.numeric), sums=spec.loss == "squared")
         self._mon = np.zeros(R.N_MONITOR)  # window scalars and figures, the rules' results and state
+        self._resv = self._res  # the results' view, made once (not pickled: made again on load)
         self._prm[P_CODE] = LOSS_CODES[spec.loss]
         self._prm[P_DELTA] = spec.huber_delta
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
@@ -238,27 +242,41 @@ class Monitor:
 
     def check(self, model: LinearModel, event: int, ts: float | None = None, held: tuple | None = None) -> dict:
         """Evaluate both iterates on the window, act if needed; return the check's record. ``held``:
-        ``(rows, y, mode, start, stop, first)`` as for :meth:`hold_out`, rows kept first (one call)."""
-        window, mon = self.window, self._mon
+        ``(rows, y, mode, start, stop, first)`` as for :meth:`hold_out`, rows kept first (one call).
+
+        Most checks only build their record: the compiled rules return 0 then, and the Python that
+        acts (rollback, trusted copy, ADWIN, alarm, confirmation) runs only on the bits they return."""
+        window = self.window
         if not window.ready:  # until the scaling froze and the rows kept before it were scaled
             window.prepare_check(model, self._prm)
         if self._radius is None:
             self._m[R.C_LIMIT] = self.cfg.divergence_radii * max(model.norm("averaged"), 1.0)
         lazy, state, sc = model.kernel_state()
         rows, y, mode, lo, hi, first = held if held is not None else _NOTHING_HELD
-        args = (rows.indptr, rows.indices, rows.values, mode, y, lo, hi, first, lazy, state, sc, mon, event)
-        R.decide(window._f, window._i, window._g, window._k, *args)
-        r = mon[R.O_RES:R.O_RES + R.N_RES].tolist()  # Python floats from here on
-        if r[R.R_WIDEN]:  # a wider row than any before: widen the window (rare), then again
-            window.widen(int(r[R.R_WIDEN]))
-            R.decide(window._f, window._i, window._g, window._k, *args)
-            r = mon[R.O_RES:R.O_RES + R.N_RES].tolist()
-        if r[R.R_KEPT_NOW] and not window.ready:
+        args = (rows.indptr, rows.indices, rows.values, mode, y, lo, hi, first, lazy, state, sc, self._mon, event)
+        flags = R.decide(window._f, window._i, window._g, window._k, *args)
+        if flags & R.F_WIDEN:  # a wider row than any before: widen the window (rare), then again
+            window.widen(int(self._mon[R.O_RES + R.R_WIDEN]))
+            flags = R.decide(window._f, window._i, window._g, window._k, *args)
+        r = self._resv.tolist()  # Python floats from here on
+        if not window.ready and r[R_KEPT_NOW]:
             window.note_kept()
-        raw, avg, n, kept, distance, allowance = r[R.R_RAW], r[R.R_AVG], int(r[R.R_HELD]), int(r[R.R_KEPT]), \
-            r[R.R_DIST], r[R.R_ALLOWANCE]
-        record = {"event": int(event), "holdout_raw": raw, "holdout_avg": avg, "held_out": n, "excluded": n - kept,
-                  "action": None, "distance": distance, "allowance": allowance}
+        n = int(r[R_HELD])
+        record = {"event": event, "holdout_raw": r[R_RAW], "holdout_avg": r[R_AVG], "held_out": n,
+                  "excluded": n - int(r[R_KEPT]), "action": None, "distance": r[R_DIST], "allowance": r[R_ALLOWANCE]}
+        if flags & R.F_RULES:
+            self._act(model, event, ts, record, r)
+        if r[R_EXCEEDANCE] == r[R_EXCEEDANCE]:
+            record["exceedance"] = r[R_EXCEEDANCE]
+        if flags & R.F_DRIFT:
+            self._drift(model, event, ts, record, r)
+        record["serving"] = "raw" if r[R_RAW_SERVED] else "averaged"
+        self._last = record
+        return record
+
+    def _act(self, model: LinearModel, event: int, ts, record: dict, r: list) -> None:
+        """What the rules ask of a check (``F_RULES``): note a raw iterate that follows the newest
+        events, roll back (or note the trigger when rollbacks are off), take a trusted copy."""
         if r[R.R_FOLLOWING]:
             record["following"] = True
         if r[R.R_REASON]:
@@ -266,18 +284,20 @@ class Monitor:
             if r[R.R_IGNORED]:
                 record["alarm"] = reason  # observed, not acted on: this config has rollbacks switched off
             else:
-                model = self._rollback(model, event, ts, reason, r[R.R_REASON] == R.REASON_LOSS,
-                                       int(r[R.R_REFUSED]), {"holdout_raw": raw, "holdout_avg": avg,
-                                                             "distance": distance, "allowance": allowance,
-                                                             "held_out": kept})
+                raw, avg, distance, allowance = r[R_RAW], r[R_AVG], r[R_DIST], r[R_ALLOWANCE]
+                self._rollback(model, event, ts, reason, r[R.R_REASON] == R.REASON_LOSS, int(r[R.R_REFUSED]),
+                               {"holdout_raw": raw, "holdout_avg": avg, "distance": distance,
+                                "allowance": allowance, "held_out": int(r[R_KEPT])})
                 record["action"] = "rollback"
         elif r[R.R_SNAPSHOT]:
             self._trusted, self._trusted_event = _copy_model(model, self._trusted), int(event)
-        if r[R.R_EXCEEDANCE] == r[R.R_EXCEEDANCE]:
-            record["exceedance"] = r[R.R_EXCEEDANCE]
+
+    def _drift(self, model: LinearModel, event: int, ts, record: dict, r: list) -> None:
+        """What the change detector asks of a check (``F_DRIFT``): feed ADWIN, note an alarm, confirm
+        or dismiss one whose checks are up."""
         if r[R.R_ADWIN]:
             st = self._stats
-            if self._detector.update_many(window.new_above(int(st[ST_NEW]), float(st[ST_MEDIAN]))):
+            if self._detector.update_many(self.window.new_above(int(st[ST_NEW]), float(st[ST_MEDIAN]))):
                 m = self._m
                 m[R.S_ALARM], m[R.S_ALARM_CHECKS] = r[R.R_LAST] + 1.0, 0.0
                 record["alarm"] = int(m[R.S_ALARM])
@@ -285,9 +305,6 @@ class Monitor:
             record["alarm"] = int(r[R.R_ALARM])
         if r[R.R_CONFIRM]:
             self._confirm(model, event, ts, record, r[R.R_CONFIRM_FROM])
-        record["serving"] = "raw" if r[R.R_RAW_SERVED] else "averaged"
-        self._last = record
-        return record
 
     def _reason(self, r: list) -> str:
         cfg = self.cfg
@@ -369,7 +386,7 @@ class Monitor:
 
     # ---------------------------------------------------------------- state
     def to_bytes(self) -> bytes:
-        state = {k: v for k, v in self.__dict__.items() if k not in ("cfg", "_trusted", "_restored")}
+        state = {k: v for k, v in self.__dict__.items() if k not in ("cfg", "_trusted", "_restored", "_resv")}
         state["_trusted"] = self._trusted.to_bytes() if self._trusted is not None else None
         return pickle.dumps(state, protocol=5)
 
@@ -386,5 +403,6 @@ class Monitor:
                              "written by another trimtab version")
         trusted = state.pop("_trusted")
         self.__dict__.update(state)
+        self._resv = self._res
         self._trusted = LinearModel.from_bytes(trusted) if trusted is not None else None
         self._restored = None

@@ -25,7 +25,7 @@ from .holdout import (G_COUNT, G_FROZEN, N_PRM, N_STATS, P_CUT, P_LAST, P_RECENT
 from .window_scoring import _inline, _jit  # the window's compile settings, one definition
 from .window_sums import recent_figures
 
-__all__ = ["BOUNDS", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_feed", "ph_load", "ph_reset"]
+__all__ = ["BOUNDS", "F_DRIFT", "F_RULES", "F_WIDEN", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_feed", "ph_load", "ph_reset"]
 
 # settings (fixed at start)
 (C_MARGIN, C_PATIENCE, C_MIN_HOLDOUT, C_LIMIT, C_NOISE, C_SNAPSHOT, C_ROLLBACK, C_ABSURD, C_BETTER, C_DRIFT,
@@ -50,6 +50,10 @@ O_PRM, O_OUT, O_RES = 0, N_PRM, N_PRM + N_STATS
 O_STATE = O_RES + N_RES
 N_MONITOR = O_STATE + N_STATE
 REASON_REFUSED, REASON_DISTANCE, REASON_LOSS = 1, 2, 3
+# what :func:`decide` returns: 0 for a plain check (nothing beyond its record), else these bits
+F_WIDEN = 1   # a row was wider than the window: nothing changed, widen and call again
+F_RULES = 2   # the loss rule saw the raw iterate following, a rollback trigger fired, or a trusted copy is due
+F_DRIFT = 4   # ADWIN must read the new events, an alarm was raised, or an alarm's confirmation is due
 
 
 def ph_load(m, ph) -> None:
@@ -114,15 +118,16 @@ def _bound(m, back):
 def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event):
     """Keep the held-out rows among ``lo..hi`` (as ``holdout._put``), score the window and apply the
     rules for the check at ``event``; ``mon`` holds the window scalars, figures, results and the
-    rules' state (layout ``O_*``). A row wider than the window stops it before anything changes
-    (``res[R_WIDEN]``: the width needed)."""
+    rules' state (layout ``O_*``). Returns 0 when the caller has only the record to build, else the
+    ``F_*`` bits of what it must act on. A row wider than the window stops it before anything
+    changes (``F_WIDEN``; ``res[R_WIDEN]``: the width needed)."""
     prm, out = mon[O_PRM:O_PRM + N_PRM], mon[O_OUT:O_OUT + N_STATS]
     res, m = mon[O_RES:O_RES + N_RES], mon[O_STATE:]
     v = _views(f, i, g, k)  # once for both stages
     nxt, kept_now = _keep_in(v, indptr, indices, values, mode, y, indptr[:0], lo, hi, first)
     if nxt < 0:
         res[R_WIDEN] = -nxt
-        return
+        return F_WIDEN
     n_bounds = int(m[B_LEN])
     patience = m[C_PATIENCE]
     prm[P_LAST] = _bound(m, 1)
@@ -211,3 +216,7 @@ def decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, st
     m[B_RING + int(m[B_POS])] = event
     m[B_POS] = (m[B_POS] + 1.0) % BOUNDS
     m[B_LEN] = min(m[B_LEN] + 1.0, m[C_BOUNDS])
+    flags = F_RULES if (res[R_FOLLOWING] > 0.0 or res[R_REASON] > 0.0 or res[R_SNAPSHOT] > 0.0) else 0
+    if res[R_ADWIN] > 0.0 or res[R_ALARM] >= 0.0 or res[R_CONFIRM] > 0.0:
+        flags |= F_DRIFT
+    return flags

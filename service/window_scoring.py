@@ -23,7 +23,7 @@ from models.kernels import iterate_distance, margin_map, point_loss
 LOSS_CODES = {"squared": 0, "huber": 1, "logistic": 2}
 # layouts of the arrays the compiled passes share: statistics out, scalars in, per-slot metadata
 (ST_MEDIAN, ST_RAW, ST_AVG, ST_KEPT, ST_NEW, ST_NEW_ABOVE, ST_REC_RAW, ST_REC_AVG, ST_REC_N, ST_DIST,
- N_STATS) = range(11)
+ ST_BAND_LO, ST_BAND_HI, N_STATS) = range(13)
 P_CODE, P_DELTA, P_LAST, P_RECENT, P_CUT, P_UNSCALED, P_NEXT, P_ABSURD, N_PRM = range(9)
 M_Y, M_EVENT, M_SCALED, N_META = range(4)
 N_WORK = 4  # work rows: raw losses, averaged losses, scratch, the sample's products
@@ -48,6 +48,57 @@ _inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always
 _loss = point_loss  # the kernels' own per-event loss, so window and progressive losses agree
 
 
+BAND_RANKS = 8  # the median's band for the next check: this many ranks either side of the middle
+
+
+@_inline
+def _median(x, k, out):
+    """``np.median(x[:k])`` (the same bits; ``x[:k]`` is reordered), NaN for ``k == 0`` or a NaN in ``x[:k]``.
+
+    A quickselect on fresh losses mispredicts about every other comparison, which on this work
+    costs more than scoring the sample. The median moves little from one check to the next, so
+    ``out[ST_BAND_LO]`` .. ``out[ST_BAND_HI]`` carries the values ``BAND_RANKS`` ranks either side
+    of the last one: one pass counts the values below and within the band and moves those within
+    to the front (no branches), and only the few within are sorted. When the middle ranks fall
+    outside the band (the first check, a jump) the whole sample is sorted instead. Either way the
+    order statistics are exact, so the result does not depend on the band."""
+    if k == 0:
+        return math.nan
+    lo, hi = out[ST_BAND_LO], out[ST_BAND_HI]
+    below = within = 0
+    nan = False
+    for i in range(k):
+        v = x[i]
+        below += v < lo
+        within += (v >= lo) & (v <= hi)
+        nan |= v != v
+    if nan:
+        return math.nan
+    r2 = k >> 1
+    r1 = r2 - 1 if k % 2 == 0 else r2  # the middle ranks (0-based)
+    if below <= r1 and r2 < below + within:
+        m = 0
+        for i in range(k):  # the band's values to the front, in place (m <= i)
+            v = x[i]
+            x[m] = v
+            m += (v >= lo) & (v <= hi)
+        for i in range(1, m):  # insertion sort of the few
+            v = x[i]
+            j = i - 1
+            while j >= 0 and x[j] > v:
+                x[j + 1] = x[j]
+                j -= 1
+            x[j + 1] = v
+        first, count = below, m
+    else:
+        x[:k].sort()
+        first, count = 0, k
+    a, b = x[r1 - first], x[r2 - first]
+    out[ST_BAND_LO] = x[max(r1 - first - BAND_RANKS, 0)]
+    out[ST_BAND_HI] = x[min(r2 - first + BAND_RANKS, count - 1)]
+    return (a + b) / 2 if k % 2 == 0 else b
+
+
 @_inline
 def _figures(snum, sidx, sval, smeta, n, lazy, state, sc, code, delta, last_event, work, k_new, s_raw, s_avg, kept,
              r_raw, r_avg, r_n, out):
@@ -59,7 +110,7 @@ def _figures(snum, sidx, sval, smeta, n, lazy, state, sc, code, delta, last_even
     scratch = work[2]
     k_old = _sample_losses(snum, sidx, sval, smeta, (n + SAMPLE_EVERY - 1) // SAMPLE_EVERY, lazy, state, sc,
                            code, delta, last_event, work[3], scratch)
-    med = np.median(scratch[:k_old]) if k_old > 0 else math.nan
+    med = _median(scratch, k_old, out)
     above = 0.0
     for k in range(n - k_new, n):
         if scratch[k] > med:

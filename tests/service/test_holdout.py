@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from models import Rows
-from service import holdout, rules
+from service import holdout, rules, window_scoring
 from service.config import config_from_dict
 from service.engine import Engine, PreparedBatch, holdout_fraction
 
@@ -36,12 +36,12 @@ def compared(monkeypatch):
     def checked(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event):
         prm, out = mon[rules.O_PRM:rules.O_OUT], mon[rules.O_OUT:rules.O_RES]
         cut, pending = prm[holdout.P_CUT], prm[holdout.P_UNSCALED] > 0
-        decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event)
-        if mon[rules.O_RES + rules.R_WIDEN]:
-            return
+        flags = decide(f, i, g, k, indptr, indices, values, mode, y, lo, hi, first, lazy, state, sc, mon, event)
+        if flags & rules.F_WIDEN:
+            return flags
         if pending:  # rows scaled by this very check: the full pass ran
             seen["full"] += 1
-            return
+            return flags
         again = prm.copy()
         again[holdout.P_CUT] = cut  # the cut this check used (it sets the next one)
         want = np.zeros_like(out)
@@ -59,6 +59,7 @@ def compared(monkeypatch):
         seen["sums" if used else "full"] += 1
         seen["recent"] += int(used and out[holdout.ST_REC_N] >= 0)  # asked for by the loss rule
         seen["excluded"] += int(gst[holdout.G_COUNT] - out[holdout.ST_KEPT])
+        return flags
 
     monkeypatch.setattr(rules, "decide", checked)
     return seen
@@ -125,3 +126,30 @@ def test_holdout_share_is_what_the_stream_says():
     ids = feeds.stream(20_000, 7).ids
     share = np.mean([holdout_fraction(i) < 0.05 for i in ids])
     assert 0.04 < share < 0.06
+
+
+def test_median_with_a_carried_band_is_numpys_median():
+    """The check's median (``window_scoring._median``: a band carried from the last check, sorted
+    only within it, else the whole sample) equals ``numpy.median`` bit for bit on slowly moving
+    samples (the band is hit), jumps (it is missed), ties, even and odd sizes, an empty sample and a
+    NaN; the band it carries cannot change the result, only the work."""
+    median = window_scoring._median  # compiled (inlined where the checks call it)
+    rng = np.random.default_rng(5)
+    out = np.zeros(holdout.N_STATS)
+    hits = 0
+    base = rng.chisquare(1, 400)
+    for t in range(4000):
+        k = int(rng.integers(1, 300)) if t % 50 == 0 else 251 + t % 2
+        if t % 200 == 0:
+            base = rng.chisquare(1, 400) * rng.uniform(0.1, 10.0)  # a jump
+        base[rng.integers(0, 400)] = rng.chisquare(1)  # one value replaced per check, as the sample turns over
+        x = base * (1.0 + 0.001 * np.sin(t / 30.0))
+        if t % 9 == 0:
+            x = np.round(x, 2)  # ties
+        lo, hi = out[holdout.ST_BAND_LO], out[holdout.ST_BAND_HI]
+        hits += int(np.count_nonzero(x[:k] < lo) <= (k - 1) // 2 and np.count_nonzero(x[:k] <= hi) > k // 2)
+        got, want = median(x.copy(), k, out), np.median(x[:k])
+        assert got == want, (t, k, got, want)
+    assert hits > 3000  # most checks take the band's short way
+    assert np.isnan(median(np.array([1.0, np.nan, 2.0]), 3, out))
+    assert np.isnan(median(np.zeros(3), 0, out))
