@@ -20,6 +20,7 @@ from .window_scoring import (G_COUNT, G_FROZEN, G_INSERTS, G_NEXT, G_NNUM, G_SIZ
                              G_XMAX, M_EVENT, M_SCALED, M_Y, N_G, N_META, N_STATS, N_WORK, P_NEXT, P_UNSCALED,
                              SAMPLE_EVERY, _inline, _jit, _window_stats)
 from .window_sums import (N_GI, REBUILD_WINDOWS, SUMS_CATEGORICAL, SUMS_NUMERIC, SUSPECTS, _accumulate, _claim,
+                          _claim_known,
                           _rebuild, _release, _sums_stats)
 
 __all__ = ["HoldoutWindow", "LOSS_CODES", "N_PRM", "N_STATS"]
@@ -52,13 +53,12 @@ def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y,
                 return -wide, 0
     kept = 0
     missing = 0.0 if scaled else math.nan
-    ent_l, ent_x = np.empty(nnum + width, dtype=np.int64), np.empty(nnum + width)  # _accumulate's scratch
     for r in range(lo, hi):
         if mode[r] != 2:
             continue
         sums = gst[G_VALID] > 0.0
         if sums and count == size:  # the oldest event leaves the sums
-            _accumulate(num, val, loc, meta[M_Y, nxt], nxt, gm, gst, -1.0, ent_l, ent_x)
+            _accumulate(num, val, loc, meta[M_Y, nxt], nxt, gm, gst, -1.0)
             _release(loc, nxt, nnum, gm, gi)
         for j in range(nnum):
             num[j, nxt] = missing
@@ -81,8 +81,8 @@ def _put(num, idx, val, meta, loc, nxt, count, indptr, indices, values, mode, y,
         if nxt % SAMPLE_EVERY == 0:
             _copy_slot(num, idx, val, meta, nxt, snum, sidx, sval, smeta, nxt // SAMPLE_EVERY)
         if sums:
-            if _claim(idx, val, loc, nxt, nnum, gi, gst):
-                norm = _accumulate(num, val, loc, y[r], nxt, gm, gst, 1.0, ent_l, ent_x)
+            if _claim_known(idx, val, loc, nxt, nnum, gi) or _claim(idx, val, loc, nxt, nnum, gi, gst):
+                norm = _accumulate(num, val, loc, y[r], nxt, gm, gst, 1.0)
                 gst[G_XMAX] = max(gst[G_XMAX], norm)
             else:
                 gst[G_VALID] = 0.0
