@@ -48,7 +48,7 @@ _inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always
 _loss = point_loss  # the kernels' own per-event loss, so window and progressive losses agree
 
 
-BAND_RANKS = 8  # the median's band for the next check: this many ranks either side of the middle
+BAND_RANKS = 8  # the median's band holds about this many values either side of the middle
 
 
 @_inline
@@ -57,11 +57,12 @@ def _median(x, k, out):
 
     A quickselect on fresh losses mispredicts about every other comparison, which on this work
     costs more than scoring the sample. The median moves little from one check to the next, so
-    ``out[ST_BAND_LO]`` .. ``out[ST_BAND_HI]`` carries the values ``BAND_RANKS`` ranks either side
-    of the last one: one pass counts the values below and within the band and moves those within
-    to the front (no branches), and only the few within are sorted. When the middle ranks fall
-    outside the band (the first check, a jump) the whole sample is sorted instead. Either way the
-    order statistics are exact, so the result does not depend on the band."""
+    ``out[ST_BAND_LO]`` .. ``out[ST_BAND_HI]`` carries a band around the last one: one pass counts
+    the values below and within it and moves those within to the front (no branches), and only
+    the few within are sorted. The band's half-width follows the values' spread near the middle
+    (about ``BAND_RANKS`` values either side). When the middle ranks fall outside the band (the
+    first check, a jump) the whole sample is sorted instead. Either way the order statistics are
+    exact, so the result does not depend on the band."""
     if k == 0:
         return math.nan
     lo, hi = out[ST_BAND_LO], out[ST_BAND_HI]
@@ -89,14 +90,15 @@ def _median(x, k, out):
                 x[j + 1] = x[j]
                 j -= 1
             x[j + 1] = v
-        first, count = below, m
+        a, b = x[r1 - below], x[r2 - below]
+        half = 0.5 * (hi - lo) * min(max((2.0 * BAND_RANKS + 2.0) / m, 0.5), 2.0)
     else:
         x[:k].sort()
-        first, count = 0, k
-    a, b = x[r1 - first], x[r2 - first]
-    out[ST_BAND_LO] = x[max(r1 - first - BAND_RANKS, 0)]
-    out[ST_BAND_HI] = x[min(r2 - first + BAND_RANKS, count - 1)]
-    return (a + b) / 2 if k % 2 == 0 else b
+        a, b = x[r1], x[r2]
+        half = max(a - x[max(r1 - BAND_RANKS, 0)], x[min(r2 + BAND_RANKS, k - 1)] - b)
+    med = (a + b) / 2 if k % 2 == 0 else b
+    out[ST_BAND_LO], out[ST_BAND_HI] = med - half, med + half
+    return med
 
 
 @_inline
