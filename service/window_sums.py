@@ -91,13 +91,22 @@ def _entry(num, val, loc, slot, a, nnum):
 
 
 @_inline
+def _own(gm, la, xa, sx, y):
+    """An entry's own terms in the running sums (``x``, ``y x``, ``x**2``; ``sx`` is the signed ``x``)."""
+    big_l = gm.shape[1]
+    gm[big_l, la] += sx
+    gm[big_l + 1, la] += sx * y
+    gm[la, la] += sx * xa
+
+
+@_inline
 def _accumulate(num, val, loc, y, slot, gm, gst, sign):
     """Add (``sign`` 1) or take away (-1) the kept event in ``slot`` to the running sums: ``x x'``
     in ``gm[:L]`` (upper triangle: ``gm[a, b]`` for ``a <= b`` holds the sum over both orders of a
     pair, which is all the quadratic form reads), ``x`` in ``gm[L]``, ``y x`` in ``gm[L + 1]``; 1, y,
     y**2 in ``gst``. Entries in order (numeric features, then the categorical positions), zeros
     skipped, each pair once from its first entry. Returns ``||x||``."""
-    nnum, width, big_l = num.shape[0], loc.shape[0], gm.shape[1]
+    nnum, width = num.shape[0], loc.shape[0]
     norm2 = 0.0
     for a in range(nnum):
         xa = num[a, slot]
@@ -105,9 +114,7 @@ def _accumulate(num, val, loc, y, slot, gm, gst, sign):
             continue
         norm2 += xa * xa
         sx = sign * xa
-        gm[big_l, a] += sx
-        gm[big_l + 1, a] += sx * y
-        gm[a, a] += sx * xa
+        _own(gm, a, xa, sx, y)
         for b in range(a + 1, nnum):
             xb = num[b, slot]
             if xb != 0.0:
@@ -122,9 +129,7 @@ def _accumulate(num, val, loc, y, slot, gm, gst, sign):
             continue
         norm2 += xa * xa
         sx = sign * xa
-        gm[big_l, la] += sx
-        gm[big_l + 1, la] += sx * y
-        gm[la, la] += sx * xa
+        _own(gm, la, xa, sx, y)
         for q in range(p + 1, width):
             lb, xb = loc[q, slot], val[q, slot]
             if lb < 0 or xb == 0.0:
