@@ -20,8 +20,7 @@ from .window_scoring import (G_COUNT, G_FROZEN, G_INSERTS, G_NEXT, G_NNUM, G_SIZ
                              G_XMAX, M_EVENT, M_SCALED, M_Y, N_G, N_META, N_STATS, N_WORK, P_NEXT, P_UNSCALED,
                              SAMPLE_EVERY, _inline, _jit, _window_stats)
 from .window_sums import (N_GI, REBUILD_WINDOWS, SUMS_CATEGORICAL, SUMS_NUMERIC, SUSPECTS, _accumulate, _claim,
-                          _claim_known,
-                          _rebuild, _release, _sums_stats)
+                          _claim_known, _rebuild, _release, _sums_stats)
 
 __all__ = ["HoldoutWindow", "LOSS_CODES", "N_PRM", "N_STATS"]
 

@@ -74,6 +74,7 @@ __all__ = ["Monitor"]
 (R_RAW, R_AVG, R_HELD, R_KEPT, R_DIST, R_ALLOWANCE, R_EXCEEDANCE, R_KEPT_NOW, R_RAW_SERVED) = (
     R.R_RAW, R.R_AVG, R.R_HELD, R.R_KEPT, R.R_DIST, R.R_ALLOWANCE, R.R_EXCEEDANCE, R.R_KEPT_NOW, R.R_RAW_SERVED)
 
+
 def _copy_model(model: LinearModel, into: LinearModel | None = None) -> LinearModel:
     """An independent copy of ``model``, in a few microseconds: the learned state of a model lives in
     numpy arrays ("state lives in plain arrays so that a snapshot is a byte copy", models/kernels.py),
@@ -262,7 +263,7 @@ class Monitor:
         if not window.ready and r[R_KEPT_NOW]:
             window.note_kept()
         n = int(r[R_HELD])
-        record = {"event": event, "holdout_raw": r[R_RAW], "holdout_avg": r[R_AVG], "held_out": n,
+        record = {"event": int(event), "holdout_raw": r[R_RAW], "holdout_avg": r[R_AVG], "held_out": n,
                   "excluded": n - int(r[R_KEPT]), "action": None, "distance": r[R_DIST], "allowance": r[R_ALLOWANCE]}
         if flags & R.F_RULES:
             self._act(model, event, ts, record, r)

@@ -25,7 +25,8 @@ from .holdout import (G_COUNT, G_FROZEN, N_PRM, N_STATS, P_CUT, P_LAST, P_RECENT
 from .window_scoring import _inline, _jit  # the window's compile settings, one definition
 from .window_sums import recent_figures
 
-__all__ = ["BOUNDS", "F_DRIFT", "F_RULES", "F_WIDEN", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_feed", "ph_load", "ph_reset"]
+__all__ = ["BOUNDS", "F_DRIFT", "F_RULES", "F_WIDEN", "N_MONITOR", "N_RES", "N_STATE", "decide", "ph_feed", "ph_load",
+           "ph_reset"]
 
 # settings (fixed at start)
 (C_MARGIN, C_PATIENCE, C_MIN_HOLDOUT, C_LIMIT, C_NOISE, C_SNAPSHOT, C_ROLLBACK, C_ABSURD, C_BETTER, C_DRIFT,

@@ -16,7 +16,6 @@ from __future__ import annotations
 import math
 
 import numba
-import numpy as np
 
 from models.kernels import iterate_distance, margin_map, point_loss
 
