@@ -65,14 +65,12 @@ from models import LinearModel, Rows
 
 from .config import MonitorConfig
 from . import rules as R
+from .rules import R_ALLOWANCE, R_AVG, R_DIST, R_EXCEEDANCE, R_HELD, R_KEPT, R_KEPT_NOW, R_RAW, R_RAW_SERVED
 from .drift import ChangeDetector, sign_test_pvalue
 from .holdout import (LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_AVG, ST_KEPT,
                       ST_MEDIAN, ST_NEW, ST_RAW, HoldoutWindow)
 
 __all__ = ["Monitor"]
-
-(R_RAW, R_AVG, R_HELD, R_KEPT, R_DIST, R_ALLOWANCE, R_EXCEEDANCE, R_KEPT_NOW, R_RAW_SERVED) = (
-    R.R_RAW, R.R_AVG, R.R_HELD, R.R_KEPT, R.R_DIST, R.R_ALLOWANCE, R.R_EXCEEDANCE, R.R_KEPT_NOW, R.R_RAW_SERVED)
 
 
 def _copy_model(model: LinearModel, into: LinearModel | None = None) -> LinearModel:
@@ -124,7 +122,6 @@ class Monitor:
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self.window = HoldoutWindow(cfg.window, len(spec.numeric), sums=spec.loss == "squared")
         self._mon = np.zeros(R.N_MONITOR)  # window scalars and figures, the rules' results and state
-        self._resv = self._res  # the results' view, made once (not pickled: made again on load)
         self._prm[P_CODE] = LOSS_CODES[spec.loss]
         self._prm[P_DELTA] = spec.huber_delta
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
@@ -259,7 +256,7 @@ class Monitor:
         if flags & R.F_WIDEN:  # a wider row than any before: widen the window (rare), then again
             window.widen(int(self._mon[R.O_RES + R.R_WIDEN]))
             flags = R.decide(window._f, window._i, window._g, window._k, *args)
-        r = self._resv.tolist()  # Python floats from here on
+        r = self._res.tolist()  # Python floats from here on
         if not window.ready and r[R_KEPT_NOW]:
             window.note_kept()
         n = int(r[R_HELD])
@@ -387,7 +384,7 @@ class Monitor:
 
     # ---------------------------------------------------------------- state
     def to_bytes(self) -> bytes:
-        state = {k: v for k, v in self.__dict__.items() if k not in ("cfg", "_trusted", "_restored", "_resv")}
+        state = {k: v for k, v in self.__dict__.items() if k not in ("cfg", "_trusted", "_restored")}
         state["_trusted"] = self._trusted.to_bytes() if self._trusted is not None else None
         return pickle.dumps(state, protocol=5)
 
@@ -404,6 +401,5 @@ class Monitor:
                              "written by another trimtab version")
         trusted = state.pop("_trusted")
         self.__dict__.update(state)
-        self._resv = self._res
         self._trusted = LinearModel.from_bytes(trusted) if trusted is not None else None
         self._restored = None
