@@ -256,7 +256,7 @@ def measure_monitor_overhead(args) -> dict:
         module = importlib.util.module_from_spec(module_spec)
         module_spec.loader.exec_module(module)
     except ImportError as exc:
-        raise Skipped(f"service.monitor or its engine is not importable ({exc})") from None
+        raise Skipped(f"service.monitor.monitor or its engine is not importable ({exc})") from None
     # at least the owner's defaults: the ratio is a median of paired batches in the steady state
     # (from 40,000 events on), and 100,000 events x 3 repeats leave only 36 pairs, most of them
     # from a model young enough that its average still moves (more full passes; about 0.02 higher)

@@ -1,6 +1,6 @@
 """What the stability monitor costs per event: monitor on (defaults) vs off, same stream, same run.
 
-The stream is the invented cold-chain demo feed (``service.scenario``), stationary (no
+The stream is the invented cold-chain demo feed (``service.replay.scenario``), stationary (no
 recalibration, no gateway fault), 4 numeric and 2 categorical features per event.
 
 ``monitor_overhead``
@@ -35,7 +35,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from service import scenario  # noqa: E402
+from service.replay import scenario  # noqa: E402
 from service.config import config_from_dict  # noqa: E402
 from service.engine import Engine  # noqa: E402
 from service.events import EventValidator  # noqa: E402

@@ -109,7 +109,7 @@ def river_loop(path: Path) -> None:
 
 
 def replay(feed: Path, config: Path, out: Path, **flags) -> dict:
-    from service.replay import replay_main
+    from service.replay.runner import replay_main
 
     args = Namespace(feeds=[str(feed)], config=[str(config)], out=str(out), to=None, speed=None,
                      token_env="TRIMTAB_TOKEN", batch=1000, jobs=1, no_progress=True, no_report=True,
@@ -145,7 +145,7 @@ def main() -> int:
         exact = json.loads((folder / "exact" / "summary.json").read_text())["runs"][0]
         pq_run = json.loads((folder / "pq" / "summary.json").read_text())["runs"][0]
         from service.config import load_config
-        from service.replay import run_replay, write_outputs
+        from service.replay.runner import run_replay, write_outputs
 
         res = run_replay([nd], load_config(config))
         start = time.perf_counter()

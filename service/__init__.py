@@ -1,12 +1,17 @@
 """trimtab's service side: everything that touches the outside world.
 
-Config (``config``), the event boundary (``events``), the engine shared by the live service and
-replay (``engine``), the stability monitor (``monitor``, ``holdout``, ``drift``), the journal and
-recovery (``journal``, ``recovery``), ingestion (``ingest``, ``feed``), the HTTP app (``app``,
-``handlers``, ``schemas``, ``errors``, ``metrics``, ``labels``), replay and reports (``replay``,
-``feeds``, ``columns``, ``report``, ``replay_client``), the demo (``scenario``, ``demo``) and the
-command line (``cli``). The package face stays empty on purpose: importing one part (a replay
-worker, say) must not load the HTTP stack.
+The folders are the architecture:
+
+* ``http/``: app factory, handlers, schemas, metrics;
+* ``storage/``: journal, checkpoints, recovery, label store;
+* ``feeds/``: file readers, the columnar parse, the Redis stream, replay into a running service;
+* ``monitor/``: held-out window, rules, change detection;
+* ``replay/``: offline replay, report, progress, demo scenario, open-data feeds.
+
+At the top: ``config``, ``errors``, the event boundary (``events``), id hashing (``idhash``), the
+engine shared by the live service and replay (``engine``), ingestion (``ingest``) and the command line
+(``cli``). The package faces stay empty on purpose: importing one part (a replay worker, say) must not
+load the HTTP stack.
 """
 
 __all__: list[str] = []

@@ -58,7 +58,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _check_config(args) -> int:
-    from .config import load_config
+    from service.config import load_config
 
     cfg = load_config(args.config)
     spec = cfg.model_spec()
@@ -76,15 +76,15 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "check-config":
             return _check_config(args)
         if args.command == "serve":
-            from .app import serve_main
+            from service.http.app import serve_main
 
             return serve_main(args)
         if args.command == "replay":
-            from .replay import replay_main
+            from service.replay.runner import replay_main
 
             return replay_main(args)
         if args.command == "demo":
-            from .demo import demo_main
+            from service.replay.demo import demo_main
 
             return demo_main(args)
     except InvalidSettings as exc:

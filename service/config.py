@@ -73,7 +73,7 @@ class AveragingConfig(_Section):
 
 
 class MonitorConfig(_Section):
-    """``[monitor]``: the rules these keys tune are stated in ``service/monitor.py``'s docstring."""
+    """``[monitor]``: the rules these keys tune are stated in ``service/monitor/monitor.py``'s docstring."""
 
     enabled: bool = True
     #: share of learning events held out (by a stable hash of the id), never learned

@@ -25,10 +25,10 @@ import numpy as np
 
 from models import LinearModel, Outcome, Rows
 
-from .config import Config
-from .events import Event, EventValidator
-from .idhash import HOLDOUT_PREFIX
-from .monitor import Monitor
+from service.config import Config
+from service.events import Event, EventValidator
+from service.idhash import HOLDOUT_PREFIX
+from service.monitor.monitor import Monitor
 
 __all__ = ["Applied", "Engine", "PreparedBatch", "holdout_fraction"]
 

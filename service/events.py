@@ -29,7 +29,7 @@ import orjson
 
 from models import InvalidInput
 
-from .config import Config
+from service.config import Config
 
 __all__ = ["Event", "EventValidator", "Rejection", "parse_csv_lines", "parse_ndjson"]
 

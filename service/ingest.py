@@ -34,11 +34,11 @@ from contextlib import suppress
 
 import orjson
 
-from .engine import Engine
-from .errors import JournalUnavailable, NotReady, Overloaded
-from .events import Event
-from .journal import NOTE, ROLLBACK, Journal
-from .recovery import encode_event, newest_good_checkpoint, replay_rows, serving_view
+from service.engine import Engine
+from service.errors import JournalUnavailable, NotReady, Overloaded
+from service.events import Event
+from service.storage.journal import NOTE, ROLLBACK, Journal
+from service.storage.recovery import encode_event, newest_good_checkpoint, replay_rows, serving_view
 
 __all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
 

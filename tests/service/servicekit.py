@@ -18,7 +18,7 @@ from pathlib import Path
 
 import orjson
 
-from service.app import create_app
+from service.http.app import create_app
 from service.config import config_from_dict
 
 __all__ = ["FEATURES", "ServeProcess", "ServerThread", "demo_events", "free_port", "make_config", "toml_text",

@@ -1,0 +1,317 @@
+"""NDJSON chunks parsed by Arrow's JSON reader into columns, with the validator as the fallback.
+
+Parsing each line with orjson and validating its dict costs several microseconds of Python per
+event, more than the learning itself. Arrow's JSON reader parses a whole chunk in C++ into typed
+columns; :mod:`service.feeds.columns` then maps them without per-event Python. Only lines that are
+certainly equivalent take that path; anything else goes, line by line, through
+:meth:`EventValidator.parse_line`, so every rejection has the validator's exact ``where`` and
+reason and every accepted value is what orjson would give:
+
+* a pre-scan (compiled, one pass over the bytes) sends to the validator every line that is over
+  ``service.max_line_bytes``, does not start with ``{`` and end with ``}``, contains ``NaN`` or
+  ``Infinity`` (Arrow accepts those literals, JSON does not), more than 64 ``{``/``[`` (orjson
+  limits nesting) or a run of more than 15 digits (an integer past 2**53 that Arrow would read as a
+  double, where orjson keeps it exact); blank lines are skipped as :func:`service.events.parse_ndjson` skips them;
+* Arrow must give exactly one row per line, with only the known top-level keys and declared
+  features; otherwise the chunk is bisected down to small pieces that go to the validator;
+* :func:`service.feeds.columns.from_arrow` flags the rows whose values it cannot vouch for.
+
+A feed where most lines need the validator (say, string timestamps) switches to the validator for
+a while instead of bisecting every chunk.
+"""
+
+from __future__ import annotations
+
+import re
+
+import numba
+import numpy as np
+
+from models import InvalidInput
+from models.features import categorical_text
+
+from service.feeds.columns import Prepared, from_arrow, holdout_share, take_prepared, to_prepared
+from service.events import Rejection
+from service.idhash import hash_strings
+
+__all__ = ["ArrowNdjson", "available", "prepare_events", "scan_lines"]
+
+_LEAF = 16  # lines below which a failing piece goes to the validator line by line
+_MAX_OPEN = 64
+_BLANK, _PLAIN, _CHECK = 0, 1, 2
+_ROW = re.compile(r"in row (\d+)")
+
+
+def available() -> bool:
+    """Whether pyarrow (the optional ``parquet`` extra) is installed."""
+    try:
+        import pyarrow.json  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+_MAX_DIGITS = 15  # digits a double holds exactly, whatever parser reads them
+
+
+@numba.njit(cache=True, nogil=True)
+def _utf8_len(buf, i, n):
+    """Length of the strict UTF-8 sequence at ``buf[i]`` (a byte >= 0x80), 0 if it is invalid."""
+    c = buf[i]
+    if 0xC2 <= c <= 0xDF:
+        need, lo, hi = 1, 0x80, 0xBF
+    elif c == 0xE0:
+        need, lo, hi = 2, 0xA0, 0xBF
+    elif 0xE1 <= c <= 0xEC or 0xEE <= c <= 0xEF:
+        need, lo, hi = 2, 0x80, 0xBF
+    elif c == 0xED:  # no UTF-16 surrogates
+        need, lo, hi = 2, 0x80, 0x9F
+    elif c == 0xF0:
+        need, lo, hi = 3, 0x90, 0xBF
+    elif 0xF1 <= c <= 0xF3:
+        need, lo, hi = 3, 0x80, 0xBF
+    elif c == 0xF4:
+        need, lo, hi = 3, 0x80, 0x8F
+    else:
+        return 0
+    if i + need > n - 1:
+        return 0
+    if not lo <= buf[i + 1] <= hi:
+        return 0
+    for k in range(2, need + 1):
+        if not 0x80 <= buf[i + k] <= 0xBF:
+            return 0
+    return need + 1
+
+
+@numba.njit(cache=True, nogil=True)
+def _scan(buf, max_line, starts, ends, flags, escaped):
+    n = buf.shape[0]
+    k = 0
+    i = 0
+    while i <= n:
+        lo = i
+        first = -1
+        last = -1
+        opens = 0
+        odd = False
+        blank = True
+        backslash = False
+        digits = 0
+        while i < n and buf[i] != 10:
+            c = buf[i]
+            # a run of over 15 digits may be an integer Arrow reads as a double (orjson keeps it
+            # exact): the validator decides such lines
+            if 48 <= c <= 57:
+                digits += 1
+                if digits > _MAX_DIGITS:
+                    odd = True
+            else:
+                digits = 0
+            if not (c == 32 or c == 9 or c == 13):
+                if first < 0:
+                    first = c
+                last = c
+                if c != 11 and c != 12:
+                    blank = False
+            if c == 123 or c == 91:
+                opens += 1
+            elif c == 92:
+                backslash = True
+            elif c == 78 and i + 2 < n and buf[i + 1] == 97 and buf[i + 2] == 78:  # NaN
+                odd = True
+            elif c == 73 and i + 7 < n and buf[i + 1] == 110 and buf[i + 2] == 102:  # Infinity
+                odd = True
+            elif c >= 128:
+                step = _utf8_len(buf, i, n)
+                if step == 0:
+                    odd = True
+                    step = 1
+                i += step
+                continue
+            i += 1
+        if i == n and lo == n:
+            break
+        starts[k] = lo
+        ends[k] = i
+        escaped[k] = backslash
+        if blank and (first < 0 or first == 11 or first == 12):
+            flags[k] = 0
+        elif odd or first != 123 or last != 125 or opens > _MAX_OPEN or i - lo > max_line:
+            flags[k] = 2
+        else:
+            flags[k] = 1
+        k += 1
+        i += 1
+    return k
+
+
+def scan_lines(buf: bytes, max_line: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Start, end (without the newline), class (0 blank, 1 plain, 2 needs the validator) and
+    whether it holds a backslash, for every line.
+
+    Blank means only spaces, tabs, CR, VT or FF, the bytes :meth:`bytes.strip` removes.
+    """
+    arr = np.frombuffer(buf, dtype=np.uint8)
+    cap = int(np.count_nonzero(arr == 10)) + 1
+    starts = np.empty(cap, np.int64)
+    ends = np.empty(cap, np.int64)
+    flags = np.empty(cap, np.int8)
+    escaped = np.empty(cap, np.bool_)
+    k = _scan(arr, max_line, starts, ends, flags, escaped)
+    return starts[:k], ends[:k], flags[:k], escaped[:k]
+
+
+@numba.njit(cache=True, nogil=True)
+def _gather(buf, starts, ends, sel, out):
+    pos = 0
+    for k in sel:
+        for i in range(starts[k], ends[k]):
+            out[pos] = buf[i]
+            pos += 1
+        out[pos] = 10
+        pos += 1
+    return pos
+
+
+def _lines_bytes(buf: bytes, starts, ends, sel) -> bytes:
+    """The lines ``sel`` of ``buf``, each followed by a newline."""
+    out = np.empty(int(np.sum(ends[sel] - starts[sel])) + len(sel), dtype=np.uint8)
+    _gather(np.frombuffer(buf, dtype=np.uint8), starts, ends, sel, out)
+    return out.tobytes()
+
+
+def _lines_with(buf: bytes, needle: bytes, ends: np.ndarray) -> np.ndarray:
+    """Indices of the lines (given by their ends) that contain ``needle``."""
+    hits = []
+    at = buf.find(needle)
+    while at >= 0:
+        hits.append(at)
+        at = buf.find(needle, at + 1)
+    return np.searchsorted(ends, np.asarray(hits, dtype=np.int64))
+
+
+class ArrowNdjson:
+    """Turns NDJSON chunks into prepared batches for one engine (config).
+
+    Parameters
+    ----------
+    engine
+        An :class:`~service.engine.Engine` of the run's config used only to prepare, never to
+        learn: its validator, its feature mapper and its ``prepare`` for the events the validator
+        handled. One per thread (the mapper's cache is not shared).
+    """
+
+    def __init__(self, engine) -> None:
+        import pyarrow as pa
+        import pyarrow.json as pj
+
+        self._pa, self._pj = pa, pj
+        self.engine = engine
+        self.validator = v = engine.validator
+        fields = [pa.field(name, pa.float64()) for name in sorted(v.numeric)]
+        top = [pa.field("id", pa.string()), pa.field("ts", pa.float64()),
+               pa.field("features", pa.struct(fields))]
+        if not v.binary:
+            top.append(pa.field("target", pa.float64()))
+        # categorical values and binary targets keep their JSON type (string, integer, boolean)
+        self._parse = pj.ParseOptions(explicit_schema=pa.schema(top), unexpected_field_behavior="infer")
+        self._share = holdout_share(engine.config)
+        self._cool = 0
+        self.fallback_lines = 0
+
+    def chunk(self, buf: bytes, first_line: int) -> tuple[Prepared | None, list]:
+        """Prepared events of ``buf`` (whole lines) in line order, and ``[(line, Rejection)]`` in line order."""
+        starts, ends, flags, escaped = scan_lines(buf, self.validator.max_line)
+        lines = first_line + np.arange(len(starts), dtype=np.int64)
+        parts: list[Prepared] = []
+        slow: list[int] = list(np.flatnonzero(flags == _CHECK))
+        plain = np.flatnonzero(flags == _PLAIN)
+        if self._cool > 0:
+            self._cool -= 1
+            slow += list(plain)
+        elif len(plain):
+            whole = len(plain) == len(starts)
+            before = len(slow)
+            self._fast(buf, plain, (starts, ends, escaped), lines, whole, parts, slow)
+            if len(slow) - before > len(plain) // 4:
+                self._cool = 16  # most lines need the validator: stop bisecting for a while
+        self.fallback_lines += len(slow)
+        rejected = self._validate(buf, sorted(slow), starts, ends, lines, parts)
+        if not parts:
+            return None, rejected
+        if len(parts) > 1:
+            where = np.concatenate([p.where for p in parts])
+            return take_prepared(parts, np.argsort(where, kind="stable")), rejected
+        return parts[0], rejected
+
+    def _table(self, data: bytes, expect: int):
+        """The Arrow table of ``data`` (``expect`` lines), or ``None`` and the failing row if known."""
+        pj = self._pj
+        try:
+            table = pj.read_json(self._pa.BufferReader(data), parse_options=self._parse,
+                                 read_options=pj.ReadOptions(use_threads=False, block_size=max(len(data) + 1, 1 << 16)))
+        except (self._pa.ArrowException, UnicodeDecodeError) as exc:
+            hit = _ROW.search(str(exc))
+            return None, int(hit.group(1)) if hit else None
+        return (table, None) if table.num_rows == expect else (None, None)
+
+    def _fast(self, buf, sel, spans, lines, whole, parts, slow) -> None:
+        """Columnar parse of the lines ``sel``; lines it cannot vouch for are appended to ``slow``.
+
+        A parse error that names its row splits the lines around it (that line goes to the
+        validator); one that does not is bisected. Either way every line ends up in a table whose
+        row count matched or with the validator.
+        """
+        starts, ends, escaped = spans
+        todo = [(sel, whole)]
+        while todo:
+            sel, whole = todo.pop()
+            data = buf if whole else _lines_bytes(buf, starts, ends, sel)
+            table, row = self._table(data, len(sel))
+            if table is None:
+                if row is not None and 0 <= row < len(sel):
+                    slow.append(int(sel[row]))
+                    todo += [(part, False) for part in (sel[row + 1:], sel[:row]) if len(part)]
+                elif len(sel) <= _LEAF:
+                    slow.extend(sel.tolist())
+                else:
+                    half = len(sel) // 2
+                    todo += [(sel[half:], False), (sel[:half], False)]
+                continue
+            cols, flagged, ambiguous = from_arrow(table, self.validator, nested=True)
+            if ambiguous:
+                # without a backslash a key's bytes are its UTF-8 text, so its absence is certain
+                maybe = escaped.copy()
+                for name in ambiguous:
+                    maybe[_lines_with(buf, b'"' + name.rsplit(".", 1)[-1].encode() + b'"', ends)] = True
+                flagged |= maybe[sel]
+            keep = np.flatnonzero(~flagged)
+            slow.extend(sel[flagged].tolist())
+            if len(keep):
+                parts.append(to_prepared(cols, keep, lines[sel[keep]], self.engine.model.mapper, self._share))
+
+    def _validate(self, buf, sel, starts, ends, lines, parts) -> list:
+        events, where, rejected = [], [], []
+        v = self.validator
+        for k in sel:
+            n = int(lines[k])
+            try:
+                events.append(v.parse_line(buf[starts[k]:ends[k]], f"line {n}"))
+                where.append(n)
+            except InvalidInput as exc:
+                rejected.append((n, Rejection(exc.where, exc.message)))
+        if events:
+            parts.append(prepare_events(self.engine, events, where))
+        return rejected
+
+
+def prepare_events(engine, events: list, where) -> Prepared:
+    """:class:`Prepared` of validated events through ``Engine.prepare`` itself."""
+    batch = engine.prepare(events)
+    ids = [e.id for e in events]
+    names = engine.model.mapper.categorical
+    cats = dict.fromkeys((name, text) for e in events for name in names
+                         if (text := categorical_text(e.features.get(name))) is not None)
+    return Prepared(batch, hash_strings(ids), np.array([i is not None for i in ids], dtype=np.bool_),
+                    np.asarray(where, dtype=np.int64), list(cats))

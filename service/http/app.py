@@ -1,0 +1,188 @@
+"""The aiohttp app: the app factory, the error middleware, the lifecycle and ``trimtab serve``.
+
+``create_app(config)`` builds the app; its ``cleanup_ctx`` opens the journal and the label store,
+starts recovery (``/readyz`` answers 503 until the newest good checkpoint is loaded and the journal
+after it is re-applied), and on shutdown drains the queue and writes a final checkpoint. The
+handlers are in :mod:`service.http.handlers`; the ingestion loop in :mod:`service.ingest`.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import gc
+import ipaddress
+import logging
+import os
+import signal
+import sys
+import time
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import suppress
+from importlib.metadata import PackageNotFoundError, version
+
+import orjson
+from aiohttp import web
+
+from service.http import handlers as h
+from service.config import Config, load_config
+from service.errors import error_response, from_http_exception
+from service.events import EventValidator
+from service.http.handlers import SERVICE, Service
+from service.ingest import Ingestor, background_thread
+from service.storage.journal import Journal, fingerprint
+from service.storage.labels import LabelStore
+from service.http.metrics import Metrics
+from service.http.schemas import openapi_document
+
+__all__ = ["SERVICE", "Service", "create_app", "serve_main"]
+
+log = logging.getLogger("trimtab.service")
+
+@web.middleware
+async def _errors(request: web.Request, handler) -> web.StreamResponse:
+    """The one place where exceptions become answers (error shape), and requests are counted."""
+    svc = request.app[SERVICE]
+    start = time.perf_counter()
+    try:
+        resp = await handler(request)
+    except web.HTTPException as exc:
+        if exc.status < 400:
+            raise
+        resp = error_response(from_http_exception(exc, request, svc.config.service.max_body_bytes))
+    except Exception as exc:
+        resp = error_response(exc)
+    resource = request.match_info.route.resource
+    svc.metrics.observe(resource.canonical if resource is not None else "unmatched", resp.status,
+                        time.perf_counter() - start)
+    return resp
+
+
+async def _lifecycle(app: web.Application):
+    svc = app[SERVICE]
+    cfg = svc.config.service
+    journal = await asyncio.to_thread(Journal, svc.data_dir, sync=cfg.journal_sync)
+    await asyncio.to_thread(journal.claim, fingerprint(svc.config))
+    svc.labels = await asyncio.to_thread(LabelStore, svc.data_dir, ttl=cfg.remember_ttl_s,
+                                         limit=cfg.remember_limit, sync=cfg.journal_sync)
+    ing = svc.ingestor = Ingestor(svc.config, journal, svc.metrics)
+    m = svc.metrics
+    m.watch("trimtab_queue_events", lambda: ing.queued_events)
+    m.watch("trimtab_applied_seq", lambda: ing.applied_seq)
+    m.watch("trimtab_model_updates", lambda: ing.engine.model.n_updates if ing.engine else 0)
+    m.watch("trimtab_ready", lambda: 1.0 if ing.ready else 0.0)
+    m.watch("trimtab_remembered", lambda: len(svc.labels))
+
+    async def recover():
+        try:
+            await ing.recover()
+        except Exception as exc:
+            svc.recovery_error = f"recovery failed: {exc}"
+            log.exception("recovery failed")
+            return
+        if svc.config.feed is not None:  # a broker stream besides HTTP, once the journal is replayed
+            from service.feeds.redis_stream import StreamFeed
+
+            svc.feed = StreamFeed(svc.config.feed, svc.validator, ing)
+            await svc.feed.run()
+
+    async def sweep():
+        while True:
+            await asyncio.sleep(max(1.0, min(60.0, cfg.remember_ttl_s / 4)))
+            await asyncio.to_thread(svc.labels.sweep)
+
+    tasks = [asyncio.create_task(recover(), name="trimtab-recovery"), asyncio.create_task(sweep())]
+    yield
+    if not tasks[0].done():
+        tasks[0].cancel()
+    for t in tasks[1:]:
+        t.cancel()
+    for t in tasks:
+        with suppress(asyncio.CancelledError):
+            await t
+    await ing.close(final_checkpoint=svc.recovery_error is None)
+    journal.close()
+    svc.labels.close()
+
+
+def _version() -> str:
+    try:
+        return version("trimtab")
+    except PackageNotFoundError:
+        return "0"
+
+
+def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
+    """The service app for ``config``; ``token`` overrides the environment variable (tests)."""
+    if token is None:
+        token = os.environ.get(config.service.token_env) or None
+    svc = Service(config=config, data_dir=data_dir or config.service.data_dir, token=token,
+                  validator=EventValidator(config), metrics=Metrics())
+    svc.openapi = orjson.dumps(openapi_document(config, _version()))
+    app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes)
+    app[SERVICE] = svc
+    app.router.add_post("/v1/score", h.score)
+    app.router.add_post("/v1/events", h.post_events)
+    app.router.add_post("/v1/labels", h.post_labels)
+    app.router.add_get("/v1/model", h.model_card)
+    app.router.add_post("/v1/model/rollback", h.rollback)
+    app.router.add_get("/v1/checkpoints", h.get_checkpoints)
+    app.router.add_post("/v1/checkpoints", h.post_checkpoint)
+    app.router.add_get("/v1/incidents", h.incidents)
+    app.router.add_get("/v1/openapi.json", h.openapi)
+    app.router.add_get("/metrics", h.metrics)
+    app.router.add_get("/healthz", h.healthz)
+    app.router.add_get("/readyz", h.readyz)
+    app.cleanup_ctx.append(_lifecycle)
+    return app
+
+
+def _loopback(host: str) -> bool:
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+async def _serve(app: web.Application, host: str, port: int) -> None:
+    asyncio.get_running_loop().set_default_executor(
+        ThreadPoolExecutor(thread_name_prefix="trimtab-parse", initializer=background_thread))
+    runner = web.AppRunner(app, access_log=None, handle_signals=False)
+    await runner.setup()
+    site = web.TCPSite(runner, host, port, backlog=1024)
+    await site.start()
+    # the objects alive now (modules, the recovered engine) never become garbage: move them out of
+    # the collector's sight, and collect less often, so a full collection does not stall scoring for
+    # 100+ ms while bodies are parsed (common practice for latency-bound CPython services)
+    gc.collect()
+    gc.freeze()
+    gc.set_threshold(20_000, 20, 50)
+    bound = runner.addresses[0]
+    log.info("listening on http://%s:%d (data in %s)", bound[0], bound[1], app[SERVICE].data_dir)
+    stop = asyncio.Event()
+    loop = asyncio.get_running_loop()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        loop.add_signal_handler(sig, stop.set)
+    await stop.wait()
+    log.info("stopping: draining the queue and writing a final checkpoint")
+    await runner.cleanup()
+    log.info("stopped")
+
+
+def serve_main(args) -> int:
+    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D]``."""
+    config = load_config(args.config)
+    upd = {k: v for k, v in (("host", args.host), ("port", args.port), ("data_dir", args.data_dir)) if v is not None}
+    if upd:
+        config = config.model_copy(update={"service": config.service.model_copy(update=upd)})
+    logging.basicConfig(level=logging.INFO, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
+    token = os.environ.get(config.service.token_env) or None
+    if not _loopback(config.service.host) and token is None:
+        log.warning("binding %s (not loopback) without a token: anyone who can reach it can write; set $%s",
+                    config.service.host, config.service.token_env)
+    # the journal thread runs some Python (row binding); a short switch interval keeps it from holding
+    # the GIL for the default 5 ms while a score request waits
+    sys.setswitchinterval(0.0005)
+    asyncio.run(_serve(create_app(config, token=token), config.service.host, config.service.port))
+    return 0

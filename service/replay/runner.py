@@ -1,0 +1,335 @@
+"""Offline replay: recorded feeds through the service's own engine, one run per config.
+
+``trimtab replay FEED... -c CONFIG [-c CONFIG ...] --out DIR`` reads the feeds in order (bounded
+chunks, see :mod:`service.feeds.files`), drops duplicate ids as the live service does, applies every
+chunk with :class:`~service.engine.Engine` (replay is only a different event source) and writes
+``DIR/summary.json``, ``DIR/<name>/model.json`` and ``DIR/report.html`` (ARCHITECTURE section 6).
+
+Each run is deterministic: the same feeds under the same config give the same ``state_digest``,
+whether the run is alone or beside others. Several configs run in parallel processes (forkserver
+start method, ``--jobs``); within a run a reader thread parses the next chunk while the engine
+learns the current one (Arrow's parser and the compiled kernels release the GIL).
+
+Duplicates: the live service applies an id once while its journal still holds it; replay remembers
+every id of the run (:class:`service.idhash.IdSet`, 16-32 bytes per distinct id). The two agree
+whenever a repeated id arrives within the journal's retention, which is what retries do.
+
+``trimtab replay FEED... --to URL`` replays into a running service instead
+(:mod:`service.feeds.into_service`).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import multiprocessing as mp
+import os
+import queue
+import re
+import threading
+import time
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+from models import InvalidSettings
+
+from service.config import Config, load_config
+from service.replay.progress import Progress, progress_mode
+
+__all__ = ["BAD_LINES_KEPT", "reason_key", "replay_main", "run_all", "run_replay", "write_outputs"]
+
+#: Rejected lines (and duplicate lines) kept with their line numbers in each run's summary.
+BAD_LINES_KEPT = 50
+_TRACE_KEYS = ("event", "holdout_raw", "holdout_avg", "progressive_loss", "step", "step_scale", "distance")
+_QUEUE_CHUNKS = 3  # chunks parsed ahead of the engine: bounds memory, keeps both threads busy
+_PREFIX = re.compile(r"^(line|row) \d+\.?")
+
+
+def reason_key(where: str, reason: str) -> str:
+    """The category of a rejection: the field and the reason without values or line numbers.
+
+    >>> reason_key("line 17.features.ambient_c", "not a finite number")
+    'features.ambient_c: not a finite number'
+    >>> reason_key("line 9", "line is 70123 bytes, over the 65536-byte limit")
+    'line is N bytes, over the N-byte limit'
+    """
+    field = _PREFIX.sub("", where)
+    text = re.sub(r"'[^']*'", "'...'", reason)
+    text = re.sub(r"(?<![\w-])-?\d+(\.\d+)?(e[+-]?\d+)?", "N", text)
+    return f"{field}: {text}" if field else text
+
+
+class _Counts:
+    """Shared (events, fraction) per run: a local list, or a slot of an array shared with the parent."""
+
+    def __init__(self, store, slot: int) -> None:
+        self.store, self.slot = store, slot
+
+    def set(self, events: int, fraction: float) -> None:
+        self.store[2 * self.slot] = events
+        self.store[2 * self.slot + 1] = fraction
+
+
+def _reader(feeds, config, columnar: bool, workers: int, out: queue.Queue, stop: threading.Event) -> None:
+    from service.feeds.files import read_feed
+
+    try:
+        for k, feed in enumerate(feeds):
+            for chunk in read_feed(feed, config, columnar=columnar, workers=workers):
+                while not stop.is_set():
+                    try:
+                        out.put((k, chunk), timeout=0.2)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+        out.put(None)
+    except BaseException as exc:  # handed to the engine thread, which re-raises it
+        out.put(exc)
+
+
+def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0, counts: _Counts | None = None,
+               config_path: str | None = None) -> dict:
+    """Replay ``feeds`` (paths, in order) under ``config``; return the run's results.
+
+    ``workers`` threads parse ahead of the engine (0: one per core).
+
+    Returns ``{"summary": RUN, "model": model.json content, "trace": {key: list}, "incidents": [...]}``.
+    """
+    from service.feeds.columns import take_prepared
+    from service.engine import Engine
+    from service.idhash import IdSet
+
+    engine = Engine(config, trace_limit=None)
+    bucket = engine.model.mapper.bucket
+    feeds = [str(f) for f in feeds]
+    seen = IdSet()
+    trace = {k: [] for k in _TRACE_KEYS + ("serving", "action")}
+    by_reason: dict[str, int] = {}
+    bad, dups = [], []
+    n_rejected = n_dups = 0
+    chunks: queue.Queue = queue.Queue(maxsize=_QUEUE_CHUNKS)
+    stop = threading.Event()
+    start = time.perf_counter()
+    workers = workers or os.cpu_count() or 1
+    thread = threading.Thread(target=_reader, args=(feeds, config, columnar, workers, chunks, stop), daemon=True,
+                              name="trimtab-replay-reader")
+    thread.start()
+    try:
+        while True:
+            item = chunks.get()
+            if item is None:
+                break
+            if isinstance(item, BaseException):
+                raise item
+            k, chunk = item
+            for line, rej in chunk.rejected:
+                key = reason_key(rej.where, rej.reason)
+                by_reason[key] = by_reason.get(key, 0) + 1
+                if len(bad) < BAD_LINES_KEPT:
+                    bad.append({"feed": feeds[k], "line": line, "where": rej.where, "reason": rej.reason})
+            n_rejected += len(chunk.rejected)
+            p = chunk.prepared
+            ts = None
+            if p is not None:
+                for name, text in p.categories:
+                    bucket(name, text)  # remembered for model.json; the mapping itself is fixed
+                keep = seen.add(p.hashes, p.has_id)
+                if not keep.all():
+                    for line in p.where[~keep][:max(BAD_LINES_KEPT - len(dups), 0)]:
+                        dups.append({"feed": feeds[k], "line": int(line)})
+                    n_dups += int(np.count_nonzero(~keep))
+                    p = take_prepared([p], np.flatnonzero(keep))
+                if len(p.batch):
+                    engine.apply(p.batch)
+                    last = p.batch.ts[-1]
+                    ts = None if math.isnan(last) else float(last)
+                _drain(engine, trace)
+            if chunk.rejected:
+                engine.note_rejected(len(chunk.rejected), chunk.lines, ts)
+            if counts is not None:
+                counts.set(engine.events, (k + chunk.progress) / len(feeds))
+    finally:
+        stop.set()
+        thread.join()
+    seconds = time.perf_counter() - start
+    summary = _summary(engine, config, feeds, config_path, seconds)
+    summary.update(rejected=n_rejected, duplicates=n_dups, rejected_by_reason=dict(sorted(by_reason.items())),
+                   bad_lines=bad, duplicate_lines=dups)
+    model = {"name": config.name, "state_digest": summary["state_digest"], "serving": engine.serving,
+             "raw": engine.model.coefficients("raw"), "averaged": engine.model.coefficients("averaged")}
+    return {"summary": summary, "model": model, "trace": trace, "incidents": _clean(engine.incidents),
+            "loss": config.model.loss}
+
+
+def _drain(engine, trace: dict) -> None:
+    """Move the engine's new check records into compact columns (the deque would grow with the feed)."""
+    while engine.trace:
+        rec = engine.trace.popleft()
+        for key in _TRACE_KEYS:
+            v = rec.get(key)
+            trace[key].append(float("nan") if v is None else float(v))
+        trace["serving"].append(rec.get("serving"))
+        trace["action"].append(rec.get("action"))
+
+
+def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict:
+    from service.replay.report import verdict
+
+    incidents = engine.incidents
+    run = {
+        "name": config.name, "config": config_path, "feed": feeds[0] if len(feeds) == 1 else feeds,
+        "events": engine.events, "learned": engine.learned, "held_out": engine.held_out,
+        "scored_only": engine.scored, "refused": engine.refused, "rejected": 0, "duplicates": 0,
+        "progressive_loss": engine.progressive_loss, "holdout_loss": engine.holdout_losses(),
+        "serving": engine.serving,
+        "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
+        "rollbacks": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "rollback"],
+        "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],
+        "rejected_bursts": [{"event": i["event"], "reason": i["reason"]} for i in incidents
+                            if i["kind"] == "rejected_burst"],
+        "certificate": engine.model.certificate(), "state_digest": engine.state_digest,
+        "updates": engine.model.n_updates, "seconds": seconds,
+        "events_per_second": engine.events / seconds if seconds > 0 else None,
+    }
+    run["verdict"] = verdict(run)
+    return _clean(run)
+
+
+def _clean(obj):
+    """Plain JSON data: NaN and infinities become null, numpy scalars become Python numbers."""
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, (np.floating, float)):
+        x = float(obj)
+        return x if math.isfinite(x) else None
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+# --------------------------------------------------------------------------- several runs
+_SHARED = None
+
+
+def _init_worker(shared) -> None:
+    global _SHARED
+    _SHARED = shared
+
+
+def _lean_arrow() -> None:
+    """Give Arrow the system allocator in a replay process: its default pool keeps ~40 MB of freed
+    chunk buffers, and a replay's memory should stay flat however long the feed."""
+    try:
+        import pyarrow as pa
+    except ImportError:
+        return
+    pa.set_memory_pool(pa.system_memory_pool())
+
+
+def _worker(feeds, config: Config, slot: int, columnar: bool, workers: int, config_path: str) -> dict:
+    _lean_arrow()
+    return run_replay(feeds, config, columnar=columnar, workers=workers, counts=_Counts(_SHARED, slot),
+                      config_path=config_path)
+
+
+def _context():
+    method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
+    ctx = mp.get_context(method)
+    if method == "forkserver":
+        ctx.set_forkserver_preload(["service.replay.runner", "service.feeds.files", "service.engine"])
+    return ctx
+
+
+def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: str,
+            columnar: bool = True) -> list[dict]:
+    """Run every config over the feeds (in parallel processes when ``jobs > 1``); results in config order."""
+    names = [c.name for c in configs]
+    if jobs <= 1 or len(configs) == 1:
+        store = [0.0] * (2 * len(configs))
+        results = []
+        with Progress(names, lambda: [(store[2 * i], store[2 * i + 1]) for i in range(len(names))], mode):
+            for i, (cfg, path) in enumerate(zip(configs, paths)):
+                results.append(run_replay(feeds, cfg, columnar=columnar, counts=_Counts(store, i), config_path=path))
+        return results
+    ctx = _context()
+    shared = ctx.Array("d", 2 * len(configs), lock=False)
+    state = lambda: [(shared[2 * i], shared[2 * i + 1]) for i in range(len(names))]  # noqa: E731
+    workers = max(1, (os.cpu_count() or 1) // jobs)
+    with Progress(names, state, mode), ProcessPoolExecutor(max_workers=jobs, mp_context=ctx,
+                                                           initializer=_init_worker, initargs=(shared,)) as pool:
+        futures = [pool.submit(_worker, list(feeds), cfg, i, columnar, workers, path)
+                   for i, (cfg, path) in enumerate(zip(configs, paths))]
+        return [f.result() for f in futures]
+
+
+def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool = True, notes=None) -> Path:
+    """Write ``summary.json``, ``<name>/model.json`` and (unless ``report=False``) ``report.html``."""
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    feeds = [str(f) for f in feeds]
+    summary = {"feed": feeds[0] if len(feeds) == 1 else feeds, "feeds": feeds,
+               "runs": [r["summary"] for r in results]}
+    for r in results:
+        folder = out / r["summary"]["name"]
+        folder.mkdir(exist_ok=True)
+        (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
+    (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
+    if report:
+        from service.replay.report import write_report
+
+        # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
+        # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
+        with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
+            return pool.submit(write_report, out, summary, results, notes).result()
+    return out / "summary.json"
+
+
+def _configs(paths: list[str]) -> list[Config]:
+    configs = [load_config(p) for p in paths]
+    seen: dict[str, str] = {}
+    for path, cfg in zip(paths, configs):
+        if cfg.name in seen:
+            raise InvalidSettings(f"two configs share the name {cfg.name!r} ({seen[cfg.name]}); every run needs "
+                                  "its own name (it is the run's folder)", where=f"{path}: name")
+        seen[cfg.name] = path
+    return configs
+
+
+def replay_main(args) -> int:
+    """``trimtab replay``: offline runs (``-c ... --out``) or a live replay (``--to URL``)."""
+    from service.feeds.files import detect_format
+
+    for feed in args.feeds:
+        detect_format(feed)
+    if args.to:
+        from service.feeds.into_service import client_main
+
+        return client_main(args)
+    if not args.config:
+        raise InvalidSettings("give -c CONFIG (one per run) for an offline replay, or --to URL", where="-c")
+    if not args.out:
+        raise InvalidSettings("an offline replay needs --out DIR for its summary and report", where="--out")
+    configs = _configs(args.config)
+    jobs = args.jobs if args.jobs is not None else min(len(configs), os.cpu_count() or 1)
+    if jobs < 1:
+        raise InvalidSettings("must be at least 1", where="--jobs")
+    mode = progress_mode(args.no_progress)
+    _lean_arrow()
+    results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
+                      columnar=not getattr(args, "exact_parse", False))
+    written = write_outputs(args.out, args.feeds, results, report=not getattr(args, "no_report", False))
+    for r in results:
+        s = r["summary"]
+        print(f"{s['name']}: {s['events']:,} events, {s['rejected']:,} rejected, "
+              f"{s['events_per_second'] or 0:,.0f} events/s, digest {s['state_digest'][:16]}")
+        print(f"  {s['verdict']}")
+    print(f"wrote {written}")
+    return 0
