@@ -84,6 +84,13 @@ class ModelSpec:
                                   "use constraint 'ball' or 'box'", where="steps.rule")
         if self.rule == "strongly_convex" and self.l2 <= 0:
             raise InvalidSettings("rule 'strongly_convex' needs l2 > 0 (alpha = l2)", where="steps.rule")
+        if self.rule == "strongly_convex" and self.constraint == "none":
+            # its steps 2/(alpha (t+1)) start at 1/alpha: with a small l2 the first steps are huge, and
+            # only the projection onto a bounded set keeps them from throwing the iterate to infinity
+            # (the rate 2G^2/(alpha (T+1)) of Lacoste-Julien, Schmidt and Bach, 2012, assumes both)
+            raise InvalidSettings(f"rule 'strongly_convex' needs a bounded constraint set ('ball' or 'box'): its "
+                                  f"first steps are 1/alpha = 1/l2 = {1 / self.l2:g} long, and without a "
+                                  "projection they can diverge", where="steps.rule")
         averaging_code(self.averaging)
         _positive(self.halflife, "averaging.halflife")
         _choice(self.kernel, ("dense", "lazy"), "model.kernel")

@@ -20,11 +20,28 @@ __all__ = ["Config", "ConfigError", "load_config", "parse_config"]
 
 
 class ConfigError(InvalidSettings):
-    """The config file cannot be read or a key has an invalid value."""
+    """The config file cannot be read or keys have invalid values.
+
+    ``where`` and ``message`` describe the first problem; ``problems`` lists every one found, each a
+    ``(where, message)`` pair, and ``str()`` shows them all, one per line.
+    """
+
+    def __init__(self, message: str, *, where: str = "", problems: list[tuple[str, str]] | None = None) -> None:
+        super().__init__(message, where=where)
+        self.problems = problems or [(where, message)]
+
+    def __str__(self) -> str:
+        return "\n".join(f"{w}: {m}" if w else m for w, m in self.problems)
 
 
 class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # strict: a string is never read as a number, nor a number as a boolean (``window = "500"`` and
+    # ``base = true`` are errors); an integer is still a valid float (``radius = 20``)
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+
+
+#: names an event uses for itself (docs/events.md); a feature may not take one
+RESERVED_NAMES = frozenset(("id", "ts", "target", "features"))
 
 
 class FeaturesConfig(_Section):
@@ -35,6 +52,17 @@ class FeaturesConfig(_Section):
     warmup_events: int = Field(500, ge=2)
     #: what the boundary does with a feature that is not declared
     unknown: Literal["reject", "ignore"] = "reject"
+
+    @field_validator("numeric", "categorical")
+    @classmethod
+    def _names(cls, names: list[str]) -> list[str]:
+        for name in names:
+            if name in RESERVED_NAMES:
+                raise ValueError(f"{name!r} is a reserved name (an event's own {', '.join(sorted(RESERVED_NAMES))}); "
+                                 "rename the feature")
+            if not name or not name.isprintable() or len(name.encode()) > 256:
+                raise ValueError(f"feature name {name!r} must be 1-256 bytes of printable text")
+        return names
 
 
 class ModelConfig(_Section):
@@ -197,6 +225,9 @@ class Config(_Section):
 
     @model_validator(mode="after")
     def _learnable(self):
+        if not (self.features.numeric or self.features.categorical):
+            raise InvalidSettings("no features declared: list them in [features] numeric = [...] and/or "
+                                  "categorical = [...]", where="features")
         self.model_spec()  # raises InvalidSettings naming the key
         return self
 
@@ -225,22 +256,42 @@ def parse_config(text: str, source: str = "<config>") -> Config:
 
 
 def config_from_dict(data: dict, source: str = "<config>") -> Config:
+    """Validate parsed TOML; every problem found is reported at once (:class:`ConfigError`)."""
     try:
         return Config.model_validate(data)
     except ValidationError as exc:
-        err = exc.errors()[0]
-        where = ".".join(str(p) for p in err["loc"]) or source
-        msg = err["msg"]
-        if err["type"] == "extra_forbidden":
-            msg = "unknown key"
-        elif err["type"] == "literal_error":
-            msg = f"invalid value {err.get('input')!r}; " + msg.replace("Input should be", "valid values are")
-        if "ctx" in err and isinstance(err["ctx"].get("error"), InvalidSettings):
-            inner = err["ctx"]["error"]
-            raise ConfigError(inner.message, where=inner.where) from None
-        raise ConfigError(msg, where=where) from None
+        problems: dict[str, str] = {}
+        for err in exc.errors():
+            where, msg = _describe(err, source)
+            if where in problems:  # a union (grad_bound) reports each of its members: one line is enough
+                continue
+            problems[where] = msg
+        pairs = list(problems.items())
+        raise ConfigError(pairs[0][1], where=pairs[0][0], problems=pairs) from None
     except InvalidSettings as exc:
         raise ConfigError(exc.message, where=exc.where) from None
+
+
+def _describe(err: dict, source: str) -> tuple[str, str]:
+    """One pydantic error as (dotted key, message naming the valid values)."""
+    if "ctx" in err and isinstance(err["ctx"].get("error"), InvalidSettings):
+        inner = err["ctx"]["error"]
+        return inner.where, inner.message
+    loc = [str(p) for p in err["loc"] if not (p == "float" or str(p).startswith("literal["))]
+    where = ".".join(loc) or source
+    kind, got = err["type"], err.get("input")
+    if kind == "extra_forbidden":
+        return where, "unknown key"
+    if where == "steps.grad_bound":
+        return where, f'must be a number > 0 or "auto", got {got!r}'
+    if kind == "literal_error":
+        return where, f"invalid value {got!r}; " + err["msg"].replace("Input should be", "valid values are")
+    if kind.endswith("_type") and not isinstance(got, dict):
+        wanted = {"int_type": "an integer", "float_type": "a number", "bool_type": "true or false",
+                  "string_type": "a string", "list_type": "a list"}.get(kind, err["msg"])
+        return where, f"expected {wanted}, got {type(got).__name__} {got!r}"
+    msg = err["msg"].removeprefix("Value error, ")
+    return where, msg
 
 
 def load_config(path: str | Path) -> Config:

@@ -62,8 +62,8 @@ def _spec(loss, constraint, rule, averaging, kernel, l2, **extra):
 
 def _agreement_cases():
     for loss, cons, rule, avg in itertools.product(LOSSES, CONSTRAINTS, RULES, AVERAGINGS):
-        if cons == "none" and rule in ("horizon", "anytime"):
-            continue  # refused by ModelSpec: these rules need the radius of a bounded set
+        if cons == "none" and rule in ("horizon", "anytime", "strongly_convex"):
+            continue  # refused by ModelSpec: these rules need a bounded set (its radius, or a projection)
         for l2 in ((0.5,) if rule == "strongly_convex" else (0.0, 0.01)):
             yield pytest.param(loss, cons, rule, avg, l2, id=f"{loss}-{cons}-{rule}-l2={l2}-{avg}")
 
