@@ -112,3 +112,71 @@ async def test_client_waits_for_retry_after_and_resends_the_same_body(aiohttp_se
     assert out["acks"]["retries"] == 2 and out["acks"]["accepted"] == 25 and out["acks"]["requests"] == 3
     assert b"".join(bodies) == feed.read_bytes()
     assert out["state_digest"] == "d" * 64
+
+
+@pytest.mark.parametrize("fmt", ["csv", "parquet"])
+async def test_live_replay_of_csv_and_parquet_matches_the_offline_digest(tmp_path, fmt):
+    """``--to`` reads every format an offline replay reads: the same CSV or Parquet feed, posted to a
+    real ``trimtab serve``, ends at the offline replay's state_digest (the service's numeric columns
+    come from its own model card, as the offline CSV reader takes them from the config)."""
+    from service.replay.scenario import write_csv
+
+    source = tmp_path / "feed.csv"
+    write_csv(source, 6_000, seed=23)
+    feed = source
+    if fmt == "parquet":
+        import pyarrow.csv as pacsv
+        import pyarrow.parquet as pq
+
+        feed = tmp_path / "feed.parquet"
+        pq.write_table(pacsv.read_csv(source), feed)
+    port = free_port()
+    proc = _serve(GUARDED, tmp_path / "data", port)
+    try:
+        _wait_ready(proc, port)
+        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=500)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=60)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        proc.stdout.close()
+    offline = run_replay([feed], load_config(GUARDED))["summary"]
+    assert live["acks"]["accepted"] == offline["events"] > 5_000
+    assert live["acks"]["rejected"] + live["acks"]["skipped_malformed"] == offline["rejected"]
+    assert live["state_digest"] == offline["state_digest"]
+
+
+async def test_speed_paces_by_event_timestamps(aiohttp_server, tmp_path):
+    """``--speed X`` sends each event when ``(ts - first ts) / X`` seconds have passed, never earlier,
+    and events due at the same moment share a body."""
+    arrivals: list[tuple[float, list[float]]] = []
+
+    async def events(request: web.Request) -> web.Response:
+        body = await request.read()
+        stamps = [orjson.loads(line)["ts"] for line in body.splitlines() if line]
+        arrivals.append((time.monotonic(), stamps))
+        return web.json_response({"accepted": len(stamps), "duplicates": [], "rejected": [], "seq": [1, 1]})
+
+    async def model(request: web.Request) -> web.Response:
+        return web.json_response({"state_digest": "d" * 64, "serving": "averaged", "config": {}})
+
+    app = web.Application()
+    app.router.add_post("/v1/events", events)
+    app.router.add_get("/v1/model", model)
+    server = await aiohttp_server(app)
+    t0 = 1_772_439_300.0
+    stamps = [t0, t0, t0, t0 + 0.8, t0 + 0.8, t0 + 1.6, t0 + 2.4]
+    feed = tmp_path / "paced.ndjson"
+    feed.write_bytes(b"".join(orjson.dumps({"id": f"e{k}", "ts": ts, "features": {}, "target": 1.0}) + b"\n"
+                              for k, ts in enumerate(stamps)))
+    start = time.monotonic()
+    out = await replay_live([feed], str(server.make_url("/")), speed=2.0, batch=1000)
+    assert out["acks"]["accepted"] == len(stamps)
+    assert [group for _, group in arrivals] == [stamps[:3], stamps[3:5], stamps[5:6], stamps[6:]]
+    for arrived, group in arrivals:
+        due = (group[0] - t0) / 2.0
+        assert arrived - start >= due - 0.01, (arrived - start, due)
+    assert arrivals[-1][0] - start < 1.2 + 2.0  # the last event is due at 1.2 s; generous for a loaded machine
