@@ -22,7 +22,7 @@ from service.config import config_from_dict
 from service.engine import Engine
 from service.events import EventValidator
 
-from tests.service.servicekit import FEATURES, demo_events, free_port, wait_ready
+from tests.service.servicekit import AUTH, FEATURES, TOKEN, demo_events, free_port, wait_ready
 
 redis = pytest.importorskip("redis")
 
@@ -91,7 +91,7 @@ async def test_stream_entries_learned_once_and_acknowledged(aiohttp_client, tmp_
     await r.xadd("coldchain.events", {"event": orjson.dumps(events[10])})
     await r.xadd("coldchain.events", {"event": b'{"id": "bad-1", "features": {"ambient_c": "warm"}, "target": 1}'})
 
-    client = await aiohttp_client(create_app(cfg, data_dir=str(tmp_path / "data")))
+    client = await aiohttp_client(create_app(cfg, data_dir=str(tmp_path / "data"), token=TOKEN), headers=AUTH)
     await wait_ready(client)
 
     async def learned_all():
