@@ -12,7 +12,8 @@ or ``events[3].target``) and whose message says why. The rules:
 * ``ts`` is a finite number or an RFC 3339 string;
 * ``features`` is an object; a declared numeric feature is a finite number, a boolean or null; a
   declared categorical feature is a string of at most ``features.max_value_bytes`` bytes of UTF-8,
-  an integer in the signed 64-bit range (an integral float counts as its integer), a boolean or
+  an integer in the signed 64-bit range (an integral float counts as its integer; orjson reads a
+  JSON integer past 64 bits as a double, so the range is checked on that double), a boolean or
   null; an undeclared feature is rejected or dropped (``features.unknown``);
 * ``target`` is a finite number (regression) or 0/1/true/false (binary);
 * a line is at most ``service.max_line_bytes`` bytes, valid UTF-8 (the rejection gives the byte

@@ -129,7 +129,7 @@ def resolve_token(config: Config, token: str | None = None) -> str | None:
         raise ConfigError(f"the token variable ${cfg.token_env} (service.token_env) is not set; {escape}",
                           where="service.auth")
     if not token.strip() or token != token.strip():
-        what = "empty" if not token.strip() else "padded with spaces"
+        what = "empty" if not token.strip() else "padded with whitespace"
         raise ConfigError(f"the token in ${cfg.token_env} (service.token_env) is {what}; {escape}",
                           where="service.auth")
     return token

@@ -17,6 +17,7 @@ nothing of it.
 from __future__ import annotations
 
 import http.client
+import json
 import threading
 
 import orjson
@@ -220,3 +221,38 @@ def test_labels_and_remember_enforce_the_grammar(served):
     got = {r["where"]: r["reason"] for r in body["rejected"]}
     assert set(got) == {"labels[3].id", "labels[4].id"}
     assert "control character U+0007" in got["labels[3].id"] and "300 bytes" in got["labels[4].id"]
+
+
+def test_long_categorical_values_and_integers_past_64_bits_are_per_item(served):
+    """Categorical values over ``features.max_value_bytes`` (256 bytes of UTF-8) and integers outside
+    the signed 64-bit range (as integers or integral floats) are rejected per item naming the
+    feature; an integer past 64 bits as a *numeric* value is a double (RFC 8259 section 6 leaves
+    number precision to the implementation; the service reads it as IEEE 754 binary64), learned."""
+    server, cfg, _ = served
+    tmpl = demo_events(120, tag="val-")
+    cat_bad = {"x" * 257: "257 bytes", "\u00e9" * 129: "258 bytes", 2**63: "outside the signed 64-bit range",
+               -(10**20): "outside the signed 64-bit range", 10**30: "outside the signed 64-bit range",
+               2**64: "outside the signed 64-bit range", 1e300: "outside the signed 64-bit range"}
+    items, bad = [], {}
+    for k, (value, reason) in enumerate(cat_bad.items()):
+        items += tmpl[3 * k:3 * k + 3]
+        bad[len(items)] = reason
+        items.append({**tmpl[0], "id": f"val-bad-{k}", "features": {**tmpl[0]["features"], "van": value}})
+    edge = [{**tmpl[0], "id": f"val-edge-{k}", "features": {**tmpl[0]["features"], **feats}}
+            for k, feats in enumerate([{"van": "v" * 256}, {"van": "\u00e9" * 128}, {"van": 2**63 - 1},
+                                       {"van": -(2**63)}, {"ambient_c": 10**30}, {"ambient_c": 2**64 + 5}])]
+    items += tmpl[3 * len(cat_bad):] + edge
+    goods = [e for i, e in enumerate(items) if i not in bad]
+    body = b"[" + b",".join(json.dumps(e).encode() for e in items) + b"]"  # integers of any size, as sent
+    status, out = _call(server.url, "POST", "/v1/events", body)
+    assert status == 200, out
+    got = {r["where"]: r["reason"] for r in out["rejected"]}
+    assert set(got) == {f"events[{i}].features.van" for i in bad}, got
+    for i, part in bad.items():
+        assert part in got[f"events[{i}].features.van"], got[f"events[{i}].features.van"]
+    assert out["accepted"] == len(goods)
+    # the same lines as NDJSON: the same per-line answers
+    lines = b"\n".join(json.dumps({**e, "id": "nd-" + e["id"]}).encode() for e in items)
+    status, nd = _call(server.url, "POST", "/v1/events", lines, "application/x-ndjson")
+    assert status == 200 and nd["accepted"] == len(goods)
+    assert {r["where"] for r in nd["rejected"]} == {f"line {i + 1}.features.van" for i in bad}
