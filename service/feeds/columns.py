@@ -196,7 +196,8 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
 
     numeric = {k: _floats(feats[k], slow, allow_bool=True) if k in feats else np.full(n, np.nan)
                for k in validator.numeric}
-    categorical = {k: _categorical(feats[k], slow, validator.max_value) if k in feats else (np.full(n, -1, np.int64), [])
+    absent = (np.full(n, -1, np.int64), [])
+    categorical = {k: _categorical(feats[k], slow, validator.max_value) if k in feats else absent
                    for k in validator.categorical}
     return Columns(n, ids, ts, target, numeric, categorical), slow, ambiguous
 
