@@ -195,7 +195,7 @@ def _value_kinds(buf, starts, ends, sel, key, out):
     for j in range(sel.shape[0]):
         hi = ends[sel[j]]
         i = starts[sel[j]]
-        kind = 0
+        kind = _NONE
         while i + m <= hi:
             if buf[i] == key[0]:
                 t = 1
@@ -211,12 +211,12 @@ def _value_kinds(buf, starts, ends, sel, key, out):
                             at += 1
                         if at < hi:
                             c = buf[at]
-                            if c == 34:
-                                kind = 1
-                            elif c == 45 or 48 <= c <= 57:
-                                kind = 2
-                            elif c == 116 or c == 102:
-                                kind = 3
+                            if c == 34:  # '"'
+                                kind = _STRING
+                            elif c == 45 or 48 <= c <= 57:  # '-' or a digit
+                                kind = _NUMBER
+                            elif c == 116 or c == 102:  # 't' or 'f'
+                                kind = _BOOLEAN
                         break
             i += 1
         out[j] = kind
