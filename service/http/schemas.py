@@ -238,6 +238,8 @@ def openapi_document(config, version: str) -> dict:
         "/readyz": {"get": dict(plain, summary="readiness: 200 once recovery has finished")},
         "/v1/openapi.json": {"get": dict(plain, summary="this document")},
     }
+    if not reads:  # the token is optional for scoring, and required with "remember": true
+        paths["/v1/score"]["post"]["security"] = [{}, *_BEARER]
     return {"openapi": "3.1.0", "info": {"title": f"trimtab service ({config.name})", "version": version},
             "paths": paths, "components": {"schemas": schemas, "securitySchemes": {
                 "bearer": {"type": "http", "scheme": "bearer"}}}}
