@@ -102,6 +102,8 @@ def check_id(ident, where: str) -> str:
         raise InvalidInput(f"expected a string, got {_kind(ident)} ({_ID_RULE})", where=where)
     if not ident:
         raise InvalidInput(f"empty ({_ID_RULE})", where=where)
+    if ident.isascii() and len(ident) <= MAX_ID_BYTES and ident.isprintable():
+        return ident  # the common case: printable ASCII is ASCII without C0 and DEL (twice as fast as the regex)
     if len(ident) > MAX_ID_BYTES or not ident.isascii():
         size = _utf8_size(ident, where)
         if size > MAX_ID_BYTES:
