@@ -39,6 +39,7 @@ import orjson
 ROOT = Path(__file__).resolve().parents[1]
 FEED = ROOT / "replay_data" / "coldchain-demo.ndjson.gz"
 CONFIG = ROOT / "replay_data" / "configs" / "guarded.toml"
+TOKEN = "benchmark-token-5d2c"  # writes need a token (service.auth = "token", the default)
 SCORE_BODY = orjson.dumps({"features": {"ambient_c": 6.5, "compressor_duty": 0.4, "door_open_s": 30,
                                         "load_kg": 420, "van": "V07", "route": "urban"}})
 
@@ -101,8 +102,7 @@ def start_bare() -> tuple[subprocess.Popen, str]:
 
 
 def start_service(data_dir: str) -> tuple[subprocess.Popen, str]:
-    env = dict(os.environ)
-    env.pop("TRIMTAB_TOKEN", None)
+    env = dict(os.environ, TRIMTAB_TOKEN=TOKEN)  # the config reads its token from $TRIMTAB_TOKEN
     proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(CONFIG), "--port", "0",
                              "--data-dir", data_dir], stderr=subprocess.PIPE, env=env, cwd=ROOT)
     url = None
@@ -182,7 +182,7 @@ async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int,
     import aiohttp
 
     data = bodies(n_bodies, tag=tag)
-    headers = {"Content-Type": "application/x-ndjson"}
+    headers = {"Content-Type": "application/x-ndjson", "Authorization": f"Bearer {TOKEN}"}
     accepted = 0
     nxt = 0
     async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=120)) as s:

@@ -52,6 +52,9 @@ class FeaturesConfig(_Section):
     warmup_events: int = Field(500, ge=2)
     #: what the boundary does with a feature that is not declared
     unknown: Literal["reject", "ignore"] = "reject"
+    #: longest categorical string value, in bytes of UTF-8; a longer one is rejected with the
+    #: feature's name (the value is hashed, so a long one carries no more signal, only cost)
+    max_value_bytes: int = Field(256, ge=1, le=65_536)
 
     @field_validator("numeric", "categorical")
     @classmethod
@@ -168,6 +171,11 @@ class ServiceConfig(_Section):
     data_dir: str = "trimtab-data"
     checkpoint_every: int = Field(10_000, ge=1)
     checkpoints_kept: int = Field(3, ge=1)
+    #: "token": every route that changes state (events, labels, remember on score, operator actions)
+    #: needs ``Authorization: Bearer <token>`` with the token from the variable named by ``token_env``,
+    #: and ``trimtab serve`` refuses to start (exit 2) while that variable is unset or empty;
+    #: "none": writes are open to anyone who reaches the port (a warning at start and on the model card)
+    auth: Literal["token", "none"] = "token"
     token_env: str = "TRIMTAB_TOKEN"
     #: whether reads (score, model card, metrics) also need the token when one is configured
     token_for_reads: bool = False

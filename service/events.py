@@ -7,14 +7,22 @@ event raises :class:`models.InvalidInput` whose ``where`` says where (``line 17.
 or ``events[3].target``) and whose message says why. The rules:
 
 * the event is a JSON object with only the keys ``id``, ``ts``, ``features``, ``target``;
-* ``id`` is a non-empty string of at most 200 characters, required when ``target`` is present;
+* ``id`` is a string of 1 to 256 bytes of UTF-8 without control characters (:func:`check_id`),
+  required when ``target`` is present;
 * ``ts`` is a finite number or an RFC 3339 string;
 * ``features`` is an object; a declared numeric feature is a finite number, a boolean or null; a
-  declared categorical feature is a string, integer, boolean or null; an undeclared feature is
-  rejected or dropped (``features.unknown``);
+  declared categorical feature is a string of at most ``features.max_value_bytes`` bytes of UTF-8,
+  an integer in the signed 64-bit range (an integral float counts as its integer; orjson reads a
+  JSON integer past 64 bits as a double, so the range is checked on that double), a boolean or
+  null; an undeclared feature is rejected or dropped (``features.unknown``);
 * ``target`` is a finite number (regression) or 0/1/true/false (binary);
-* a line is at most ``service.max_line_bytes`` bytes, valid UTF-8 and valid JSON (NaN and
-  Infinity literals are not JSON).
+* a line is at most ``service.max_line_bytes`` bytes, valid UTF-8 (the rejection gives the byte
+  offset of the first bad byte) and valid JSON (NaN and Infinity literals are not JSON).
+
+The id grammar excludes every character of Unicode's general category Cc: the 33 of C0 and DEL
+(U+0000-U+001F, U+007F) and the 32 of C1 (U+0080-U+009F). C1 characters are invisible, have no
+use in an identifier, and mostly appear when Latin-1 or Windows-1252 bytes were decoded wrongly;
+refusing them keeps ids printable in logs, answers and the journal.
 """
 
 from __future__ import annotations
@@ -22,6 +30,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 from datetime import datetime
 from typing import NamedTuple
 
@@ -31,10 +40,17 @@ from models import InvalidInput
 
 from service.config import Config
 
-__all__ = ["Event", "EventValidator", "Rejection", "parse_csv_lines", "parse_ndjson"]
+__all__ = ["CONTROL_CHARS", "INT64_MAX", "INT64_MIN", "MAX_ID_BYTES", "Event", "EventValidator", "Rejection",
+           "check_id", "parse_csv_lines", "parse_ndjson"]
 
 _TOP_KEYS = frozenset(("id", "ts", "features", "target"))
-_MAX_ID = 200
+MAX_ID_BYTES = 256
+#: the characters an id may not hold: Unicode category Cc (C0, DEL and C1), as a regex class
+CONTROL_CHARS = r"[\x00-\x1f\x7f-\x9f]"
+_CONTROL = re.compile(CONTROL_CHARS)
+_ID_RULE = f"an id is 1 to {MAX_ID_BYTES} bytes of UTF-8 without control characters"
+#: integer categorical values must fit a signed 64-bit integer (the journal stores them as JSON integers)
+INT64_MIN, INT64_MAX = -(1 << 63), (1 << 63) - 1
 
 
 class Event(NamedTuple):
@@ -70,6 +86,43 @@ def _kind(v) -> str:
     return type(v).__name__
 
 
+def _utf8_size(text: str, where: str) -> int:
+    """Bytes of ``text`` in UTF-8; a lone surrogate (not encodable) is an error saying where."""
+    if text.isascii():
+        return len(text)
+    try:
+        return len(text.encode("utf-8"))
+    except UnicodeEncodeError as exc:
+        raise InvalidInput(f"not valid UTF-8: a lone surrogate at character {exc.start}", where=where) from None
+
+
+def check_id(ident, where: str) -> str:
+    """``ident`` if it is a valid id, else :class:`InvalidInput` saying where and why."""
+    if not isinstance(ident, str):
+        raise InvalidInput(f"expected a string, got {_kind(ident)} ({_ID_RULE})", where=where)
+    if not ident:
+        raise InvalidInput(f"empty ({_ID_RULE})", where=where)
+    if ident.isascii() and len(ident) <= MAX_ID_BYTES and ident.isprintable():
+        return ident  # the common case: printable ASCII is ASCII without C0 and DEL (twice as fast as the regex)
+    if len(ident) > MAX_ID_BYTES or not ident.isascii():
+        size = _utf8_size(ident, where)
+        if size > MAX_ID_BYTES:
+            raise InvalidInput(f"{size} bytes of UTF-8, over the {MAX_ID_BYTES}-byte limit ({_ID_RULE})", where=where)
+    bad = _CONTROL.search(ident)
+    if bad is not None:
+        raise InvalidInput(f"control character U+{ord(bad.group()):04X} at character {bad.start()} ({_ID_RULE})",
+                           where=where)
+    return ident
+
+
+def _number(v) -> float:
+    """``float(v)``, with an integer too large for a double reported as not finite."""
+    try:
+        return float(v)
+    except OverflowError:
+        return math.inf
+
+
 def parse_ts(v, where: str) -> float | None:
     """Epoch seconds from a number or an RFC 3339 string."""
     if v is None:
@@ -77,7 +130,7 @@ def parse_ts(v, where: str) -> float | None:
     if isinstance(v, bool):
         raise InvalidInput(f"expected epoch seconds or an RFC 3339 string, got {_kind(v)}", where=where)
     if isinstance(v, (int, float)):
-        x = float(v)
+        x = _number(v)
         if not math.isfinite(x):
             raise InvalidInput("not a finite number", where=where)
         return x
@@ -102,6 +155,7 @@ class EventValidator:
         self.reject_unknown = f.unknown == "reject"
         self.binary = config.model.task == "binary"
         self.max_line = config.service.max_line_bytes
+        self.max_value = f.max_value_bytes
 
     def target(self, v, where: str) -> float:
         if self.binary:
@@ -112,7 +166,7 @@ class EventValidator:
             raise InvalidInput(f"binary target must be 0, 1, true or false, got {_repr(v)}", where=where)
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise InvalidInput(f"expected a number, got {_kind(v)}", where=where)
-        x = float(v)
+        x = _number(v)
         if not math.isfinite(x):
             raise InvalidInput("not a finite number", where=where)
         return x
@@ -130,9 +184,8 @@ class EventValidator:
             msg = "required" if feats is None else f"expected an object, got {_kind(feats)}"
             raise InvalidInput(msg, where=f"{p}features")
         ident = obj.get("id")
-        if ident is not None and (not isinstance(ident, str) or not ident or len(ident) > _MAX_ID):
-            raise InvalidInput(f"expected a non-empty string of at most {_MAX_ID} characters, got {_kind(ident)}",
-                               where=f"{p}id")
+        if ident is not None:
+            check_id(ident, f"{p}id")
         target = obj.get("target")
         if target is not None:
             target = self.target(target, f"{p}target")
@@ -146,24 +199,37 @@ class EventValidator:
                 if v is None or v is True or v is False:
                     clean[name] = None if v is None else float(v)
                 elif isinstance(v, (int, float)):
-                    x = float(v)
+                    x = _number(v)
                     if not math.isfinite(x):
                         raise InvalidInput("not a finite number", where=f"{p}features.{name}")
                     clean[name] = x
                 else:
                     raise InvalidInput(f"expected a number, got {_kind(v)}", where=f"{p}features.{name}")
             elif name in self.categorical:
-                if v is None or isinstance(v, (str, bool, int)):
-                    clean[name] = v
-                elif isinstance(v, float) and v.is_integer():
-                    clean[name] = int(v)
-                else:
-                    raise InvalidInput(f"expected a string, integer or boolean, got {_kind(v)}",
-                                       where=f"{p}features.{name}")
+                clean[name] = self._categorical(v, f"{p}features.{name}")
             elif self.reject_unknown:
                 raise InvalidInput("unknown feature (not declared in the config's [features])",
                                    where=f"{p}features.{_short(name)}")
         return Event(ident, ts, clean, target)
+
+    def _categorical(self, v, where: str):
+        if v is None or v is True or v is False:
+            return v
+        if isinstance(v, str):
+            if len(v) > self.max_value // 4:  # shorter strings are within the limit whatever they hold
+                size = _utf8_size(v, where)
+                if size > self.max_value:
+                    raise InvalidInput(f"categorical value of {size} bytes of UTF-8, over the {self.max_value}-byte "
+                                       "limit (features.max_value_bytes)", where=where)
+            return v
+        if isinstance(v, float) and math.isfinite(v) and v.is_integer():
+            v = int(v)
+        if isinstance(v, int):
+            if not INT64_MIN <= v <= INT64_MAX:
+                raise InvalidInput(f"integer categorical value {_short(str(v))} outside the signed 64-bit range; "
+                                   "send it as a string", where=where)
+            return v
+        raise InvalidInput(f"expected a string, integer or boolean, got {_kind(v)}", where=where)
 
     def parse_line(self, line: bytes, where: str) -> Event:
         """Parse and validate one NDJSON line."""
@@ -172,7 +238,7 @@ class EventValidator:
         try:
             obj = orjson.loads(line)
         except orjson.JSONDecodeError as exc:
-            raise InvalidInput(f"not valid JSON: {_json_reason(exc)}", where=where) from None
+            raise InvalidInput(_json_reason(exc, line), where=where) from None
         return self.validate(obj, where)
 
 
@@ -252,11 +318,14 @@ def _short(name: str) -> str:
     return name if len(name) <= 64 else name[:61] + "..."
 
 
-def _json_reason(exc: orjson.JSONDecodeError) -> str:
+def _json_reason(exc: orjson.JSONDecodeError, line: bytes) -> str:
     msg = str(exc)
-    if "utf-8" in msg.lower():
-        return "invalid UTF-8"
-    return msg.split(":")[0][:120]
+    if "utf-8" in msg.lower() or "surrogate" in msg.lower():
+        try:
+            line.decode("utf-8")
+        except UnicodeDecodeError as bad:
+            return f"not valid JSON: invalid UTF-8 at byte offset {bad.start} of the line"
+    return "not valid JSON: " + msg.split(":")[0][:120]
 
 
 def csv_text_lines(data: bytes):

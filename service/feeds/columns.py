@@ -25,7 +25,7 @@ from models import FeatureMapper, Rows
 from models.features import categorical_text
 
 from service.engine import PreparedBatch
-from service.events import _MAX_ID as MAX_ID_CHARS  # the validator's id limit, so both paths agree
+from service.events import CONTROL_CHARS, INT64_MAX, INT64_MIN, MAX_ID_BYTES  # the validator's rules
 from service.idhash import hash_ids, holdout_fractions
 
 __all__ = ["Columns", "Prepared", "from_arrow", "holdout_share", "take_prepared", "to_prepared"]
@@ -95,8 +95,10 @@ def _floats(arr, slow: np.ndarray, *, allow_bool: bool) -> np.ndarray:
     return x
 
 
-def _categorical(arr, slow: np.ndarray) -> tuple[np.ndarray, list]:
-    """Dictionary codes and canonical texts (see :func:`models.features.categorical_text`)."""
+def _categorical(arr, slow: np.ndarray, max_bytes: int) -> tuple[np.ndarray, list]:
+    """Dictionary codes and canonical texts (see :func:`models.features.categorical_text`); values
+    the validator would reject (a non-integer number, an integer outside 64 bits, a string over
+    ``max_bytes`` bytes) are flagged, once per distinct value."""
     pa, pc = _pa()
     t = arr.type
     n = len(arr)
@@ -110,11 +112,14 @@ def _categorical(arr, slow: np.ndarray) -> tuple[np.ndarray, list]:
     codes = enc.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
     texts = []
     for k, v in enumerate(enc.dictionary.to_pylist()):
-        if isinstance(v, float) and not (math.isfinite(v) and v.is_integer()):
-            slow |= codes == k  # the validator rejects a non-integer number as a categorical value
+        if isinstance(v, float) and math.isfinite(v) and v.is_integer():
+            v = int(v)
+        if (isinstance(v, float) or (isinstance(v, int) and not INT64_MIN <= v <= INT64_MAX)
+                or (isinstance(v, str) and len(v.encode("utf-8", "surrogatepass")) > max_bytes)):
+            slow |= codes == k
             texts.append(None)
             continue
-        texts.append(categorical_text(int(v) if isinstance(v, float) else v))
+        texts.append(categorical_text(v))
     return codes, texts
 
 
@@ -168,8 +173,9 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
             slow |= ~ids.is_null().to_numpy(zero_copy_only=False)
             ids = None
         else:
-            length = pc.utf8_length(ids).fill_null(1).to_numpy(zero_copy_only=False)
-            slow |= (length == 0) | (length > MAX_ID_CHARS)
+            size = pc.binary_length(ids).fill_null(1).to_numpy(zero_copy_only=False)
+            control = pc.match_substring_regex(ids, CONTROL_CHARS).fill_null(False).to_numpy(zero_copy_only=False)
+            slow |= (size == 0) | (size > MAX_ID_BYTES) | control
     has_id = np.zeros(n, bool) if ids is None else ~ids.is_null().to_numpy(zero_copy_only=False)
 
     ts = np.full(n, np.nan)
@@ -190,7 +196,8 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
 
     numeric = {k: _floats(feats[k], slow, allow_bool=True) if k in feats else np.full(n, np.nan)
                for k in validator.numeric}
-    categorical = {k: _categorical(feats[k], slow) if k in feats else (np.full(n, -1, np.int64), [])
+    absent = (np.full(n, -1, np.int64), [])
+    categorical = {k: _categorical(feats[k], slow, validator.max_value) if k in feats else absent
                    for k in validator.categorical}
     return Columns(n, ids, ts, target, numeric, categorical), slow, ambiguous
 

@@ -14,6 +14,11 @@ reason and every accepted value is what orjson would give:
   double, where orjson keeps it exact); blank lines are skipped as :func:`service.events.parse_ndjson` skips them;
 * Arrow must give exactly one row per line, with only the known top-level keys and declared
   features; otherwise the chunk is bisected down to small pieces that go to the validator;
+* a categorical column whose values mix JSON types (strings and numbers, say: Arrow's reader
+  refuses a column that changes type) is split by the type of that value in each line, found by
+  a compiled scan for the key, and each part is parsed on its own; the parts are merged back in
+  line order. The scan only groups lines: a line it misreads fails its part's parse and is
+  handled as above;
 * :func:`service.feeds.columns.from_arrow` flags the rows whose values it cannot vouch for.
 
 A feed where most lines need the validator (say, string timestamps) switches to the validator for
@@ -40,6 +45,8 @@ _LEAF = 16  # lines below which a failing piece goes to the validator line by li
 _MAX_OPEN = 64
 _BLANK, _PLAIN, _CHECK = 0, 1, 2
 _ROW = re.compile(r"in row (\d+)")
+_CHANGED = re.compile(r"Column\(/features/([^)]*)\) changed from")
+_NONE, _STRING, _NUMBER, _BOOLEAN = 0, 1, 2, 3  # the JSON type of a value (none: null or absent)
 
 
 def available() -> bool:
@@ -181,6 +188,53 @@ def _lines_bytes(buf: bytes, starts, ends, sel) -> bytes:
     return out.tobytes()
 
 
+@numba.njit(cache=True, nogil=True)
+def _value_kinds(buf, starts, ends, sel, key, out):
+    """For each line ``sel[j]``: the JSON type of the value after the first ``key`` followed by ``:``."""
+    m = key.shape[0]
+    for j in range(sel.shape[0]):
+        hi = ends[sel[j]]
+        i = starts[sel[j]]
+        kind = _NONE
+        while i + m <= hi:
+            if buf[i] == key[0]:
+                t = 1
+                while t < m and buf[i + t] == key[t]:
+                    t += 1
+                if t == m:
+                    at = i + m
+                    while at < hi and (buf[at] == 32 or buf[at] == 9 or buf[at] == 13):
+                        at += 1
+                    if at < hi and buf[at] == 58:  # a key, not a string value
+                        at += 1
+                        while at < hi and (buf[at] == 32 or buf[at] == 9 or buf[at] == 13):
+                            at += 1
+                        if at < hi:
+                            c = buf[at]
+                            if c == 34:  # '"'
+                                kind = _STRING
+                            elif c == 45 or 48 <= c <= 57:  # '-' or a digit
+                                kind = _NUMBER
+                            elif c == 116 or c == 102:  # 't' or 'f'
+                                kind = _BOOLEAN
+                        break
+            i += 1
+        out[j] = kind
+
+
+def _split_by_kind(buf: bytes, starts, ends, sel: np.ndarray, name: str) -> list[np.ndarray]:
+    """``sel`` split by the JSON type of feature ``name`` in each line (lines without a value join
+    the first part); a single part when the scan finds fewer than two types."""
+    kinds = np.empty(len(sel), np.int8)
+    _value_kinds(np.frombuffer(buf, dtype=np.uint8), starts, ends, sel,
+                 np.frombuffer(b'"' + name.encode() + b'"', dtype=np.uint8), kinds)
+    parts = [sel[kinds == kind] for kind in (_STRING, _NUMBER, _BOOLEAN) if np.any(kinds == kind)]
+    if len(parts) < 2:
+        return [sel]
+    parts[0] = np.sort(np.concatenate([parts[0], sel[kinds == _NONE]]))
+    return parts
+
+
 def _lines_with(buf: bytes, needle: bytes, ends: np.ndarray) -> np.ndarray:
     """Indices of the lines (given by their ends) that contain ``needle``."""
     hits = []
@@ -246,15 +300,17 @@ class ArrowNdjson:
         return parts[0], rejected
 
     def _table(self, data: bytes, expect: int):
-        """The Arrow table of ``data`` (``expect`` lines), or ``None`` and the failing row if known."""
+        """The Arrow table of ``data`` (``expect`` lines), or ``None``, the failing row if known and
+        the declared categorical feature whose values changed type, if that was the failure."""
         pj = self._pj
         try:
             table = pj.read_json(self._pa.BufferReader(data), parse_options=self._parse,
                                  read_options=pj.ReadOptions(use_threads=False, block_size=max(len(data) + 1, 1 << 16)))
         except (self._pa.ArrowException, UnicodeDecodeError) as exc:
-            hit = _ROW.search(str(exc))
-            return None, int(hit.group(1)) if hit else None
-        return (table, None) if table.num_rows == expect else (None, None)
+            hit, mixed = _ROW.search(str(exc)), _CHANGED.search(str(exc))
+            name = mixed.group(1) if mixed and mixed.group(1) in self.validator.categorical else None
+            return None, int(hit.group(1)) if hit else None, name
+        return (table, None, None) if table.num_rows == expect else (None, None, None)
 
     def _fast(self, buf, sel, spans, lines, whole, parts, slow) -> None:
         """Columnar parse of the lines ``sel``; lines it cannot vouch for are appended to ``slow``.
@@ -268,9 +324,12 @@ class ArrowNdjson:
         while todo:
             sel, whole = todo.pop()
             data = buf if whole else _lines_bytes(buf, starts, ends, sel)
-            table, row = self._table(data, len(sel))
+            table, row, mixed = self._table(data, len(sel))
             if table is None:
-                if row is not None and 0 <= row < len(sel):
+                split = _split_by_kind(buf, starts, ends, sel, mixed) if mixed is not None else [sel]
+                if len(split) > 1:
+                    todo += [(part, False) for part in split]
+                elif row is not None and 0 <= row < len(sel):
                     slow.append(int(sel[row]))
                     todo += [(part, False) for part in (sel[row + 1:], sel[:row]) if len(part)]
                 elif len(sel) <= _LEAF:

@@ -24,7 +24,7 @@ import orjson
 from aiohttp import web
 
 from service.http import handlers as h
-from service.config import Config, load_config
+from service.config import Config, ConfigError, load_config
 from service.errors import error_response, from_http_exception
 from service.events import EventValidator
 from service.http.handlers import SERVICE, Service
@@ -34,7 +34,7 @@ from service.storage.labels import LabelStore
 from service.http.metrics import Metrics
 from service.http.schemas import openapi_document
 
-__all__ = ["SERVICE", "Service", "create_app", "serve_main"]
+__all__ = ["SERVICE", "Service", "create_app", "resolve_token", "serve_main"]
 
 log = logging.getLogger("trimtab.service")
 
@@ -111,10 +111,39 @@ def _version() -> str:
         return "0"
 
 
-def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
-    """The service app for ``config``; ``token`` overrides the environment variable (tests)."""
+def resolve_token(config: Config, token: str | None = None) -> str | None:
+    """The bearer token writes need, or ``None`` when ``service.auth = "none"``.
+
+    ``token`` overrides the environment variable (tests, embedding). With ``auth = "token"`` a
+    missing or empty token (or one of only spaces) is a :class:`ConfigError` that names the
+    variable and the ``auth = "none"`` escape: the service never starts with writes open by accident.
+    """
+    cfg = config.service
+    if cfg.auth == "none":
+        return None
     if token is None:
-        token = os.environ.get(config.service.token_env) or None
+        token = os.environ.get(cfg.token_env)
+    escape = ('set it to a secret shared with the producers, or set service.auth = "none" to run with '
+              "writes open to anyone who reaches the port")
+    if token is None:
+        raise ConfigError(f"the token variable ${cfg.token_env} (service.token_env) is not set; {escape}",
+                          where="service.auth")
+    if not token.strip() or token != token.strip():
+        what = "empty" if not token.strip() else "padded with whitespace"
+        raise ConfigError(f"the token in ${cfg.token_env} (service.token_env) is {what}; {escape}",
+                          where="service.auth")
+    return token
+
+
+def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
+    """The service app for ``config``; ``token`` overrides the environment variable (tests).
+
+    Raises :class:`ConfigError` when ``service.auth = "token"`` and there is no usable token
+    (see :func:`resolve_token`).
+    """
+    token = resolve_token(config, token)
+    if token is None:
+        log.warning("%s", h.OPEN_WRITES)
     svc = Service(config=config, data_dir=data_dir or config.service.data_dir, token=token,
                   validator=EventValidator(config), metrics=Metrics())
     svc.openapi = orjson.dumps(openapi_document(config, _version()))
@@ -177,10 +206,10 @@ def serve_main(args) -> int:
     if upd:
         config = config.model_copy(update={"service": config.service.model_copy(update=upd)})
     logging.basicConfig(level=logging.INFO, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
-    token = os.environ.get(config.service.token_env) or None
+    token = resolve_token(config)  # exits 2 (config error) when writes would be open by accident
     if not _loopback(config.service.host) and token is None:
-        log.warning("binding %s (not loopback) without a token: anyone who can reach it can write; set $%s",
-                    config.service.host, config.service.token_env)
+        log.warning("binding %s (not loopback) with service.auth = \"none\": anyone who can reach it can write",
+                    config.service.host)
     # the journal thread runs some Python (row binding); a short switch interval keeps it from holding
     # the GIL for the default 5 ms while a score request waits
     sys.setswitchinterval(0.0005)

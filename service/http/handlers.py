@@ -1,10 +1,13 @@
 """The route handlers of ARCHITECTURE section 7 (the app factory is in :mod:`service.http.app`).
 
-Writes need ``Authorization: Bearer <token>`` when the variable named by ``service.token_env`` is
-set and not empty; a missing or a wrong token is answered 401 (RFC 6750: both are an authentication
-failure, the message says which). Reads need it too when ``service.token_for_reads`` is true;
-``/healthz``, ``/readyz`` and ``/v1/openapi.json`` never do. Request bodies over 16 KiB are parsed
-on a worker thread, so ``/v1/score`` keeps answering while a large batch is validated.
+Every route that changes state (``/v1/events``, ``/v1/labels``, ``/v1/score`` with ``"remember":
+true``, ``/v1/model/rollback``, ``POST /v1/checkpoints``) needs ``Authorization: Bearer <token>``;
+a missing or a wrong token is answered 401 (RFC 6750: both are an authentication failure, the
+message says which). The app factory refuses to build an app without a token unless
+``service.auth = "none"``, which opens writes and says so on the model card. Reads need the token
+too when ``service.token_for_reads`` is true; ``/healthz``, ``/readyz`` and ``/v1/openapi.json``
+never do. Request bodies over 16 KiB are parsed on a worker thread, so ``/v1/score`` keeps
+answering while a large batch is validated.
 """
 
 from __future__ import annotations
@@ -21,15 +24,15 @@ from models import InvalidInput
 
 from service.config import Config
 from service.errors import NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType, error_response
-from service.events import Event, EventValidator, Rejection, parse_ndjson
+from service.events import Event, EventValidator, Rejection, check_id, parse_ndjson
 from service.ingest import Ingestor, encode_event
 from service.storage.labels import LabelStore
 from service.http.metrics import CONTENT_TYPE, Metrics
 from service.http.schemas import EventIn, EventsBody, LabelIn, LabelsBody, RollbackRequest, ScoreRequest, envelope, parse_json
 
 __all__ = [
-    "SERVICE", "Service", "get_checkpoints", "healthz", "incidents", "metrics", "model_card", "openapi",
-    "post_checkpoint", "post_events", "post_labels", "readyz", "rollback", "score",
+    "OPEN_WRITES", "SERVICE", "Service", "get_checkpoints", "healthz", "incidents", "metrics", "model_card",
+    "openapi", "post_checkpoint", "post_events", "post_labels", "readyz", "rollback", "score",
 ]
 
 _INLINE_BYTES = 16 * 1024  # bodies parsed on the loop itself (~100 events, < 1 ms); larger ones on a thread
@@ -41,7 +44,7 @@ class Service:
 
     config: Config
     data_dir: str
-    token: str | None
+    token: str | None  # None only with service.auth = "none"
     validator: EventValidator
     metrics: Metrics
     ingestor: Ingestor | None = None
@@ -130,6 +133,8 @@ async def score(request: web.Request) -> web.Response:
     body = await request.read()
     obj = parse_json(body)
     req = envelope(ScoreRequest, obj)
+    if req.remember:  # remembered features are state: another client's label would join them
+        _auth(svc, request, write=True)
     if req.events is not None:
         _too_many(len(req.events), svc.config.service.max_batch, "events")
     # the view is a copy published by the learner: no lock, no waiting, safe on a worker thread too
@@ -240,6 +245,7 @@ async def post_labels(request: web.Request) -> web.Response:
     for i, obj in enumerate(arr):
         try:
             lab = envelope(LabelIn, obj, prefix=f"labels[{i}]")
+            check_id(lab.id, f"labels[{i}].id")
             target = svc.validator.target(lab.target, f"labels[{i}].target")
         except InvalidInput as exc:
             rejected.append(Rejection(exc.where, exc.message))
@@ -274,6 +280,10 @@ async def model_card(request: web.Request) -> web.Response:
         return _json(_card(svc, ing))
 
 
+#: on the model card when ``service.auth = "none"`` (the app factory logs it at start too)
+OPEN_WRITES = ('service.auth = "none": writes (events, labels, remember on score, operator actions) are open to '
+               "anyone who reaches this port")
+
 #: shown on the model card: what the scores and the certificate are, and are not, good for
 CAUTION = ("Scores are decision support. The certificate bounds the expected suboptimality on a stationary "
            "feed only; drift voids it. Where food or medicine temperatures, credit or safety are at stake, keep "
@@ -291,7 +301,7 @@ def _card(svc: Service, ing: Ingestor) -> dict:
         "holdout_loss": eng.holdout_losses(), "state_digest": eng.state_digest,
         "journal": {"applied_seq": ing.applied_seq, "checkpoint_seq": ing.checkpoint_seq},
         "coefficients": {"raw": m.coefficients("raw"), "averaged": m.coefficients("averaged")},
-        "caution": CAUTION})
+        "caution": CAUTION, **({"warning": OPEN_WRITES} if svc.token is None else {})})
 
 
 async def rollback(request: web.Request) -> web.Response:

@@ -19,13 +19,17 @@ from pydantic.json_schema import models_json_schema
 from models import InvalidInput
 
 from service.errors import MalformedBody
+from service.events import CONTROL_CHARS, MAX_ID_BYTES
 
 __all__ = [
-    "EventIn", "EventsBody", "IngestResponse", "LabelIn", "LabelsBody", "RollbackRequest", "ScoreRequest",
+    "ID_RULE", "EventIn", "EventsBody", "IngestResponse", "LabelIn", "LabelsBody", "RollbackRequest", "ScoreRequest",
     "ScoreResponse", "envelope", "openapi_document", "parse_json",
 ]
 
 _STRICT = ConfigDict(extra="forbid", strict=True)
+ID_RULE = f"1 to {MAX_ID_BYTES} bytes of UTF-8, no control characters (U+0000-U+001F, U+007F-U+009F)"
+#: JSON Schema counts characters, not bytes: the byte limit is in the description, the pattern is exact
+_ID_SCHEMA = {"minLength": 1, "maxLength": MAX_ID_BYTES, "pattern": f"^[^{CONTROL_CHARS[1:-1]}]*$"}
 Scalar = float | int | str | bool | None
 
 
@@ -33,7 +37,8 @@ class EventIn(BaseModel):
     """One event (ARCHITECTURE section 3)."""
 
     model_config = _STRICT
-    id: str | None = Field(None, min_length=1, max_length=200, description="required when target is present")
+    id: str | None = Field(None, description=f"required when target is present; {ID_RULE}",
+                           json_schema_extra=_ID_SCHEMA)
     ts: float | str | None = Field(None, description="epoch seconds or an RFC 3339 string with an offset")
     features: dict[str, Scalar] = Field(description="declared feature name -> number | string | boolean | null")
     target: float | bool | None = Field(None, description="number (regression) or 0/1/true/false (binary)")
@@ -63,7 +68,8 @@ class ScoreRequest(BaseModel):
     events: list[Any] | None = None
     id: str | None = None
     ts: float | str | None = None
-    remember: bool = Field(False, description="keep the features (needs an id) for a later POST /v1/labels")
+    remember: bool = Field(False, description="keep the features (needs an id, and the bearer token: it changes "
+                                              "state) for a later POST /v1/labels")
     iterate: Literal["raw", "averaged"] | None = Field(None, description="default: the serving iterate")
 
     @model_validator(mode="after")
@@ -79,7 +85,8 @@ class LabelIn(BaseModel):
     """A label for an event scored earlier with ``"remember": true``."""
 
     model_config = _STRICT
-    id: str = Field(min_length=1, max_length=200)
+    #: checked by the same rule as an event's id (``service.events.check_id``) in the handler
+    id: str = Field(description=ID_RULE, json_schema_extra=_ID_SCHEMA)
     #: checked by the same rule as an event's target (``EventValidator.target``), so the messages agree
     target: Any = Field(json_schema_extra={"type": ["number", "boolean"],
                                            "description": "number (regression) or 0/1/true/false (binary)"})
@@ -231,6 +238,8 @@ def openapi_document(config, version: str) -> dict:
         "/readyz": {"get": dict(plain, summary="readiness: 200 once recovery has finished")},
         "/v1/openapi.json": {"get": dict(plain, summary="this document")},
     }
+    if not reads:  # the token is optional for scoring, and required with "remember": true
+        paths["/v1/score"]["post"]["security"] = [{}, *_BEARER]
     return {"openapi": "3.1.0", "info": {"title": f"trimtab service ({config.name})", "version": version},
             "paths": paths, "components": {"schemas": schemas, "securitySchemes": {
                 "bearer": {"type": "http", "scheme": "bearer"}}}}

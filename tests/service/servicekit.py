@@ -1,5 +1,8 @@
 """Shared helpers for the live-service tests: configs, demo events, a server in a thread, a
-``trimtab serve`` subprocess. Every server listens on 127.0.0.1 with a port chosen by the OS."""
+``trimtab serve`` subprocess. Every server listens on 127.0.0.1 with a port chosen by the OS.
+
+Servers run with a real token (``service.auth = "token"``, the default): ``TOKEN`` in the variable
+``TRIMTAB_TEST_TOKEN`` that :func:`make_config` names; clients send ``AUTH``."""
 
 from __future__ import annotations
 
@@ -21,11 +24,14 @@ import orjson
 from service.http.app import create_app
 from service.config import config_from_dict
 
-__all__ = ["FEATURES", "ServeProcess", "ServerThread", "demo_events", "free_port", "make_config", "toml_text",
-           "wait_ready"]
+__all__ = ["AUTH", "FEATURES", "TOKEN", "TOKEN_ENV", "ServeProcess", "ServerThread", "demo_events", "free_port",
+           "make_config", "toml_text", "wait_ready"]
 
 ROOT = Path(__file__).resolve().parents[2]
 FEED = ROOT / "replay_data" / "coldchain-demo.ndjson.gz"
+TOKEN_ENV = "TRIMTAB_TEST_TOKEN"
+TOKEN = "test-token-7c1e0f9a2b"
+AUTH = {"Authorization": f"Bearer {TOKEN}"}
 FEATURES = {"numeric": ["ambient_c", "compressor_duty", "door_open_s", "load_kg"], "categorical": ["van", "route"],
             "hash_bits": 10, "scaling": "warmup", "warmup_events": 200}
 
@@ -39,7 +45,7 @@ def free_port() -> int:
 
 def make_config(data_dir, *, monitor: dict | None = None, **service):
     """A config for the demo features with ``data_dir`` and any ``[service]`` overrides."""
-    svc = {"host": "127.0.0.1", "port": 0, "data_dir": str(data_dir), "token_env": "TRIMTAB_TEST_TOKEN", **service}
+    svc = {"host": "127.0.0.1", "port": 0, "data_dir": str(data_dir), "token_env": TOKEN_ENV, **service}
     mon = {"check_every": 100, "window": 500, **(monitor or {})}
     return config_from_dict({"name": "test", "features": FEATURES, "monitor": mon, "service": svc})
 
@@ -91,9 +97,10 @@ async def wait_ready(client, timeout: float = 60.0) -> None:
 
 
 class ServerThread:
-    """The app served from a thread with its own event loop (for synchronous clients and hypothesis)."""
+    """The app served from a thread with its own event loop (for synchronous clients and hypothesis);
+    writes need ``Authorization: Bearer <token>`` (``TOKEN`` unless given)."""
 
-    def __init__(self, config, token: str | None = None) -> None:
+    def __init__(self, config, token: str = TOKEN) -> None:
         self.config = config
         self.token = token
         self.loop = asyncio.new_event_loop()
@@ -140,12 +147,15 @@ class ServerThread:
 
 
 class ServeProcess:
-    """``trimtab serve -c CONFIG --port 0`` in a subprocess; ``url`` once it logs where it listens."""
+    """``trimtab serve -c CONFIG --port 0`` in a subprocess; ``url`` once it logs where it listens.
+
+    The subprocess has ``TOKEN`` in ``TRIMTAB_TEST_TOKEN`` unless ``env`` says otherwise.
+    """
 
     def __init__(self, config_path: Path, env: dict | None = None) -> None:
         self.proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(config_path),
                                       "--port", "0"], stderr=subprocess.PIPE, cwd=ROOT,
-                                     env={**os.environ, **(env or {})})
+                                     env={**os.environ, TOKEN_ENV: TOKEN, **(env or {})})
         self.log: list[str] = []
         self.url = None
         for raw in self.proc.stderr:

@@ -22,7 +22,7 @@ from service.config import config_from_dict
 from service.engine import Engine
 from service.events import EventValidator
 
-from tests.service.servicekit import FEATURES, demo_events, free_port, wait_ready
+from tests.service.servicekit import AUTH, FEATURES, TOKEN, demo_events, free_port, wait_ready
 
 redis = pytest.importorskip("redis")
 
@@ -90,8 +90,11 @@ async def test_stream_entries_learned_once_and_acknowledged(aiohttp_client, tmp_
     # a producer retry (same id twice) and an invalid entry
     await r.xadd("coldchain.events", {"event": orjson.dumps(events[10])})
     await r.xadd("coldchain.events", {"event": b'{"id": "bad-1", "features": {"ambient_c": "warm"}, "target": 1}'})
+    # ids outside the grammar (a control character, 258 bytes of UTF-8 in 129 characters)
+    for ident in ("bad-\x00-2", "\u00e9" * 129):
+        await r.xadd("coldchain.events", {"event": orjson.dumps({**events[0], "id": ident})})
 
-    client = await aiohttp_client(create_app(cfg, data_dir=str(tmp_path / "data")))
+    client = await aiohttp_client(create_app(cfg, data_dir=str(tmp_path / "data"), token=TOKEN), headers=AUTH)
     await wait_ready(client)
 
     async def learned_all():
@@ -118,8 +121,10 @@ async def test_stream_entries_learned_once_and_acknowledged(aiohttp_client, tmp_
     assert card["state_digest"] == reference.state_digest
 
     dead = await r.xrange("coldchain.events.rejected")
-    assert len(dead) == 1
+    assert len(dead) == 3
     fields = dead[0][1]
     assert fields[b"where"].endswith(b".features.ambient_c")
     assert b"expected a number" in fields[b"reason"]
+    assert [f[b"where"].endswith(b".id") for _, f in dead[1:]] == [True, True]
+    assert b"control character U+0000" in dead[1][1][b"reason"] and b"258 bytes" in dead[2][1][b"reason"]
     await r.aclose()

@@ -26,7 +26,7 @@ from service.replay.runner import run_replay
 from service.feeds.into_service import replay_live
 from service.replay.scenario import write_ndjson
 
-from tests.service.servicekit import free_port
+from tests.service.servicekit import TOKEN, free_port
 
 ROOT = Path(__file__).resolve().parents[3]
 GUARDED = ROOT / "replay_data" / "configs" / "guarded.toml"
@@ -35,7 +35,7 @@ pytestmark = pytest.mark.asyncio
 
 
 def _serve(config: Path, data_dir: Path, port: int) -> subprocess.Popen:
-    env = dict(os.environ, TRIMTAB_TOKEN="")
+    env = dict(os.environ, TRIMTAB_TOKEN=TOKEN)  # the demo configs read the token from $TRIMTAB_TOKEN
     return subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(config), "--port", str(port),
                              "--data-dir", str(data_dir)], cwd=ROOT, env=env, stdout=subprocess.PIPE,
                             stderr=subprocess.STDOUT)
@@ -67,7 +67,7 @@ async def test_live_replay_into_trimtab_serve_matches_the_offline_digest(tmp_pat
     proc = _serve(GUARDED, tmp_path / "data", port)
     try:
         _wait_ready(proc, port)
-        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=700)
+        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=700, token=TOKEN)
     finally:
         proc.send_signal(signal.SIGTERM)
         try:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import pytest
 
+from service.config import ConfigError
 from service.http.app import _loopback, create_app
 from tests.service.servicekit import demo_events, make_config, wait_ready
 
@@ -61,13 +62,27 @@ async def test_token_guards_writes_and_optionally_reads(aiohttp_client, tmp_path
         assert (await _call(client, method, path)).status == 200, path
 
 
+@pytest.mark.parametrize("value", [None, "", "   "], ids=["unset", "empty", "spaces"])
+def test_no_usable_token_refuses_to_build_the_app(tmp_path, monkeypatch, value):
+    """With ``service.auth = "token"`` (the default) writes are never open by accident."""
+    if value is None:
+        monkeypatch.delenv("TRIMTAB_TEST_TOKEN", raising=False)
+    else:
+        monkeypatch.setenv("TRIMTAB_TEST_TOKEN", value)
+    with pytest.raises(ConfigError, match=r"\$TRIMTAB_TEST_TOKEN .*service.auth = \"none\"") as exc:
+        create_app(make_config(tmp_path))
+    assert exc.value.where == "service.auth"
+
+
 @pytest.mark.asyncio
-async def test_no_token_configured_means_open_writes(aiohttp_client, tmp_path, monkeypatch):
-    monkeypatch.setenv("TRIMTAB_TEST_TOKEN", "")  # set but empty counts as no token
-    client = await aiohttp_client(create_app(make_config(tmp_path)))
+async def test_auth_none_opens_writes_with_a_warning(aiohttp_client, tmp_path, monkeypatch):
+    monkeypatch.setenv("TRIMTAB_TEST_TOKEN", TOKEN)  # ignored: the config says auth = "none"
+    client = await aiohttp_client(create_app(make_config(tmp_path, auth="none")))
     await wait_ready(client)
     r = await client.post("/v1/events", json=demo_events(3))
     assert r.status == 200 and (await r.json())["accepted"] == 3
+    card = await (await client.get("/v1/model")).json()
+    assert "open to anyone" in card["warning"] and 'auth = "none"' in card["warning"]
 
 
 def test_loopback_detection_for_the_start_warning():

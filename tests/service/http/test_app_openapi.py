@@ -16,7 +16,7 @@ from referencing import Registry
 from referencing.jsonschema import DRAFT202012
 
 from service.http.app import create_app
-from tests.service.servicekit import demo_events, make_config, wait_ready
+from tests.service.servicekit import AUTH, TOKEN, demo_events, make_config, wait_ready
 
 pytestmark = pytest.mark.asyncio
 
@@ -29,8 +29,8 @@ def schema_checker(doc: dict, name: str) -> jsonschema.Draft202012Validator:
 
 
 async def test_document_is_valid_and_describes_the_answers(aiohttp_client, tmp_path):
-    app = create_app(make_config(tmp_path))
-    client = await aiohttp_client(app)
+    app = create_app(make_config(tmp_path), token=TOKEN)
+    client = await aiohttp_client(app, headers=AUTH)
     await wait_ready(client)
     doc = await (await client.get("/v1/openapi.json")).json()
     assert doc["openapi"].startswith("3.1")
@@ -56,7 +56,7 @@ async def test_document_is_valid_and_describes_the_answers(aiohttp_client, tmp_p
 
 
 async def test_metrics_are_prometheus_text(aiohttp_client, tmp_path):
-    client = await aiohttp_client(create_app(make_config(tmp_path)))
+    client = await aiohttp_client(create_app(make_config(tmp_path), token=TOKEN), headers=AUTH)
     await wait_ready(client)
     await client.post("/v1/events", json=demo_events(250))
     for _ in range(7):

@@ -18,7 +18,7 @@ import pytest
 from service.http.app import create_app
 from service.engine import Engine
 from service.events import EventValidator
-from tests.service.servicekit import demo_events, make_config, wait_ready
+from tests.service.servicekit import AUTH, TOKEN, demo_events, make_config, wait_ready
 
 pytestmark = pytest.mark.asyncio
 
@@ -35,7 +35,7 @@ def reference(config, events: list[dict]) -> Engine:
 
 
 async def started(aiohttp_client, config):
-    client = await aiohttp_client(create_app(config))
+    client = await aiohttp_client(create_app(config, token=TOKEN), headers=AUTH)
     await wait_ready(client)
     return client
 
@@ -132,7 +132,7 @@ async def test_rejected_items_are_reported_and_the_rest_learned(aiohttp_client, 
     body = await r.json()
     assert body["accepted"] == 18
     assert [x["where"] for x in body["rejected"]] == ["line 4", "line 8"]
-    assert body["rejected"][1]["reason"] == "not valid JSON: invalid UTF-8"
+    assert body["rejected"][1]["reason"] == "not valid JSON: invalid UTF-8 at byte offset 0 of the line"
 
     r = await client.post("/v1/events", json=[{"features": {}, "target": 2.0}])
     err = await r.json()

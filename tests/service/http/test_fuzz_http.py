@@ -50,6 +50,7 @@ def request(srv, method: str, path: str, body: bytes | None = None, ctype: str |
     conn = http.client.HTTPConnection(host, int(port), timeout=30)
     try:
         headers = {"Content-Type": ctype} if ctype else {}
+        headers["Authorization"] = f"Bearer {srv.token}"
         conn.request(method, path, body=body, headers=headers)
         r = conn.getresponse()
         return r.status, r.read(), r
@@ -103,7 +104,8 @@ def bad_event(draw):
     elif kind == "top_key":
         e[draw(st.text(min_size=1, max_size=8).filter(lambda s: s not in ("id", "ts", "features", "target")))] = 1
     elif kind == "id":
-        e["id"] = draw(st.one_of(st.just(""), st.integers(), st.lists(junk, max_size=2), st.just("x" * 201)))
+        e["id"] = draw(st.one_of(st.just(""), st.integers(), st.lists(junk, max_size=2), st.just("x" * 257),
+                                 st.just("\u00e9" * 129), st.sampled_from(["a\x00b", "\x1f", "id\x7f", "\x85"])))
     elif kind == "target":
         e["target"] = draw(st.one_of(st.text(max_size=6), st.booleans(), st.lists(junk, max_size=2),
                                      st.dictionaries(st.text(max_size=2), junk, max_size=2)))

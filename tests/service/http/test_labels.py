@@ -17,7 +17,7 @@ from service.http.app import create_app
 from service.engine import Engine
 from service.events import EventValidator
 from service.storage.labels import LabelStore
-from tests.service.servicekit import demo_events, make_config, wait_ready
+from tests.service.servicekit import AUTH, TOKEN, demo_events, make_config, wait_ready
 
 
 class Clock:
@@ -59,7 +59,7 @@ def test_store_expires_bounds_and_persists(tmp_path):
 @pytest.mark.asyncio
 async def test_scored_and_remembered_events_learn_when_labelled(aiohttp_client, tmp_path):
     cfg = make_config(tmp_path, remember_ttl_s=1.0)
-    client = await aiohttp_client(create_app(cfg))
+    client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     await wait_ready(client)
     warm = demo_events(300, tag="w")
     await client.post("/v1/events", json=warm)
@@ -107,12 +107,12 @@ async def test_scored_and_remembered_events_learn_when_labelled(aiohttp_client, 
 @pytest.mark.asyncio
 async def test_remembered_features_survive_a_restart(aiohttp_client, tmp_path):
     cfg = make_config(tmp_path)
-    client = await aiohttp_client(create_app(cfg))
+    client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     await wait_ready(client)
     e = demo_events(1, tag="r")[0]
     await client.post("/v1/score", json={"id": e["id"], "features": e["features"], "remember": True})
     await client.close()
-    client = await aiohttp_client(create_app(cfg))
+    client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     await wait_ready(client)
     r = await client.post("/v1/labels", json=[{"id": e["id"], "target": e["target"]}])
     assert (await r.json())["accepted"] == 1

@@ -20,7 +20,7 @@ import pytest
 from service.http.app import SERVICE, create_app
 from service.engine import Engine
 from service.events import Event
-from tests.service.servicekit import demo_events, make_config, wait_ready
+from tests.service.servicekit import AUTH, TOKEN, demo_events, make_config, wait_ready
 
 pytestmark = pytest.mark.asyncio
 PROBE = {"ambient_c": 7.0, "door_open_s": 10, "van": "V02"}
@@ -29,8 +29,8 @@ PROBE = {"ambient_c": 7.0, "door_open_s": 10, "van": "V02"}
 async def test_burst_gets_429_and_nothing_accepted_is_lost(aiohttp_client, tmp_path):
     limit = 1500
     cfg = make_config(tmp_path, queue_limit=limit, chunk_events=500, apply_slice=128, checkpoint_every=5000)
-    app = create_app(cfg)
-    client = await aiohttp_client(app)
+    app = create_app(cfg, token=TOKEN)
+    client = await aiohttp_client(app, headers=AUTH)
     await wait_ready(client)
     ing = app[SERVICE].ingestor
     await client.post("/v1/events", json=demo_events(300, tag="warm"))

@@ -23,13 +23,13 @@ from service.engine import Engine
 from service.events import EventValidator
 from service.ingest import encode_event
 from service.storage.journal import Journal
-from tests.service.servicekit import ServeProcess, demo_events, make_config, toml_text, wait_ready
+from tests.service.servicekit import AUTH, TOKEN, ServeProcess, demo_events, make_config, toml_text, wait_ready
 
 
 def _post(url: str, events: list[dict], ndjson: bool) -> dict:
     body = b"\n".join(orjson.dumps(e) for e in events) if ndjson else orjson.dumps(events)
     ctype = "application/x-ndjson" if ndjson else "application/json"
-    req = urllib.request.Request(url + "/v1/events", data=body, headers={"Content-Type": ctype})
+    req = urllib.request.Request(url + "/v1/events", data=body, headers={"Content-Type": ctype, **AUTH})
     with urllib.request.urlopen(req, timeout=60) as r:
         return orjson.loads(r.read())
 
@@ -132,7 +132,7 @@ def _safe_post(url, batch, ndjson, result: dict) -> None:
 async def test_corrupt_and_truncated_checkpoints_fall_back_with_incidents(aiohttp_client, tmp_path):
     cfg = make_config(tmp_path, checkpoint_every=250, checkpoints_kept=3)
     events = demo_events(1000)
-    client = await aiohttp_client(create_app(cfg))
+    client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     await wait_ready(client)
     for i in range(0, 1000, 100):
         assert (await (await client.post("/v1/events", json=events[i:i + 100])).json())["accepted"] == 100
@@ -151,7 +151,7 @@ async def test_corrupt_and_truncated_checkpoints_fall_back_with_incidents(aiohtt
     db.commit()
     db.close()
 
-    client = await aiohttp_client(create_app(cfg))
+    client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     await wait_ready(client)
     ready = await (await client.get("/readyz")).json()
     assert ready["recovery"]["checkpoint"] == 600 and ready["recovery"]["replayed"] == 400
@@ -174,7 +174,7 @@ async def test_readyz_is_503_until_the_journal_is_replayed(aiohttp_client, tmp_p
     j.claim(fingerprint(cfg))
     j.append([(1, [encode_event(e) for e in events])])
     j.close()
-    client = await aiohttp_client(create_app(cfg))
+    client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     first = await client.get("/readyz")
     err = (await first.json())["error"]
     assert first.status == 503 and err["code"] == "not_ready" and err["where"] == "startup"
