@@ -17,7 +17,7 @@ __all__ = ["MAX_BUCKETS", "envelope", "thin_trace"]
 
 #: Stretches per series: at most twice as many points are drawn (a 10-inch figure at 110 dpi is
 #: 1,100 pixels wide, so every pixel column still gets its own low and high)
-MAX_BUCKETS = 1500
+MAX_BUCKETS = 500
 
 #: Trace columns that are numbers (the others, ``serving`` and ``action``, are words per check)
 NUMERIC_KEYS = ("holdout_raw", "holdout_avg", "progressive_loss", "baseline_progressive", "baseline_holdout",
@@ -40,6 +40,7 @@ def envelope(x: np.ndarray, values: np.ndarray, buckets: int = MAX_BUCKETS) -> t
     if n <= 2 * buckets:
         return x, values
     size = -(-n // buckets)
+    buckets = -(-n // size)  # every stretch starts before n (only the last one is padded)
     grid = np.concatenate([values, np.full(size * buckets - n, np.nan)]).reshape(buckets, size)
     missing = np.isnan(grid)
     low = np.argmin(np.where(missing, np.inf, grid), axis=1)

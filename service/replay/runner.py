@@ -20,6 +20,7 @@ whenever a repeated id arrives within the journal's retention, which is what ret
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import multiprocessing as mp
@@ -272,9 +273,10 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
 
 
 def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool = True, notes=None,
-                  caution: str | None = None) -> Path:
+                  caution: str | None = None, painter=None) -> Path:
     """Write ``summary.json``, ``<name>/model.json`` and (unless ``report=False``) ``report.html``
-    (with ``caution``, or the general caution of :data:`service.replay.report.CAUTION`)."""
+    (with ``caution``, or the general caution of :data:`service.replay.report.CAUTION`), drawn by
+    ``painter`` (a :class:`service.replay.report.Painter` started earlier) or a fresh one."""
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     feeds = [str(f) for f in feeds]
@@ -290,7 +292,7 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
 
         # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
         # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
-        return draw_in_child(out, summary, results, notes, caution or CAUTION)
+        return draw_in_child(out, summary, results, notes, caution or CAUTION, painter)
     return out / "summary.json"
 
 
@@ -324,10 +326,17 @@ def replay_main(args) -> int:
     if jobs < 1:
         raise InvalidSettings("must be at least 1", where="--jobs")
     mode = progress_mode(args.no_progress)
-    _lean_arrow()
-    results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
-                      columnar=not getattr(args, "exact_parse", False))
-    written = write_outputs(args.out, args.feeds, results, report=not getattr(args, "no_report", False))
+    report = not getattr(args, "no_report", False)
+    with contextlib.ExitStack() as stack:
+        painter = None
+        if report:
+            from service.replay.report import Painter
+
+            painter = stack.enter_context(Painter())  # loads matplotlib while the runs go
+        _lean_arrow()
+        results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
+                          columnar=not getattr(args, "exact_parse", False))
+        written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)
     for r in results:
         s = r["summary"]
         print(f"{s['name']}: {s['events']:,} events, {s['rejected']:,} rejected, "
