@@ -13,7 +13,10 @@ alike), each as its own ``python`` process timed from start to exit:
 * ``river``: the same loop with river's ``LinearRegression`` (``predict_one`` then ``learn_one`` per
   event; numeric features as they are, categoricals one-hot);
 * ``first_event``: ``trimtab replay`` of a one-event feed with ``--no-report`` (an upper bound on
-  the time from start to the first learned event, compiled kernels cached).
+  the time from start to the first learned event, compiled kernels cached);
+* ``draw``: in this process, drawing one run's report page (matplotlib loaded beforehand) from the
+  feed's trace and from the same trace ten times over (``report_draw_seconds_per_run`` and
+  ``..._10x_feed``: the page's drawing time should not grow with the feed; goal <= 0.5 s).
 
 The medians over the rounds are reported, with each process's CPU time (user + system, its
 children included) beside the wall time: on a shared machine the wall time also counts the waits
@@ -118,6 +121,37 @@ def commands(folder: Path, nd: Path, parquet: Path, one: Path) -> dict[str, list
     }
 
 
+def drawing(nd: Path, folder: Path, repeat: int) -> dict:
+    """Seconds to draw one run's report page in this process (matplotlib already loaded), for the
+    feed's own trace and for the same trace ten times over (a feed ten times longer), median of
+    ``repeat``: the envelope should make the two equal."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot  # noqa: F401
+
+    from service.config import load_config
+    from service.replay.report import write_report
+    from service.replay.runner import run_replay
+
+    res = run_replay([nd], load_config(CONFIG))
+    trace = res["trace"]
+    span = trace["event"][-1] + 1
+    long = {k: (v * 10 if k != "event" else [e + r * span for r in range(10) for e in v]) for k, v in trace.items()}
+    summary = {"feed": str(nd), "feeds": [str(nd)], "runs": [res["summary"]]}
+    out = {"checks": len(trace["event"])}
+    for name, tr in (("report_draw_seconds_per_run", trace), ("report_draw_seconds_per_run_10x_feed", long)):
+        times, cpu = [], []
+        for _ in range(repeat):
+            start, used = time.perf_counter(), time.process_time()
+            write_report(folder, summary, [dict(res, trace=tr)])
+            times.append(time.perf_counter() - start)
+            cpu.append(time.process_time() - used)
+        out[name] = round(statistics.median(times), 3)
+        out[name.replace("seconds", "cpu_seconds")] = round(statistics.median(cpu), 3)
+    return out
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--events", type=int, default=400_000)
@@ -139,6 +173,7 @@ def main() -> int:
                 times[name].append(wall)
                 cpu[name].append(used)
             print(f"round {r + 1}: " + ", ".join(f"{k} {v[-1]:.2f}" for k, v in times.items()), file=sys.stderr)
+        drawn = drawing(nd, folder, a.rounds) if not a.only or "draw" in a.only else {}
         digests = {}
         for name, out in (("ndjson", "r2"), ("parquet", "r4")):
             path = folder / out / "summary.json"
@@ -166,6 +201,7 @@ def main() -> int:
         out["first_event_seconds"] = round(med["first_event"], 3)
     if "replay" in med and "replay_no_report" in med:
         out["report_seconds"] = round(med["replay"] - med["replay_no_report"], 3)
+    out.update(drawn)
     if len(digests) == 2:
         out["digests_equal"] = digests["ndjson"] == digests["parquet"]
     for k, v in out.items():
