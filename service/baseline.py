@@ -21,6 +21,8 @@ applied in chunks of any size gives bit-identical figures.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from models.losses import loss_value
@@ -59,6 +61,7 @@ class Baseline:
         self._held = np.zeros(window)
         self._held_next = 0
         self._held_count = 0
+        self._batch: dict = {}
 
     # ------------------------------------------------------------------ predictions
     def _margins(self, sums: np.ndarray, counts: np.ndarray) -> np.ndarray:
@@ -78,24 +81,72 @@ class Baseline:
 
     # ------------------------------------------------------------------ learning
     def update(self, y: np.ndarray, mode: np.ndarray) -> float:
-        """Score then absorb the learned events (``mode == 1``) in order; keep the held-out ones
-        (``mode == 2``). Return the sum of the progressive losses added."""
+        """Score then absorb a batch's learned events (``mode == 1``) in order and keep its held-out
+        ones (``mode == 2``); return the sum of the progressive losses added.
+
+        The whole batch is done in a few vectorized passes; :meth:`segment_loss` and
+        :meth:`holdout_at` then give the figures at any position inside it (the monitor's checks).
+        """
         learned = y[mode == 1]
-        added = 0.0
-        if len(learned):
-            # prepending the running sum makes the cumulative sum the same chain of additions as
-            # absorbing the events one at a time
-            sums = np.cumsum(np.concatenate(([self.target_sum], learned)))
-            counts = self.target_count + np.arange(len(learned) + 1, dtype=np.float64)
-            losses = self._loss(self._margins(sums[:-1], counts[:-1]), learned)
-            added = float(np.sum(losses))
-            self.target_sum = float(sums[-1])
-            self.target_count += len(learned)
-            self.progressive_sum = float(np.cumsum(np.concatenate(([self.progressive_sum], losses)))[-1])
-            self.progressive_count += len(learned)
+        # prepending the running sums makes each cumulative sum the same chain of additions as
+        # absorbing the events one at a time, whatever the batch sizes
+        sums = np.cumsum(np.concatenate(([self.target_sum], learned)))
+        counts = self.target_count + np.arange(len(learned) + 1, dtype=np.float64)
+        losses = self._loss(self._margins(sums[:-1], counts[:-1]), learned)
+        chain = np.cumsum(np.concatenate(([self.progressive_sum], losses)))
+        before = np.zeros(len(y) + 1, dtype=np.int64)
+        np.cumsum(mode == 1, out=before[1:])
+        self._batch = {"sums": sums, "counts": counts, "chain": chain, "learned_before": before}
+        if len(self._held):
+            held_before = np.zeros(len(y) + 1, dtype=np.int64)
+            np.cumsum(mode == 2, out=held_before[1:])
+            kept = self._ordered()
+            held = np.concatenate((kept, y[mode == 2]))
+            # prefix sums of the held-out targets (shifted by the first, against cancellation) give
+            # each check's window sums in O(1): the squared and the log loss need only these
+            shift = float(held[0]) if len(held) else 0.0
+            prefix = np.zeros((2, len(held) + 1))
+            np.cumsum(held - shift, out=prefix[0, 1:])
+            np.cumsum((held - shift) ** 2, out=prefix[1, 1:])
+            self._batch.update(held=held, held_before=held_before + len(kept), prefix=prefix, shift=shift)
+        self.target_sum = float(sums[-1])
+        self.target_count += len(learned)
+        self.progressive_sum = float(chain[-1])
+        self.progressive_count += len(learned)
         if len(self._held):
             self._keep(y[mode == 2])
-        return added
+        return float(chain[-1] - chain[0])
+
+    def segment_loss(self, start: int, stop: int) -> float:
+        """Sum of the progressive losses of the learned events at positions ``start:stop`` of the last batch."""
+        b = self._batch
+        return float(b["chain"][b["learned_before"][stop]] - b["chain"][b["learned_before"][start]])
+
+    def holdout_at(self, position: int) -> float | None:
+        """The held-out figure as it stood before position ``position`` of the last batch (for the
+        monitor's checks; equal to :meth:`holdout_loss` at that moment up to rounding)."""
+        b = self._batch
+        if "held" not in b:
+            return None
+        k = b["learned_before"][position]
+        stop = int(b["held_before"][position])
+        start = max(0, stop - len(self._held))
+        n = stop - start
+        if not n:
+            return None
+        total, count = float(b["sums"][k]), float(b["counts"][k])
+        if self.loss == "logistic":
+            rate = (total + 0.5) / (count + 1.0)
+            margin = math.log(rate) - math.log1p(-rate)
+            mean_y = b["shift"] + (b["prefix"][0, stop] - b["prefix"][0, start]) / n
+            return max(margin, 0.0) + math.log1p(math.exp(-abs(margin))) - mean_y * margin
+        margin = total / count if count else 0.0
+        if self.loss == "squared":
+            d = margin - b["shift"]
+            s1 = b["prefix"][0, stop] - b["prefix"][0, start]
+            s2 = b["prefix"][1, stop] - b["prefix"][1, start]
+            return max(0.5 * (s2 - 2.0 * d * s1 + n * d * d) / n, 0.0)
+        return float(np.mean(self._loss(margin, b["held"][start:stop])))
 
     def _keep(self, held: np.ndarray) -> None:
         size = len(self._held)
@@ -106,6 +157,10 @@ class Baseline:
             self._held[self._held_next:self._held_next + len(part)] = part
             self._held_next = (self._held_next + len(part)) % size
         self._held_count = min(self._held_count + len(held), size)
+
+    def _ordered(self) -> np.ndarray:
+        """The kept held-out targets, oldest first."""
+        return np.roll(self._held, -self._held_next)[len(self._held) - self._held_count:]
 
     # ------------------------------------------------------------------ figures
     @property
@@ -127,10 +182,9 @@ class Baseline:
     # ------------------------------------------------------------------ state
     def state(self) -> dict:
         """Named plain values (numbers and one list of floats) that :meth:`load_state` restores."""
-        order = np.roll(self._held, -self._held_next)[len(self._held) - self._held_count:]
         return {"target_sum": self.target_sum, "target_count": self.target_count,
                 "progressive_sum": self.progressive_sum, "progressive_count": self.progressive_count,
-                "held_targets": order.tolist()}
+                "held_targets": self._ordered().tolist()}
 
     def load_state(self, state: dict) -> None:
         """Restore what :meth:`state` gave (a window of another size keeps the newest that fit)."""

@@ -169,6 +169,7 @@ class Engine:
         mode, y, rows = batch.mode, batch.y, batch.rows
         first = self.events
         actions = []
+        self.baseline.update(y, mode)
         i = 0
         while i < n:
             budget = self._check_every - self._since_check
@@ -178,7 +179,7 @@ class Engine:
             self._seg_loss += float(np.sum(out.loss[seg][learn]))
             self._seg_n += int(np.count_nonzero(learn))
             self._since_check += int(np.count_nonzero(learn))
-            self._seg_base += self.baseline.update(y[seg], mode[seg])
+            self._seg_base += self.baseline.segment_loss(i, nxt)
             refused = int(np.count_nonzero(out.code[seg] == 2))
             if self.monitor is not None and refused:
                 self.monitor.note_refused(refused)
@@ -188,6 +189,7 @@ class Engine:
             if self._since_check >= self._check_every:
                 self._since_check = 0
                 record = self._check(first + i - 1, batch.ts[i - 1], segment)  # the check keeps its held-out rows
+                record["baseline_holdout"] = self.baseline.holdout_at(i)
                 if record.get("action"):
                     actions.append(record)
             elif self.monitor is not None:
@@ -215,7 +217,6 @@ class Engine:
             record["serving"] = self.serving
         record["progressive_loss"] = self._seg_loss / self._seg_n if self._seg_n else None
         record["baseline_progressive"] = self._seg_base / self._seg_n if self._seg_n else None
-        record["baseline_holdout"] = self.baseline.holdout_loss()
         record["step"] = self.model.last_step
         record["step_scale"] = self.model.step_scale
         if "distance" not in record:  # the monitor's record has it already (an O(dim) pass)

@@ -109,3 +109,27 @@ def test_no_held_out_window_without_holdout_and_warning_when_model_is_no_better(
     good = Engine(_config())
     good.apply_events(_events(3_000))
     assert not any("baseline" in w for w in good.warnings)
+
+
+@pytest.mark.parametrize("loss", ["squared", "huber", "logistic"])
+def test_figures_inside_a_batch_equal_the_batch_cut_there(loss):
+    """What a check reads in the middle of a batch (``segment_loss``, ``holdout_at``, from prefix sums)
+    equals the figures of a baseline that was given the batch only up to that point (a direct mean
+    of the loss over the window, as :func:`models.losses.loss_value` computes it)."""
+    from service.baseline import Baseline
+
+    rng = np.random.default_rng(3)
+    n = 4_000
+    y = (rng.random(n) < 0.3).astype(float) if loss == "logistic" else rng.normal(1e3, 2.0, n)
+    mode = rng.choice(np.array([0, 1, 2], dtype=np.int8), n, p=[0.05, 0.8, 0.15])
+    whole = Baseline(loss, 250)
+    whole.update(y[:1_000], mode[:1_000])
+    whole.update(y[1_000:], mode[1_000:])
+    for cut in (1_000, 1_001, 1_777, 3_999, 4_000):
+        part = Baseline(loss, 250)
+        part.update(y[:1_000], mode[:1_000])
+        before = part.progressive_sum
+        part.update(y[1_000:cut], mode[1_000:cut])
+        assert whole.holdout_at(cut - 1_000) == pytest.approx(part.holdout_loss(), rel=1e-9, abs=1e-12)
+        assert whole.segment_loss(0, cut - 1_000) == pytest.approx(part.progressive_sum - before, rel=1e-9,
+                                                                   abs=1e-12)
