@@ -185,11 +185,6 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     :data:`DEMO_CAUTION` for the demo feed).
     """
     notes = notes or []
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
     from service.replay.figures import compare_figure, run_figure
 
     out = Path(out)
@@ -198,7 +193,7 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     sections = []
     for run, res, plot in zip(runs, results, plots):
         unit = _LOSS_UNITS.get(res.get("loss", "squared"), "loss")
-        png = run_figure(plt, run, plot, unit, notes)
+        png = run_figure(run, plot, unit, notes)
         acted = " acted" if run.get("rollbacks") or run.get("restarts") or run.get("warnings") else ""
         sections.append(
             f"<h2>{html.escape(run['name'])}</h2><p class='verdict{acted}'>{html.escape(run['verdict'])}</p>"
@@ -207,7 +202,7 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     compare = ""
     if len(runs) > 1:
         unit = _LOSS_UNITS.get(results[0].get("loss", "squared"), "loss")
-        compare = _img(compare_figure(plt, runs, plots, unit, notes), "progressive and held-out loss of every run")
+        compare = _img(compare_figure(runs, plots, unit, notes), "progressive and held-out loss of every run")
     feeds = ", ".join(html.escape(f) for f in summary.get("feeds", [summary.get("feed")]))
     verdicts = "".join(f"<li><b>{html.escape(r['name'])}</b>: {html.escape(r['verdict'])}</li>" for r in runs)
     title = "Runs side by side" if len(runs) > 1 else "The run"
@@ -273,12 +268,7 @@ def draw_in_child(out: str | Path, summary: dict, results: list[dict], notes: li
 
 def _paint() -> None:
     """The painter's side: load the plotting stack, then draw what arrives on stdin (nothing: exit)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot  # noqa: F401
-
-    import service.replay.figures  # noqa: F401
+    import service.replay.figures  # noqa: F401  (matplotlib's figure and Agg canvas)
 
     try:
         job = pickle.load(sys.stdin.buffer)
