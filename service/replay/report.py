@@ -164,8 +164,8 @@ _STYLE = """body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sa
 max-width:1100px;color:#222;padding:0 1em}table{border-collapse:collapse;font-size:13px;margin:1em 0}th,td{border:1px solid #ccc;
 padding:4px 6px;text-align:right;vertical-align:top}th{background:#f3f3f3}td:first-child,th:first-child{text-align:left}
 .caution{border:2px solid #b35806;background:#fff4e5;padding:0.8em 1em;margin:1em 0}.verdict{font-size:1.1em;
-padding:0.4em 0.8em;border-left:5px solid #1b9e77;background:#f4faf7}ul.warnings{color:#8c2d04}.verdict.acted{border-left-color:#d95f02;
-background:#fdf5ef}img{max-width:100%;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}"""
+padding:0.4em 0.8em;border-left:5px solid #1b9e77;background:#f4faf7}.verdict.acted{border-left-color:#d95f02;
+background:#fdf5ef}ul.warnings{color:#8c2d04}img{max-width:100%;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}"""
 
 
 def _img(png: bytes, alt: str) -> str:
