@@ -18,7 +18,7 @@ alike), each as its own ``python`` process timed from start to exit:
   feed's trace and from the same trace ten times over (``report_draw_seconds_per_run`` and
   ``..._10x_feed``: the page's drawing time should not grow with the feed; goal <= 0.5 s).
 
-The medians over the rounds are reported, with each process's CPU time (user + system, its
+The medians over the rounds are reported (and each ratio's median over the rounds, ``per_round``), with each process's CPU time (user + system, its
 children included) beside the wall time: on a shared machine the wall time also counts the waits
 for a core. Ratios: ``replay_vs_river`` = river / replay (goal >= 3),
 ``replay_vs_parse`` = parse / replay without report (goal >= 0.7), ``monitor_on_vs_off`` = replay
@@ -168,7 +168,8 @@ def main() -> int:
         times: dict[str, list[float]] = {k: [] for k in cmds}
         cpu: dict[str, list[float]] = {k: [] for k in cmds}
         for r in range(a.rounds):
-            for name, cmd in cmds.items():
+            # every other round runs in reverse order, so that no measurement always follows another
+            for name, cmd in (list(cmds.items()) if r % 2 == 0 else list(cmds.items())[::-1]):
                 wall, used = timed(cmd)
                 times[name].append(wall)
                 cpu[name].append(used)
@@ -189,6 +190,11 @@ def main() -> int:
     def ratio(name, top, bottom):
         if top in med and bottom in med:
             out[name] = round(med[top] / med[bottom], 3)
+            # the same ratio within each round (the two measured minutes apart, not a whole run
+            # apart), then the median: steadier when the machine's load drifts
+            out["per_round"][name] = round(statistics.median(t / b for t, b in zip(times[top], times[bottom])), 3)
+
+    out["per_round"] = {}
 
     ratio("replay_vs_river", "river", "replay")
     ratio("replay_no_report_vs_river", "river", "replay_no_report")
