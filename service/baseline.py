@@ -13,7 +13,9 @@ Two figures, both in the config's own loss so that they sit on the same axis as 
   running figure, exactly as the model's progressive loss scores it before learning;
 * **held-out**: the current figure scored on the newest ``window`` held-out events (the events the
   monitor scores the model on; they never update the figure). The monitor may drop older held-out
-  events after a restart; this window does not, so right after a restart the two can differ.
+  events after a restart and leaves events with absurd targets out of its losses; this window does
+  neither, so after a restart or a burst of wrong labels (until they leave the window) the
+  baseline's held-out figure sits higher than one on exactly the model's events would.
 
 The running figure and the loss sum are updated in event order with sequential sums, so a feed
 applied in chunks of any size gives bit-identical figures.
