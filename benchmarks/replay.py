@@ -1,192 +1,215 @@
-"""Replay speed against parsing and against river, measured in the same run.
+"""Replay speed as a user sees it: whole processes, against parsing and a river loop on the same file.
 
-A seeded 200,000-event NDJSON feed (about 215 bytes an event: 8 numeric and 1 categorical
-feature, invented sensor readings) is written to a temporary folder, then timed (best of
-``--repeat``):
+A seeded feed of the demo scenario (``service.replay.scenario.write_ndjson``, 400,000 events by
+default, no malformed lines) is written as NDJSON and the same events as Parquet. Then, in rounds
+(each round runs every measurement once, so a slow spell of the shared machine hits all of them
+alike), each as its own ``python`` process timed from start to exit:
 
+* ``replay``: ``trimtab replay FEED -c guarded.toml --out DIR`` (with its report);
+* ``replay_no_report``: the same with ``--no-report``;
+* ``replay_monitor_off``: ``--no-report`` with the same config but ``[monitor] enabled = false``;
+* ``replay_parquet``: ``--no-report`` over the Parquet file;
 * ``parse``: a loop that only ``orjson.loads`` each line (the floor of any NDJSON replay);
-* ``river``: the same loop plus river's ``LinearRegression`` ``predict_one`` + ``learn_one``;
-* ``replay``: ``trimtab replay FEED -c CONFIG --out DIR --no-report`` called in this process (read,
-  parse, validate, learn, monitor on, summary and model written; the report's plots are left
-  out, and timed separately as ``report_seconds``);
-* ``replay_exact``: the same with ``--exact-parse`` (orjson line by line, no Arrow);
-* ``parquet``: the same events as a Parquet file;
-* ``replay_mixed``: the same feed where the categorical ``site`` is a JSON number for odd sites
-  and a string for even ones (a column that mixes types, which Arrow's reader refuses as one column).
+* ``river``: the same loop with river's ``LinearRegression`` (``predict_one`` then ``learn_one`` per
+  event; numeric features as they are, categoricals one-hot);
+* ``first_event``: ``trimtab replay`` of a one-event feed with ``--no-report`` (an upper bound on
+  the time from start to the first learned event, compiled kernels cached);
+* ``draw``: in this process, drawing one run's report page (matplotlib loaded beforehand) from the
+  feed's trace and from the same trace ten times over (``report_draw_seconds_per_run`` and
+  ``..._10x_feed``: the page's drawing time should not grow with the feed; goal <= 0.5 s).
 
-The last line is one JSON object with ``replay_vs_parse`` (goal >= 0.7), ``replay_vs_river``
-(goal >= 1.5), ``parquet_events_per_s`` (goal >= 1,000,000) and ``mixed_vs_clean`` (replay of the
-mixed feed against the clean one, goal >= 0.5), and the figures behind them.
-Usage: ``python3 benchmarks/replay.py [--events N] [--repeat K]``.
+The medians over the rounds are reported (and each ratio's median over the rounds, ``per_round``), with each process's CPU time (user + system, its
+children included) beside the wall time: on a shared machine the wall time also counts the waits
+for a core. Ratios: ``replay_vs_river`` = river / replay (goal >= 3),
+``replay_vs_parse`` = parse / replay without report (goal >= 0.7), ``monitor_on_vs_off`` = replay
+without report, monitor on / off (goal <= 1.10), ``parquet_events_per_s`` (goal >= 1,000,000),
+``first_event_seconds`` (goal <= 0.3). The last line is one JSON object.
+
+Usage: ``python3 benchmarks/replay.py [--events N] [--rounds K] [--only NAME ...]``.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
+import resource
+import statistics
+import subprocess
 import sys
 import tempfile
 import time
-from argparse import Namespace
 from pathlib import Path
-
-import numpy as np
-import orjson
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+CONFIG = ROOT / "replay_data" / "configs" / "guarded.toml"
 
-NUMERIC = [f"x{k}" for k in range(8)]
-CONFIG = f"""
-name = "bench"
-[features]
-numeric = {json.dumps(NUMERIC)}
-categorical = ["site"]
-hash_bits = 10
-[model]
-loss = "squared"
-[constraint]
-set = "ball"
-radius = 50.0
-[steps]
-rule = "anytime"
-[monitor]
-holdout_share = 0.05
-window = 2000
-check_every = 250
-drift = "page_hinkley"
-serve = "averaged"
+PARSE = """
+import sys, orjson
+with open(sys.argv[1], "rb") as f:
+    for line in f:
+        orjson.loads(line)
+"""
+
+RIVER = """
+import sys, orjson
+from river import linear_model
+model = linear_model.LinearRegression()
+with open(sys.argv[1], "rb") as f:
+    for line in f:
+        e = orjson.loads(line)
+        x = {k: v for k, v in e["features"].items() if not isinstance(v, str)}
+        x.update({f"{k}={v}": 1.0 for k, v in e["features"].items() if isinstance(v, str)})
+        model.predict_one(x)
+        model.learn_one(x, e["target"])
 """
 
 
-def write_feed(folder: Path, n: int) -> tuple[Path, Path, Path]:
-    """The NDJSON feed, the same events as Parquet, and the NDJSON feed with a mixed-type categorical."""
-    rng = np.random.default_rng(2026)
-    x = np.round(rng.normal(10.0, 3.0, (n, len(NUMERIC))), 6)
-    site = rng.integers(0, 40, n)
-    w = rng.normal(0.0, 1.0, len(NUMERIC))
-    y = np.round(x @ w + 0.1 * site + rng.normal(0.0, 0.5, n), 3)
-    ts = 1772439300.0 + 15.0 * np.arange(n)
-    nd, mixed = folder / "bench.ndjson", folder / "mixed.ndjson"
-    with open(nd, "wb") as f, open(mixed, "wb") as g:
-        for i in range(n):
-            feats = dict(zip(NUMERIC, x[i].tolist()))
-            feats["site"] = f"site-{int(site[i]):03d}"
-            event = {"id": f"ev-{i:09d}", "ts": float(ts[i]), "features": feats, "target": float(y[i])}
-            f.write(orjson.dumps(event) + b"\n")
-            if site[i] % 2:
-                feats["site"] = int(site[i])
-            g.write(orjson.dumps(event) + b"\n")
+def write_feeds(folder: Path, n: int) -> tuple[Path, Path, Path]:
+    """The NDJSON feed, the same events as Parquet, and a one-event feed."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    cols = {"id": [f"ev-{i:09d}" for i in range(n)], "ts": ts, "target": y}
-    cols.update({name: x[:, k] for k, name in enumerate(NUMERIC)})
-    cols["site"] = [f"site-{int(s):03d}" for s in site]
-    pq.write_table(pa.table(cols), folder / "bench.parquet")
-    return nd, folder / "bench.parquet", mixed
+    from service.replay.scenario import generate, write_ndjson
+
+    nd = folder / "feed.ndjson"
+    write_ndjson(nd, n, seed=7, malformed_share=0.0, gzip=False)
+    cols: dict[str, list] = {"id": [], "ts": [], "target": []}
+    for e in generate(n, seed=7):
+        cols["id"].append(e["id"])
+        cols["ts"].append(e["ts"])
+        cols["target"].append(e["target"])
+        for k, v in e["features"].items():
+            cols.setdefault(k, []).append(v)
+    table = pa.table({k: pa.array(v, pa.string() if isinstance(v[0], str) else pa.float64())
+                      for k, v in cols.items()})
+    pq.write_table(table, folder / "feed.parquet")
+    one = folder / "one.ndjson"
+    with open(nd, "rb") as f:
+        one.write_bytes(f.readline())
+    return nd, folder / "feed.parquet", one
 
 
-def best(fn, repeat: int) -> float:
-    times = []
-    for _ in range(repeat):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return min(times)
+def timed(cmd: list[str]) -> tuple[float, float]:
+    """Wall-clock seconds of one process from start to exit, and the CPU seconds (user + system) that it
+    and its children used: on a shared machine the CPU time says what the wall time would be alone."""
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    start = time.perf_counter()
+    proc = subprocess.run(cmd, env=env, capture_output=True, text=True)
+    took = time.perf_counter() - start
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if proc.returncode != 0:
+        raise SystemExit(f"{' '.join(cmd)} failed:\n{proc.stderr[-3000:]}")
+    return took, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
 
 
-def interleaved(first, second, repeat: int) -> tuple[float, float]:
-    """Best times of two functions run in turns, so that a busy spell of the machine hits both."""
-    times: tuple[list, list] = ([], [])
-    for _ in range(repeat):
-        for fn, out in zip((first, second), times):
-            start = time.perf_counter()
-            fn()
-            out.append(time.perf_counter() - start)
-    return min(times[0]), min(times[1])
+def commands(folder: Path, nd: Path, parquet: Path, one: Path) -> dict[str, list[str]]:
+    off = folder / "monitor-off.toml"
+    off.write_text(CONFIG.read_text().replace("[monitor]\n", "[monitor]\nenabled = false\n"))
+    replay = [sys.executable, "-m", "service.cli", "replay"]
+    quiet = ["--no-progress"]
+    return {
+        "replay": replay + [str(nd), "-c", str(CONFIG), "--out", str(folder / "r1")] + quiet,
+        "replay_no_report": replay + [str(nd), "-c", str(CONFIG), "--out", str(folder / "r2"), "--no-report"] + quiet,
+        "replay_monitor_off": replay + [str(nd), "-c", str(off), "--out", str(folder / "r3"), "--no-report"] + quiet,
+        "replay_parquet": replay + [str(parquet), "-c", str(CONFIG), "--out", str(folder / "r4"), "--no-report"] + quiet,
+        "parse": [sys.executable, "-c", PARSE, str(nd)],
+        "river": [sys.executable, "-c", RIVER, str(nd)],
+        "first_event": replay + [str(one), "-c", str(CONFIG), "--out", str(folder / "r5"), "--no-report"] + quiet,
+    }
 
 
-def parse_loop(path: Path) -> None:
-    with open(path, "rb") as f:
-        for line in f:
-            orjson.loads(line)
+def drawing(nd: Path, folder: Path, repeat: int) -> dict:
+    """Seconds to draw one run's report page in this process (matplotlib already loaded), for the
+    feed's own trace and for the same trace ten times over (a feed ten times longer), median of
+    ``repeat``: the envelope should make the two equal."""
+    import matplotlib
 
+    matplotlib.use("Agg")
+    import matplotlib.pyplot  # noqa: F401
 
-def river_loop(path: Path) -> None:
-    from river import linear_model
+    from service.config import load_config
+    from service.replay.report import write_report
+    from service.replay.runner import run_replay
 
-    model = linear_model.LinearRegression()
-    with open(path, "rb") as f:
-        for line in f:
-            e = orjson.loads(line)
-            x = {k: v for k, v in e["features"].items() if k != "site"}
-            model.predict_one(x)
-            model.learn_one(x, e["target"])
-
-
-def replay(feed: Path, config: Path, out: Path, **flags) -> dict:
-    from service.replay.runner import replay_main
-
-    args = Namespace(feeds=[str(feed)], config=[str(config)], out=str(out), to=None, speed=None,
-                     token_env="TRIMTAB_TOKEN", batch=1000, jobs=1, no_progress=True, no_report=True,
-                     exact_parse=False)
-    for k, v in flags.items():
-        setattr(args, k, v)
-    import contextlib
-    import io
-
-    with contextlib.redirect_stdout(io.StringIO()):
-        assert replay_main(args) == 0
-    return json.loads((out / "summary.json").read_text())["runs"][0]
+    res = run_replay([nd], load_config(CONFIG))
+    trace = res["trace"]
+    span = trace["event"][-1] + 1
+    long = {k: (v * 10 if k != "event" else [e + r * span for r in range(10) for e in v]) for k, v in trace.items()}
+    summary = {"feed": str(nd), "feeds": [str(nd)], "runs": [res["summary"]]}
+    out = {"checks": len(trace["event"])}
+    for name, tr in (("report_draw_seconds_per_run", trace), ("report_draw_seconds_per_run_10x_feed", long)):
+        times, cpu = [], []
+        for _ in range(repeat):
+            start, used = time.perf_counter(), time.process_time()
+            write_report(folder, summary, [dict(res, trace=tr)])
+            times.append(time.perf_counter() - start)
+            cpu.append(time.process_time() - used)
+        out[name] = round(statistics.median(times), 3)
+        out[name.replace("seconds", "cpu_seconds")] = round(statistics.median(cpu), 3)
+    return out
 
 
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    p.add_argument("--events", type=int, default=200_000)
-    p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--events", type=int, default=400_000)
+    p.add_argument("--rounds", type=int, default=5)
+    p.add_argument("--only", nargs="*", default=None, help="measure only these (names as in the docstring)")
     a = p.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        nd, parquet, mixed = write_feed(folder, a.events)
-        config = folder / "bench.toml"
-        config.write_text(CONFIG)
-        bytes_per_event = nd.stat().st_size / a.events
-        replay(nd, config, folder / "warm")  # compile or load the kernels once
-        t_parse = best(lambda: parse_loop(nd), a.repeat)
-        t_river = best(lambda: river_loop(nd), max(1, a.repeat - 1))
-        t_replay = best(lambda: replay(nd, config, folder / "out"), a.repeat)
-        t_exact = best(lambda: replay(nd, config, folder / "exact", exact_parse=True), max(1, a.repeat - 1))
-        t_parquet = best(lambda: replay(parquet, config, folder / "pq"), a.repeat)
-        replay(mixed, config, folder / "mixed-warm")
-        t_mixed, t_clean = interleaved(lambda: replay(mixed, config, folder / "mixed"),
-                                       lambda: replay(nd, config, folder / "clean"), a.repeat)
-        mixed_run = json.loads((folder / "mixed" / "summary.json").read_text())["runs"][0]
-        mixed_exact = replay(mixed, config, folder / "mixed-exact", exact_parse=True)
-        run = replay(nd, config, folder / "final")
-        exact = json.loads((folder / "exact" / "summary.json").read_text())["runs"][0]
-        pq_run = json.loads((folder / "pq" / "summary.json").read_text())["runs"][0]
-        from service.config import load_config
-        from service.replay.runner import run_replay, write_outputs
-
-        res = run_replay([nd], load_config(config))
-        start = time.perf_counter()
-        write_outputs(folder / "report", [nd], [res])
-        t_report = time.perf_counter() - start
+        nd, parquet, one = write_feeds(folder, a.events)
+        cmds = commands(folder, nd, parquet, one)
+        if a.only:
+            cmds = {k: v for k, v in cmds.items() if k in a.only}
+        timed(cmds.get("first_event") or next(iter(cmds.values())))  # load (or compile) the kernels once
+        times: dict[str, list[float]] = {k: [] for k in cmds}
+        cpu: dict[str, list[float]] = {k: [] for k in cmds}
+        for r in range(a.rounds):
+            # every other round runs in reverse order, so that no measurement always follows another
+            for name, cmd in (list(cmds.items()) if r % 2 == 0 else list(cmds.items())[::-1]):
+                wall, used = timed(cmd)
+                times[name].append(wall)
+                cpu[name].append(used)
+            print(f"round {r + 1}: " + ", ".join(f"{k} {v[-1]:.2f}" for k, v in times.items()), file=sys.stderr)
+        drawn = drawing(nd, folder, a.rounds) if not a.only or "draw" in a.only else {}
+        digests = {}
+        for name, out in (("ndjson", "r2"), ("parquet", "r4")):
+            path = folder / out / "summary.json"
+            if path.exists():
+                digests[name] = json.loads(path.read_text())["runs"][0]["state_digest"]
+    med = {k: statistics.median(v) for k, v in times.items()}
     n = a.events
-    out = {
-        "events": n, "bytes_per_event": round(bytes_per_event, 1),
-        "parse_events_per_s": round(n / t_parse), "river_events_per_s": round(n / t_river),
-        "replay_events_per_s": round(n / t_replay), "replay_exact_events_per_s": round(n / t_exact),
-        "parquet_events_per_s": round(n / t_parquet),
-        "replay_vs_parse": round(t_parse / t_replay, 3), "replay_vs_river": round(t_river / t_replay, 3),
-        "replay_exact_vs_parse": round(t_parse / t_exact, 3), "report_seconds": round(t_report, 2),
-        "replay_mixed_events_per_s": round(n / t_mixed), "replay_clean_in_turns_events_per_s": round(n / t_clean),
-        "mixed_vs_clean": round(t_clean / t_mixed, 3),
-        "mixed_digests_equal": mixed_run["state_digest"] == mixed_exact["state_digest"],
-        "digests_equal": run["state_digest"] == exact["state_digest"] == pq_run["state_digest"],
-        "monitor_checks": run["learned"] // 250,
-    }
+    out: dict = {"events": n, "rounds": a.rounds, "seconds_median": {k: round(v, 3) for k, v in med.items()},
+                 "seconds_range": {k: [round(min(v), 3), round(max(v), 3)] for k, v in times.items()},
+                 "cpu_seconds_median": {k: round(statistics.median(v), 3) for k, v in cpu.items()},
+                 "load_average": round(os.getloadavg()[0], 2)}
+
+    def ratio(name, top, bottom):
+        if top in med and bottom in med:
+            out[name] = round(med[top] / med[bottom], 3)
+            # the same ratio within each round (the two measured minutes apart, not a whole run
+            # apart), then the median: steadier when the machine's load drifts
+            out["per_round"][name] = round(statistics.median(t / b for t, b in zip(times[top], times[bottom])), 3)
+
+    out["per_round"] = {}
+
+    ratio("replay_vs_river", "river", "replay")
+    ratio("replay_no_report_vs_river", "river", "replay_no_report")
+    ratio("replay_vs_parse", "parse", "replay_no_report")
+    ratio("replay_with_report_vs_parse", "parse", "replay")
+    ratio("monitor_on_vs_off", "replay_no_report", "replay_monitor_off")
+    if "replay_parquet" in med:
+        out["parquet_events_per_s"] = round(n / med["replay_parquet"])
+    if "first_event" in med:
+        out["first_event_seconds"] = round(med["first_event"], 3)
+    if "replay" in med and "replay_no_report" in med:
+        out["report_seconds"] = round(med["replay"] - med["replay_no_report"], 3)
+    out.update(drawn)
+    if len(digests) == 2:
+        out["digests_equal"] = digests["ndjson"] == digests["parquet"]
     for k, v in out.items():
         print(f"{k:28s} {v}", file=sys.stderr)
     print(json.dumps(out))

@@ -10,6 +10,9 @@ For each event, in order:
   and then learned;
 * every ``check_every`` learned events the monitor checks and may roll back or restart.
 
+Beside the model, the engine scores a baseline on the same events (the running mean of the target,
+or the base rate; :mod:`service.baseline`), so every figure of the model's loss has one to compare with.
+
 Because every step is deterministic, the same events in the same order under the same config give
 a bit-identical state, however they are chunked.
 """
@@ -25,6 +28,7 @@ import numpy as np
 
 from models import LinearModel, Outcome, Rows
 
+from service.baseline import Baseline
 from service.config import Config
 from service.events import Event, EventValidator
 from service.idhash import HOLDOUT_PREFIX
@@ -33,6 +37,7 @@ from service.monitor.monitor import Monitor
 __all__ = ["Applied", "Engine", "PreparedBatch", "holdout_fraction"]
 
 _TWO64 = float(2**64)
+_BASELINE_WORDS = {False: "the running mean of the target", True: "the base rate"}
 
 
 #: BLAKE2b state after the prefix; copying it and adding the id gives ``stable_hash64("holdout\x1f" + id)``
@@ -105,6 +110,9 @@ class Engine:
         self._since_check = 0
         self._seg_loss = 0.0
         self._seg_n = 0
+        self._seg_base = 0.0
+        window = config.monitor.window if self._share > 0.0 else 0
+        self.baseline = Baseline(config.model.loss, window, huber_delta=config.model.huber_delta)
         self.trace: deque = deque(maxlen=trace_limit)
 
     # ---------------------------------------------------------------- serving
@@ -122,6 +130,11 @@ class Engine:
     @property
     def progressive_loss(self) -> float | None:
         return self._loss_sum / self._loss_n if self._loss_n else None
+
+    @property
+    def baseline_loss(self) -> dict:
+        """The baseline's ``{"progressive": x, "holdout": y}`` (``None`` where there are no events)."""
+        return self.baseline.losses()
 
     def score(self, features: list[dict], iterate: str | None = None) -> tuple[np.ndarray, str]:
         """Predictions for feature dicts (validated upstream) and the iterate used."""
@@ -156,6 +169,7 @@ class Engine:
         mode, y, rows = batch.mode, batch.y, batch.rows
         first = self.events
         actions = []
+        self.baseline.update(y, mode)
         i = 0
         while i < n:
             budget = self._check_every - self._since_check
@@ -165,6 +179,7 @@ class Engine:
             self._seg_loss += float(np.sum(out.loss[seg][learn]))
             self._seg_n += int(np.count_nonzero(learn))
             self._since_check += int(np.count_nonzero(learn))
+            self._seg_base += self.baseline.segment_loss(i, nxt)
             refused = int(np.count_nonzero(out.code[seg] == 2))
             if self.monitor is not None and refused:
                 self.monitor.note_refused(refused)
@@ -174,6 +189,7 @@ class Engine:
             if self._since_check >= self._check_every:
                 self._since_check = 0
                 record = self._check(first + i - 1, batch.ts[i - 1], segment)  # the check keeps its held-out rows
+                record["baseline_holdout"] = self.baseline.holdout_at(i)
                 if record.get("action"):
                     actions.append(record)
             elif self.monitor is not None:
@@ -200,12 +216,14 @@ class Engine:
         else:
             record["serving"] = self.serving
         record["progressive_loss"] = self._seg_loss / self._seg_n if self._seg_n else None
+        record["baseline_progressive"] = self._seg_base / self._seg_n if self._seg_n else None
         record["step"] = self.model.last_step
         record["step_scale"] = self.model.step_scale
         if "distance" not in record:  # the monitor's record has it already (an O(dim) pass)
             record["distance"] = self.model.distance()
         self._seg_loss = 0.0
         self._seg_n = 0
+        self._seg_base = 0.0
         self.trace.append(record)
         return record
 
@@ -232,9 +250,26 @@ class Engine:
             return {"raw": None, "averaged": None}
         return self.monitor.holdout_losses(self.model)
 
+    @property
+    def warnings(self) -> list[str]:
+        """Plain-words warnings for the model card and the report: the monitor's own (its ``warnings``,
+        when it has any), then a model that does no better than the baseline: on the held-out window
+        when there is one (the current models), else over the progressive losses of the whole run."""
+        out = list(getattr(self.monitor, "warnings", None) or [])
+        model, base = self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
+        where = "on the held-out window"
+        if model is None or base is None:
+            model, base = self.progressive_loss, self.baseline.progressive_loss
+            where = "over the run's progressive losses"
+        if model is not None and base is not None and not model < base:
+            out.append(f"the model's loss {where} ({model:.4g}) is not below the baseline's ({base:.4g}, "
+                       f"{_BASELINE_WORDS[self._binary]}): it does no better than a constant prediction")
+        return out
+
     def counters(self) -> dict:
         return {"events": self.events, "learned": self.learned, "held_out": self.held_out, "scored": self.scored,
-                "refused": self.refused, "rejected": self.rejected, "progressive_loss": self.progressive_loss}
+                "refused": self.refused, "rejected": self.rejected, "progressive_loss": self.progressive_loss,
+                "baseline_progressive_loss": self.baseline.progressive_loss}
 
     # ---------------------------------------------------------------- state
     def to_bytes(self) -> bytes:
@@ -244,7 +279,8 @@ class Engine:
             "monitor": self.monitor.to_bytes() if self.monitor is not None else None,
             "counters": {k: getattr(self, k) for k in ("events", "learned", "held_out", "scored", "refused",
                                                         "rejected", "_loss_sum", "_loss_n", "_since_check",
-                                                        "_seg_loss", "_seg_n")},
+                                                        "_seg_loss", "_seg_n", "_seg_base")},
+            "baseline": self.baseline.state(),
             "trace": list(self.trace),
         }
         return pickle.dumps(state, protocol=5)
@@ -258,5 +294,6 @@ class Engine:
             engine.monitor.load_bytes(state["monitor"])
         for k, v in state["counters"].items():
             setattr(engine, k, v)
+        engine.baseline.load_state(state["baseline"])
         engine.trace.extend(state["trace"])
         return engine

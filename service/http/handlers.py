@@ -298,7 +298,8 @@ def _card(svc: Service, ing: Ingestor) -> dict:
         "updates_since_restart": m.updates_since_restart, "counters": eng.counters(), "serving": eng.serving,
         "norms": {"raw": m.norm("raw"), "averaged": m.norm("averaged")}, "distance": m.distance(),
         "step_scale": m.step_scale, "grad_bound": m.grad_bound, "certificate": m.certificate(),
-        "holdout_loss": eng.holdout_losses(), "state_digest": eng.state_digest,
+        "holdout_loss": eng.holdout_losses(), "baseline_loss": eng.baseline_loss, "warnings": eng.warnings,
+        "state_digest": eng.state_digest,
         "journal": {"applied_seq": ing.applied_seq, "checkpoint_seq": ing.checkpoint_seq},
         "coefficients": {"raw": m.coefficients("raw"), "averaged": m.coefficients("averaged")},
         "caution": CAUTION, **({"warning": OPEN_WRITES} if svc.token is None else {})})

@@ -70,7 +70,9 @@ def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines")
              {"event": t.recalibration_index, "label": "probe recalibration (a real change)"}]
     for r in results:
         r["summary"]["progressive_loss_outside_fault"] = outside_window(r["trace"], t.fault_start, t.fault_stop)
-    report = write_outputs(out, [feed], results, notes=notes)
+    from service.replay.report import DEMO_CAUTION
+
+    report = write_outputs(out, [feed], results, notes=notes, caution=DEMO_CAUTION)
     return {"feed": str(feed), "truth": truth, "report": str(report), "seconds": time.perf_counter() - start,
             "runs": [r["summary"] for r in results]}
 

@@ -1,33 +1,54 @@
-"""The replay report: one HTML page with PNG plots beside it, readable offline.
+"""The replay report: one self-contained HTML page with its plots embedded, readable offline.
 
-``report.html`` references ``plots/*.png`` in the same folder (no scripts, no fonts, no network),
-so the folder can be zipped, mailed and opened from disk. For each run the page shows a verdict in
-plain words, a figure of held-out loss (raw vs averaged) with the progressive loss, the step size
-and the distance between the two iterates, with rollbacks and restarts marked; one figure and one
-table compare the runs. A caution box says what the numbers are for.
+``report.html`` carries its PNG plots inside the page (``data:`` URIs; no scripts, no fonts, no
+network), so the one file can be mailed and opened from disk. For each run the page shows a verdict
+in plain words and its warnings, a figure of held-out loss (raw vs averaged) with the progressive
+loss and the baseline's (the running mean of the target, or the base rate), the step size and the
+distance between the two iterates, with rollbacks and restarts marked; with several runs one figure
+and the table compare them. A caution box says what the numbers are for: the cold-chain wording for
+the demo feed only, a general one otherwise.
+
+Every series is thinned to a min/max envelope of at most a few thousand points
+(:mod:`service.replay.plotdata`), so drawing takes the same time whatever the feed's length. A run
+without held-out events (monitor off, ``holdout_share = 0``, a feed too short) or without any
+check draws what it has and says what is missing instead of failing on an empty log axis.
+
+Run as ``python -m service.replay.report`` (a :class:`Painter`) it loads matplotlib, then draws a
+page from a pickled ``(out, summary, plots, notes, caution)`` read on stdin, in an interpreter that
+imports only numpy and matplotlib.
 """
 
 from __future__ import annotations
 
+import base64
 import html
 import math
+import os
+import pickle
+import subprocess
+import sys
 from pathlib import Path
 
-import numpy as np
+from service.replay.plotdata import thin_trace
 
-__all__ = ["CAUTION", "verdict", "write_report"]
+__all__ = ["CAUTION", "DEMO_CAUTION", "Painter", "draw_in_child", "verdict", "write_report"]
 
+#: The caution for any feed: what a replay's numbers are, and are not, good for.
 CAUTION = ("Decision support only. A replay shows how a learning configuration behaves on a recorded "
-           "feed; it does not certify a model. Temperature decisions for cold-chain food or medicine "
-           "defer to the regulated instruments, local regulations and licensed practice.")
+           "feed; it does not certify a model. Where safety, health or credit decisions are involved, keep "
+           "the established controls in place and defer to local regulations and licensed practice.")
+
+#: The demo's caution: its invented cold-chain feed stands for decisions about food and medicine.
+DEMO_CAUTION = ("Decision support only. A replay shows how a learning configuration behaves on a recorded "
+                "feed; it does not certify a model. The cold-chain data is invented for the demo. Temperature "
+                "decisions for cold-chain food or medicine defer to the regulated instruments, local "
+                "regulations and licensed practice.")
 
 _LOSS_UNITS = {
     "squared": "\u00bd error\u00b2, target unit\u00b2",
     "huber": "Huber, target unit",
     "logistic": "log loss, nats",
 }
-_ROLLBACK = dict(color="#d95f02", linestyle="--", linewidth=1.0)
-_RESTART = dict(color="#7570b3", linestyle="-", linewidth=1.6)
 
 
 def _events(items: list[dict], limit: int = 6) -> str:
@@ -84,110 +105,32 @@ def _certificate(c: dict) -> str:
     return f"none ({c.get('rule')}): {why}"
 
 
-def _notes(ax, notes: list[dict], label: bool) -> None:
-    """Known facts about the feed: shaded spans (``start``, ``stop``) and dotted lines (``event``)."""
-    for k, note in enumerate(notes):
-        text = note["label"] if label else None
-        if "start" in note:
-            ax.axvspan(note["start"], note["stop"], color="#fdb863", alpha=0.35, linewidth=0, label=text)
-        else:
-            ax.axvline(note["event"], color="#555555", linestyle=":", linewidth=1.4, label=text)
-
-
-def _marks(ax, run: dict, label: bool) -> None:
-    for k, item in enumerate(run.get("rollbacks") or []):
-        ax.axvline(item["event"], label="rollback" if label and k == 0 else None, **_ROLLBACK)
-    for k, item in enumerate(run.get("restarts") or []):
-        ax.axvline(item["event"], label="restart" if label and k == 0 else None, **_RESTART)
-
-
-def _positive(values) -> np.ndarray:
-    """Values for a log axis: non-positive and missing ones become gaps."""
-    x = np.asarray(values, dtype=np.float64)
-    return np.where(x > 0, x, np.nan)
-
-
-def _run_figure(plt, path: Path, run: dict, trace: dict, loss_unit: str, notes: list[dict]) -> None:
-    ev = np.asarray(trace["event"], dtype=np.float64)
-    fig, axes = plt.subplots(3, 1, figsize=(10, 8.2), sharex=True, height_ratios=[2.2, 1, 1])
-    ax = axes[0]
-    ax.plot(ev, _positive(trace["progressive_loss"]), color="#bbbbbb", linewidth=0.9,
-            label="progressive loss (serving iterate, before learning)")
-    ax.plot(ev, _positive(trace["holdout_raw"]), color="#1b9e77", linewidth=1.2, label="held-out loss, raw iterate")
-    ax.plot(ev, _positive(trace["holdout_avg"]), color="#e7298a", linewidth=1.6,
-            label="held-out loss, averaged iterate")
-    _notes(ax, notes, label=True)
-    _marks(ax, run, label=True)
-    ax.set_yscale("log")
-    ax.set_ylabel(f"loss ({loss_unit})")
-    ax.set_title(f"{run['name']}: {run['verdict']}", fontsize=10, loc="left", wrap=True)
-    ax.legend(loc="upper right", fontsize=8, framealpha=0.9)
-    ax.grid(True, which="major", alpha=0.3)
-    ax = axes[1]
-    ax.plot(ev, _positive(trace["step"]), color="#1f78b4", linewidth=1.2, label="step size of the last update")
-    _notes(ax, notes, label=False)
-    _marks(ax, run, label=False)
-    ax.set_yscale("log")
-    ax.set_ylabel("step size \u03b7\n(model coordinates)")
-    ax.grid(True, alpha=0.3)
-    ax = axes[2]
-    ax.plot(ev, _positive(trace["distance"]), color="#333333", linewidth=1.2, label="\u2016raw \u2212 averaged\u2016")
-    _notes(ax, notes, label=False)
-    _marks(ax, run, label=False)
-    ax.set_yscale("log")
-    ax.set_ylabel("\u2016w_raw \u2212 w_avg\u2016\u2082\n(model coordinates)")
-    ax.set_xlabel("events replayed (count)")
-    ax.grid(True, alpha=0.3)
-    ax.xaxis.set_major_formatter(plt.FuncFormatter(lambda x, _: f"{x:,.0f}"))
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-
-
-def _compare_figure(plt, path: Path, runs: list[dict], traces: list[dict], loss_unit: str, notes: list[dict]) -> None:
-    fig, axes = plt.subplots(2, 1, figsize=(10, 6.4), sharex=True)
-    for k, ax in enumerate(axes):
-        _notes(ax, notes, label=k == 0)
-    colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
-    for k, (run, trace) in enumerate(zip(runs, traces)):
-        color = colors[k % len(colors)]
-        ev = np.asarray(trace["event"], dtype=np.float64)
-        loss = np.asarray(trace["progressive_loss"], dtype=np.float64)
-        axes[0].plot(ev, _positive(loss), color=color, linewidth=1.2, label=run["name"])
-        serving = np.asarray([s == "raw" for s in trace["serving"]])
-        held = np.where(serving, trace["holdout_raw"], trace["holdout_avg"]) if len(ev) else np.zeros(0)
-        axes[1].plot(ev, _positive(held), color=color, linewidth=1.2, label=run["name"])
-    axes[0].set_ylabel(f"progressive loss\n({loss_unit})")
-    axes[0].set_title("progressive loss between checks: each event scored by the serving iterate before it "
-                      "is learned", fontsize=10, loc="left")
-    axes[1].set_ylabel(f"held-out loss of the\nserving iterate ({loss_unit})")
-    axes[1].set_xlabel("events replayed (count)")
-    for ax in axes:
-        ax.set_yscale("log")
-        ax.grid(True, alpha=0.3)
-        ax.legend(loc="upper right", fontsize=8)
-    axes[1].xaxis.set_major_formatter(plt.FuncFormatter(lambda x, _: f"{x:,.0f}"))
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-
-
 def _table(runs: list[dict]) -> str:
     head = ["run", "events", "learned", "held out", "rejected", "duplicates", "progressive loss",
-            "held-out loss raw", "held-out loss averaged", "serving", "rollbacks", "restarts", "events/s",
+            "baseline progressive loss", "held-out loss raw", "held-out loss averaged", "baseline held-out loss",
+            "serving", "rollbacks", "restarts", "warnings", "events/s",
             "certificate (bound on expected suboptimality)", "state digest"]
     rows = []
     for r in runs:
         h = r.get("holdout_loss") or {}
+        b = r.get("baseline_loss") or {}
         cells = [r["name"], _num(r["events"]), _num(r["learned"]), _num(r["held_out"]), _num(r["rejected"]),
-                 _num(r.get("duplicates", 0)), _num(r.get("progressive_loss")), _num(h.get("raw")),
-                 _num(h.get("averaged")), r.get("serving", "-"), _num(len(r.get("rollbacks") or [])),
-                 _num(len(r.get("restarts") or [])), _num(round(r.get("events_per_second") or 0)),
+                 _num(r.get("duplicates", 0)), _num(r.get("progressive_loss")), _num(b.get("progressive")),
+                 _num(h.get("raw")), _num(h.get("averaged")), _num(b.get("holdout")), r.get("serving", "-"),
+                 _num(len(r.get("rollbacks") or [])), _num(len(r.get("restarts") or [])),
+                 _num(len(r.get("warnings") or [])), _num(round(r.get("events_per_second") or 0)),
                  _certificate(r.get("certificate") or {}), f"<code>{r['state_digest'][:16]}</code>"]
         rows.append("<tr>" + "".join(f"<td>{c if c.startswith('<code>') else html.escape(c)}</td>" for c in cells)
                     + "</tr>")
-    return ("<div class='wide'><table><thead><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head) + "</tr></thead><tbody>"
-            + "".join(rows) + "</tbody></table></div>")
+    return ("<div class='wide'><table><thead><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head)
+            + "</tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>")
+
+
+def _warnings(run: dict) -> str:
+    items = run.get("warnings") or []
+    if not items:
+        return ""
+    return "<ul class='warnings'>" + "".join(f"<li><b>Warning:</b> {html.escape(w)}</li>" for w in items) + "</ul>"
 
 
 def _incidents(run: dict) -> str:
@@ -222,50 +165,117 @@ max-width:1100px;color:#222;padding:0 1em}table{border-collapse:collapse;font-si
 padding:4px 6px;text-align:right;vertical-align:top}th{background:#f3f3f3}td:first-child,th:first-child{text-align:left}
 .caution{border:2px solid #b35806;background:#fff4e5;padding:0.8em 1em;margin:1em 0}.verdict{font-size:1.1em;
 padding:0.4em 0.8em;border-left:5px solid #1b9e77;background:#f4faf7}.verdict.acted{border-left-color:#d95f02;
-background:#fdf5ef}img{max-width:100%;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}"""
+background:#fdf5ef}ul.warnings{color:#8c2d04}img{max-width:100%;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}"""
 
 
-def write_report(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None) -> Path:
-    """Render ``report.html`` and its plots into ``out``; return the page's path.
+def _img(png: bytes, alt: str) -> str:
+    data = base64.b64encode(png).decode("ascii")
+    return f"<img src='data:image/png;base64,{data}' alt='{html.escape(alt)}'>"
 
+
+def write_report(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
+                 caution: str = CAUTION) -> Path:
+    """Render ``report.html`` into ``out``; return the page's path.
+
+    ``results`` are the runs' results in summary order, each with its ``loss`` name and either its
+    ``trace`` or the trace already thinned (``plot``, :func:`~service.replay.plotdata.thin_trace`).
     ``notes`` are known facts about the feed drawn on every plot: ``{"start", "stop", "label"}``
     for a span, ``{"event", "label"}`` for a moment (the demo marks its gateway fault and its
-    recalibration this way).
+    recalibration this way). ``caution`` is the page's caution (:data:`CAUTION`, or
+    :data:`DEMO_CAUTION` for the demo feed).
     """
     notes = notes or []
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from service.replay.figures import compare_figure, run_figure
 
     out = Path(out)
-    plots = out / "plots"
-    plots.mkdir(parents=True, exist_ok=True)
     runs = summary["runs"]
-    traces = [r["trace"] for r in results]
-    unit = _LOSS_UNITS.get(results[0].get("loss", "squared"), "loss")
+    plots = [r["plot"] if "plot" in r else thin_trace(r["trace"]) for r in results]
     sections = []
-    for run, res in zip(runs, results):
+    for run, res, plot in zip(runs, results, plots):
         unit = _LOSS_UNITS.get(res.get("loss", "squared"), "loss")
-        name = f"run-{run['name']}.png"
-        _run_figure(plt, plots / name, run, res["trace"], unit, notes)
-        acted = " acted" if run.get("rollbacks") or run.get("restarts") else ""
+        png = run_figure(run, plot, unit, notes)
+        acted = " acted" if run.get("rollbacks") or run.get("restarts") or run.get("warnings") else ""
         sections.append(
             f"<h2>{html.escape(run['name'])}</h2><p class='verdict{acted}'>{html.escape(run['verdict'])}</p>"
-            f"<img src='plots/{name}' alt='held-out loss, step size and distance of run {html.escape(run['name'])}'>"
+            f"{_warnings(run)}{_img(png, 'loss with its baseline, step size and distance of run ' + run['name'])}"
             f"<h3>What the monitor did</h3>{_incidents(run)}{_rejections(run)}")
-    _compare_figure(plt, plots / "compare.png", runs, traces, unit, notes)
+    compare = ""
+    if len(runs) > 1:
+        unit = _LOSS_UNITS.get(results[0].get("loss", "squared"), "loss")
+        compare = _img(compare_figure(runs, plots, unit, notes), "progressive and held-out loss of every run")
     feeds = ", ".join(html.escape(f) for f in summary.get("feeds", [summary.get("feed")]))
     verdicts = "".join(f"<li><b>{html.escape(r['name'])}</b>: {html.escape(r['verdict'])}</li>" for r in runs)
+    title = "Runs side by side" if len(runs) > 1 else "The run"
     page = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>trimtab replay report</title>"
             f"<style>{_STYLE}</style></head><body><h1>Replay report</h1><p>Feed: <code>{feeds}</code></p>"
-            f"<div class='caution'><b>Caution.</b> {html.escape(CAUTION)}</div>"
-            f"{_notes_html(notes)}<h2>Runs side by side</h2>{_table(runs)}"
-            f"<ul>{verdicts}</ul>"
-            f"<img src='plots/compare.png' alt='progressive and held-out loss of every run'>"
-            f"{''.join(sections)}<p><small>Loss is the config's loss; events count the valid events applied, "
-            "in feed order. Model coordinates are the features after warm-up scaling. "
-            "Details: summary.json and &lt;run&gt;/model.json next to this page.</small></p></body></html>")
+            f"<div class='caution'><b>Caution.</b> {html.escape(caution)}</div>"
+            f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}<ul>{verdicts}</ul>{compare}"
+            f"{''.join(sections)}<p><small>Loss is the config's loss; the baseline predicts the running mean "
+            "of the target (the base rate for a binary task) from the events learned so far, scored on the same "
+            "events. Events count the valid events applied, in feed order. Model coordinates are the features "
+            "after warm-up scaling. Details: summary.json and &lt;run&gt;/model.json next to this page."
+            "</small></p></body></html>")
     path = out / "report.html"
     path.write_text(page, encoding="utf-8")
     return path
+
+
+class Painter:
+    """The process that draws the report, started before the replay so that it imports matplotlib while
+    the replay imports and learns (on two cores that start-up then costs no wall time).
+
+    The replay process keeps its memory (numba, its LLVM, the readers) without the plotting stack's,
+    and the painter skips importing the learning code. Use as a context manager: a painter that was
+    never asked to draw is stopped on exit.
+    """
+
+    def __init__(self) -> None:
+        root = str(Path(__file__).resolve().parents[2])
+        env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")])))
+        self._proc = subprocess.Popen([sys.executable, "-m", "service.replay.report"], stdin=subprocess.PIPE,
+                                      stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
+
+    def draw(self, out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
+             caution: str = CAUTION) -> Path:
+        """:func:`write_report` in the painter; the traces are thinned here, so little data crosses."""
+        plots = [{"plot": r["plot"] if "plot" in r else thin_trace(r["trace"]), "loss": r.get("loss", "squared")}
+                 for r in results]
+        data = pickle.dumps((str(out), summary, plots, notes, caution), protocol=5)
+        _, err = self._proc.communicate(data)
+        if self._proc.returncode != 0:
+            from models import TrimtabError
+
+            raise TrimtabError(f"drawing the report failed: {err.decode(errors='replace').strip()[-2000:]}")
+        return Path(out) / "report.html"
+
+    def __enter__(self) -> Painter:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self._proc.poll() is None:
+            self._proc.kill()
+        self._proc.communicate()
+
+
+def draw_in_child(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
+                  caution: str = CAUTION, painter: Painter | None = None) -> Path:
+    """:func:`write_report` in a separate process (``painter``, or one started now)."""
+    if painter is not None:
+        return painter.draw(out, summary, results, notes, caution)
+    with Painter() as fresh:
+        return fresh.draw(out, summary, results, notes, caution)
+
+
+def _paint() -> None:
+    """The painter's side: load the plotting stack, then draw what arrives on stdin (nothing: exit)."""
+    import service.replay.figures  # noqa: F401  (matplotlib's figure and Agg canvas)
+
+    try:
+        job = pickle.load(sys.stdin.buffer)
+    except EOFError:  # the replay ended without a report (an error, or nothing to draw)
+        return
+    write_report(*job)
+
+
+if __name__ == "__main__":
+    _paint()

@@ -20,6 +20,7 @@ whenever a repeated id arrives within the journal's retention, which is what ret
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import multiprocessing as mp
@@ -42,7 +43,8 @@ __all__ = ["BAD_LINES_KEPT", "reason_key", "replay_main", "run_all", "run_replay
 
 #: Rejected lines (and duplicate lines) kept with their line numbers in each run's summary.
 BAD_LINES_KEPT = 50
-_TRACE_KEYS = ("event", "holdout_raw", "holdout_avg", "progressive_loss", "step", "step_scale", "distance")
+_TRACE_KEYS = ("event", "holdout_raw", "holdout_avg", "progressive_loss", "baseline_progressive", "baseline_holdout",
+               "step", "step_scale", "distance")
 _QUEUE_CHUNKS = 3  # chunks parsed ahead of the engine: bounds memory, keeps both threads busy
 _PREFIX = re.compile(r"^(line|row) \d+\.?")
 
@@ -185,7 +187,7 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "events": engine.events, "learned": engine.learned, "held_out": engine.held_out,
         "scored_only": engine.scored, "refused": engine.refused, "rejected": 0, "duplicates": 0,
         "progressive_loss": engine.progressive_loss, "holdout_loss": engine.holdout_losses(),
-        "serving": engine.serving,
+        "baseline_loss": engine.baseline_loss, "warnings": engine.warnings, "serving": engine.serving,
         "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
         "rollbacks": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "rollback"],
         "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],
@@ -270,8 +272,11 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
         return [f.result() for f in futures]
 
 
-def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool = True, notes=None) -> Path:
-    """Write ``summary.json``, ``<name>/model.json`` and (unless ``report=False``) ``report.html``."""
+def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool = True, notes=None,
+                  caution: str | None = None, painter=None) -> Path:
+    """Write ``summary.json``, ``<name>/model.json`` and (unless ``report=False``) ``report.html``
+    (with ``caution``, or the general caution of :data:`service.replay.report.CAUTION`), drawn by
+    ``painter`` (a :class:`service.replay.report.Painter` started earlier) or a fresh one."""
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     feeds = [str(f) for f in feeds]
@@ -283,12 +288,11 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
         (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
     (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
     if report:
-        from service.replay.report import write_report
+        from service.replay.report import CAUTION, draw_in_child
 
         # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
         # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
-        with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
-            return pool.submit(write_report, out, summary, results, notes).result()
+        return draw_in_child(out, summary, results, notes, caution or CAUTION, painter)
     return out / "summary.json"
 
 
@@ -322,10 +326,17 @@ def replay_main(args) -> int:
     if jobs < 1:
         raise InvalidSettings("must be at least 1", where="--jobs")
     mode = progress_mode(args.no_progress)
-    _lean_arrow()
-    results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
-                      columnar=not getattr(args, "exact_parse", False))
-    written = write_outputs(args.out, args.feeds, results, report=not getattr(args, "no_report", False))
+    report = not getattr(args, "no_report", False)
+    with contextlib.ExitStack() as stack:
+        painter = None
+        if report:
+            from service.replay.report import Painter
+
+            painter = stack.enter_context(Painter())  # loads matplotlib while the runs go
+        _lean_arrow()
+        results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
+                          columnar=not getattr(args, "exact_parse", False))
+        written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)
     for r in results:
         s = r["summary"]
         print(f"{s['name']}: {s['events']:,} events, {s['rejected']:,} rejected, "

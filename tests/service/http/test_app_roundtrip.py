@@ -69,6 +69,8 @@ async def test_json_ndjson_score_card_read_your_writes(aiohttp_client, tmp_path)
     assert set(card["coefficients"]["averaged"]["numeric"]) == set(cfg.features.numeric)
     assert card["certificate"] == orjson.loads(orjson.dumps(ref.model.certificate()))
     assert "licensed practice" in card["caution"]  # the card says what scores are not good for
+    assert card["baseline_loss"] == orjson.loads(orjson.dumps(ref.baseline_loss))  # the same baseline live
+    assert card["warnings"] == ref.warnings
 
     # read-your-writes: once the learn is acknowledged, the very next score reflects it
     r = await client.post("/v1/events", json=events[1200:])

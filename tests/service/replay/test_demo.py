@@ -15,6 +15,7 @@ import sys
 import time
 from pathlib import Path
 
+from service.replay.report import DEMO_CAUTION
 from tests.service.replay.test_report import check_report
 
 ROOT = Path(__file__).resolve().parents[3]
@@ -29,7 +30,7 @@ def test_demo_report_shows_the_fault_and_the_change(tmp_path):
     print(proc.stdout)
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert f"report: {(out / 'report.html').resolve()}" in proc.stdout
-    check_report(out, ["guarded", "unguarded"])
+    check_report(out, ["guarded", "unguarded"], caution=DEMO_CAUTION)
     runs = {r["name"]: r for r in json.loads((out / "summary.json").read_text())["runs"]}
     g, u = runs["guarded"], runs["unguarded"]
     fault, recal = (31_104, 33_178), 57_024

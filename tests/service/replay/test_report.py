@@ -1,12 +1,16 @@
-"""The replay report: an HTML page that opens from disk, with real PNG plots and plain-words verdicts.
+"""The replay report: one HTML page that opens from disk, with real PNG plots embedded and plain-words verdicts.
 
-The page is parsed with Python's ``html.parser`` and the images checked against the PNG signature
-(ISO/IEC 15948, section 5.2: the eight bytes ``89 50 4E 47 0D 0A 1A 0A``) and read back with
-matplotlib's own reader, so a blank or broken file fails.
+The page is parsed with Python's ``html.parser``; every image must be a ``data:`` URI (RFC 2397)
+holding base64 (RFC 4648) whose bytes carry the PNG signature (ISO/IEC 15948, section 5.2: the
+eight bytes ``89 50 4E 47 0D 0A 1A 0A``) and read back with matplotlib's own reader, so a blank,
+broken or missing image fails. The report must render in every shape a run can take: with the
+monitor off, with ``holdout_share = 0``, with no held-out event at all, and with one config.
 """
 
 from __future__ import annotations
 
+import base64
+import io
 import json
 from html.parser import HTMLParser
 from pathlib import Path
@@ -14,7 +18,9 @@ from pathlib import Path
 import numpy as np
 
 from service.cli import main
-from service.replay.report import CAUTION, verdict
+import pytest
+
+from service.replay.report import CAUTION, DEMO_CAUTION, verdict
 from service.replay.scenario import write_ndjson
 
 ROOT = Path(__file__).resolve().parents[3]
@@ -41,22 +47,23 @@ class _Page(HTMLParser):
         self.text.append(data)
 
 
-def check_report(folder: Path, names: list[str]) -> _Page:
-    """The report in ``folder`` opens offline, every image is a non-empty PNG with ink on it."""
+def check_report(folder: Path, names: list[str], caution: str = CAUTION) -> _Page:
+    """The report in ``folder`` opens offline; every image is embedded, a non-empty PNG with ink on it."""
     import matplotlib.image as mpimg
 
     page = _Page()
     page.feed((folder / "report.html").read_text(encoding="utf-8"))
     assert page.scripts == 0 and not any("://" in u for u in page.links + page.images)
-    assert len(page.images) == len(names) + 1
+    assert len(page.images) == len(names) + (1 if len(names) > 1 else 0)
     for src in page.images:
-        path = folder / src
-        data = path.read_bytes()
-        assert data[:8] == PNG and len(data) > 20_000, src
-        pixels = mpimg.imread(path)
-        assert pixels.shape[0] > 400 and np.std(pixels[..., :3]) > 0.05, src  # not a blank canvas
+        head, _, payload = src.partition(",")
+        assert head == "data:image/png;base64", src[:40]
+        data = base64.b64decode(payload, validate=True)
+        assert data[:8] == PNG and len(data) > 20_000
+        pixels = mpimg.imread(io.BytesIO(data), format="png")
+        assert pixels.shape[0] > 400 and np.std(pixels[..., :3]) > 0.05  # not a blank canvas
     text = " ".join(page.text)
-    assert CAUTION in text
+    assert caution in text
     for name in names:
         assert name in text
     return page
@@ -87,3 +94,46 @@ def test_report_of_two_runs_opens_offline_with_plots_table_and_verdicts(tmp_path
         assert run["verdict"] in text
         assert run["state_digest"][:16] in (out / "report.html").read_text()
     assert "progressive loss" in text and "certificate" in text
+
+
+def _config(tmp_path: Path, name: str, *, replace: dict[str, str] | None = None, add: str = "") -> Path:
+    """The guarded demo config under another name, with lines replaced and ``[monitor]`` keys added."""
+    text = GUARDED.read_text().replace('name = "guarded"', f'name = "{name}"')
+    for old, new in (replace or {}).items():
+        assert old in text
+        text = text.replace(old, new)
+    text = text.replace("[monitor]\n", f"[monitor]\n{add}")
+    path = tmp_path / f"{name}.toml"
+    path.write_text(text)
+    return path
+
+
+@pytest.mark.parametrize("case", ["monitor_off", "holdout_share_0", "no_held_out_event", "one_config"])
+def test_report_renders_one_run_in_every_shape(tmp_path, case):
+    """The report renders with its images embedded for a single config, whether the run holds events out
+    or not (before, ``holdout_share = 0`` crashed on a log axis with no positive value)."""
+    n = 300 if case == "no_held_out_event" else 6_000
+    feed = tmp_path / "feed.ndjson"
+    write_ndjson(feed, n, seed=11)
+    variants = {"monitor_off": {"add": "enabled = false\n"},
+                "holdout_share_0": {"replace": {"holdout_share = 0.05": "holdout_share = 0.0"}},
+                "no_held_out_event": {"replace": {"holdout_share = 0.05": "holdout_share = 0.0005"}},
+                "one_config": {}}
+    config = _config(tmp_path, case.replace("_", "-"), **variants[case])
+    out = tmp_path / "out"
+    assert main(["replay", str(feed), "-c", str(config), "--out", str(out), "--no-progress"]) == 0
+    run = json.loads((out / "summary.json").read_text())["runs"][0]
+    assert (run["held_out"] > 0) == (case == "one_config")
+    assert (run["baseline_loss"]["holdout"] is None) == (case != "one_config")
+    assert run["baseline_loss"]["progressive"] > 0 and isinstance(run["warnings"], list)
+    page = check_report(out, [run["name"]])
+    assert "baseline progressive loss" in " ".join(page.text)
+    assert "cold-chain" not in " ".join(page.text).lower()
+
+
+def test_cautions_fit_the_feed():
+    """The cold-chain caution is the demo's (``test_demo`` checks the demo's page carries it); every other
+    feed gets the general one (the replays above check their pages carry it and never say cold-chain)."""
+    assert "cold-chain" in DEMO_CAUTION and "cold-chain" not in CAUTION.lower()
+    for words in ("decision support", "safety", "health", "credit", "local regulations", "licensed practice"):
+        assert words in CAUTION.lower()
