@@ -46,8 +46,9 @@ def _get(url: str, path: str, headers: dict | None = None) -> dict:
 
 
 def _post(url: str, path: str, obj) -> int:
+    # the first write of a fresh process may compile the learning kernels (a cold cache)
     req = urllib.request.Request(url + path, data=orjson.dumps(obj), headers={"Content-Type": "application/json"})
-    with urllib.request.urlopen(req, timeout=30) as r:
+    with urllib.request.urlopen(req, timeout=120) as r:
         return r.status
 
 
