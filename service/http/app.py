@@ -24,6 +24,9 @@ import orjson
 from aiohttp import web
 
 from service.http import handlers as h
+from service.http.bodies import BodyReader
+from service.http.looplag import LoopLag
+from service.http.transport import GuardedRunner, handler_options
 from service.config import Config, load_config
 from service.errors import error_response, from_http_exception
 from service.events import EventValidator
@@ -51,6 +54,10 @@ async def _errors(request: web.Request, handler) -> web.StreamResponse:
         resp = error_response(from_http_exception(exc, request, svc.config.service.max_body_bytes))
     except Exception as exc:
         resp = error_response(exc)
+    finally:
+        svc.bodies.release(request)
+    if resp.status in (408, 413):  # the rest of the body is not read: the connection cannot be reused
+        resp.force_close()
     resource = request.match_info.route.resource
     svc.metrics.observe(resource.canonical if resource is not None else "unmatched", resp.status,
                         time.perf_counter() - start)
@@ -71,6 +78,9 @@ async def _lifecycle(app: web.Application):
     m.watch("trimtab_model_updates", lambda: ing.engine.model.n_updates if ing.engine else 0)
     m.watch("trimtab_ready", lambda: 1.0 if ing.ready else 0.0)
     m.watch("trimtab_remembered", lambda: len(svc.labels))
+    lag = LoopLag()
+    m.watch("trimtab_loop_lag_max_seconds", lambda: lag.max_s)
+    m.watch("trimtab_body_bytes_in_flight", lambda: svc.bodies.held)
 
     async def recover():
         try:
@@ -90,7 +100,8 @@ async def _lifecycle(app: web.Application):
             await asyncio.sleep(max(1.0, min(60.0, cfg.remember_ttl_s / 4)))
             await asyncio.to_thread(svc.labels.sweep)
 
-    tasks = [asyncio.create_task(recover(), name="trimtab-recovery"), asyncio.create_task(sweep())]
+    tasks = [asyncio.create_task(recover(), name="trimtab-recovery"), asyncio.create_task(sweep()),
+             asyncio.create_task(lag.run(), name="trimtab-loop-lag")]
     yield
     if not tasks[0].done():
         tasks[0].cancel()
@@ -116,9 +127,10 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     if token is None:
         token = os.environ.get(config.service.token_env) or None
     svc = Service(config=config, data_dir=data_dir or config.service.data_dir, token=token,
-                  validator=EventValidator(config), metrics=Metrics())
+                  validator=EventValidator(config), metrics=Metrics(), bodies=BodyReader(config.service))
     svc.openapi = orjson.dumps(openapi_document(config, _version()))
-    app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes)
+    app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes,
+                          handler_args=handler_options(config.service))
     app[SERVICE] = svc
     app.router.add_post("/v1/score", h.score)
     app.router.add_post("/v1/events", h.post_events)
@@ -136,6 +148,22 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     return app
 
 
+def _descriptors_for(connections: int) -> None:
+    """Raise the soft limit on open files to fit ``connections`` plus the service's own files, or warn."""
+    import resource
+
+    want = connections + 256  # the journal, checkpoints, threads' pipes, the listening socket
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft != resource.RLIM_INFINITY and soft < want:
+        target = want if hard == resource.RLIM_INFINITY else min(want, hard)
+        with suppress(ValueError, OSError):
+            resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
+        if soft < want:
+            log.warning("open-file limit %d is below service.max_connections + 256 = %d: lower "
+                        "service.max_connections or raise the limit (ulimit -n)", soft, want)
+
+
 def _loopback(host: str) -> bool:
     if host == "localhost":
         return True
@@ -148,8 +176,10 @@ def _loopback(host: str) -> bool:
 async def _serve(app: web.Application, host: str, port: int) -> None:
     asyncio.get_running_loop().set_default_executor(
         ThreadPoolExecutor(thread_name_prefix="trimtab-parse", initializer=background_thread))
-    runner = web.AppRunner(app, access_log=None, handle_signals=False)
+    runner = GuardedRunner(app, app[SERVICE].config.service, access_log=None, handle_signals=False)
     await runner.setup()
+    app[SERVICE].metrics.watch("trimtab_connections_open", lambda: runner.server.open_connections)
+    _descriptors_for(app[SERVICE].config.service.max_connections)
     site = web.TCPSite(runner, host, port, backlog=1024)
     await site.start()
     # the objects alive now (modules, the recovered engine) never become garbage: move them out of

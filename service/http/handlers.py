@@ -20,6 +20,7 @@ from aiohttp import web
 from models import InvalidInput
 
 from service.config import Config
+from service.http.bodies import BodyReader
 from service.errors import NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType, error_response
 from service.events import Event, EventValidator, Rejection, parse_ndjson
 from service.ingest import Ingestor, encode_event
@@ -48,6 +49,7 @@ class Service:
     labels: LabelStore | None = None
     recovery_error: str | None = None
     feed: object | None = None  # service.feeds.redis_stream.StreamFeed when [feed] is configured
+    bodies: BodyReader | None = None  # set by the app factory
     openapi: bytes = b""
     started: float = field(default_factory=time.time)
 
@@ -109,6 +111,15 @@ def _too_many(n: int, limit: int, what: str) -> None:
 
 
 # -------------------------------------------------------------------- scoring
+def _score_body(body: bytes, v: EventValidator, view: tuple, max_batch: int):
+    """Parse, validate and score one body (on a worker thread when large)."""
+    obj = parse_json(body)
+    req = envelope(ScoreRequest, obj)
+    if req.events is not None:
+        _too_many(len(req.events), max_batch, "events")
+    return req, *_score(obj, req, v, view)
+
+
 def _score(obj: dict, req: ScoreRequest, v: EventValidator, view: tuple):
     if req.features is not None:
         events = [v.validate({k: obj[k] for k in ("id", "ts", "features") if k in obj}, "")]
@@ -118,7 +129,8 @@ def _score(obj: dict, req: ScoreRequest, v: EventValidator, view: tuple):
         events = [v.validate(e, w) for e, w in zip(req.events, where)]
     model, serving, seq, updates = view
     used = req.iterate or serving
-    preds = model.predict_rows(model.rows([e.features for e in events]), used)
+    # scoring never adds a categorical value to the model's values seen (the hash needs no memory)
+    preds = model.predict_rows(model.rows([e.features for e in events], remember=False), used)
     return events, where, preds, used, {"seq": seq, "updates": updates}
 
 
@@ -127,13 +139,10 @@ async def score(request: web.Request) -> web.Response:
     _auth(svc, request, write=False)
     ing = _ready(svc)
     _content_type(request, ("application/json",))
-    body = await request.read()
-    obj = parse_json(body)
-    req = envelope(ScoreRequest, obj)
-    if req.events is not None:
-        _too_many(len(req.events), svc.config.service.max_batch, "events")
+    body = await svc.bodies.read(request)
     # the view is a copy published by the learner: no lock, no waiting, safe on a worker thread too
-    events, where, preds, used, version = await _off_loop(body, _score, obj, req, svc.validator, ing.view)
+    req, events, where, preds, used, version = await _off_loop(body, _score_body, body, svc.validator, ing.view,
+                                                               svc.config.service.max_batch)
     remembered = 0
     if req.remember:
         for e, w in zip(events, where):
@@ -207,7 +216,7 @@ async def post_events(request: web.Request) -> web.Response:
     _auth(svc, request, write=True)
     ing = _ready(svc)
     ctype = _content_type(request, ("application/json", "application/x-ndjson"))
-    body = await request.read()
+    body = await svc.bodies.read(request)
     limit = svc.config.service.max_batch
     if ctype == "application/x-ndjson":
         lines = body.count(b"\n") + 1
@@ -233,7 +242,7 @@ async def post_labels(request: web.Request) -> web.Response:
     _auth(svc, request, write=True)
     _ready(svc)
     _content_type(request, ("application/json",))
-    arr = envelope(LabelsBody, parse_json(await request.read())).root
+    arr = envelope(LabelsBody, parse_json(await svc.bodies.read(request))).root
     _too_many(len(arr), svc.config.service.max_batch, "labels")
     events, payloads, rejected, where, expired, unknown, known = [], [], [], [], [], [], []
     ttl = svc.config.service.remember_ttl_s
@@ -270,8 +279,15 @@ async def model_card(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     _auth(svc, request, write=False)
     ing = _ready(svc)
+    # built and serialized on a worker thread: the card holds every coefficient and the digest hashes
+    # the whole state, which must not stall scoring on the loop
+    return web.Response(body=await asyncio.to_thread(_card_bytes, svc, ing), content_type="application/json")
+
+
+def _card_bytes(svc: Service, ing: Ingestor) -> bytes:
     with ing.lock:
-        return _json(_card(svc, ing))
+        card = _card(svc, ing)
+    return orjson.dumps(card, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
 #: shown on the model card: what the scores and the certificate are, and are not, good for
@@ -298,7 +314,7 @@ async def rollback(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     _auth(svc, request, write=True)
     ing = _ready(svc)
-    body = await request.read()
+    body = await svc.bodies.read(request)
     reason = "operator request"
     if body.strip():
         _content_type(request, ("application/json",))
