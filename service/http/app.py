@@ -79,7 +79,8 @@ async def _lifecycle(app: web.Application):
     m.watch("trimtab_ready", lambda: 1.0 if ing.ready else 0.0)
     m.watch("trimtab_remembered", lambda: len(svc.labels))
     lag = LoopLag()
-    m.watch("trimtab_loop_lag_max_seconds", lambda: lag.max_s)
+    m.watch("trimtab_loop_lag_max_seconds", lambda: lag.max_s)  # since ready
+    m.watch("trimtab_loop_busy_max_seconds", lambda: lag.busy_max_s)
     m.watch("trimtab_body_bytes_in_flight", lambda: svc.bodies.held)
 
     async def recover():
@@ -89,6 +90,7 @@ async def _lifecycle(app: web.Application):
             svc.recovery_error = f"recovery failed: {exc}"
             log.exception("recovery failed")
             return
+        lag.reset()
         if svc.config.feed is not None:  # a broker stream besides HTTP, once the journal is replayed
             from service.feeds.redis_stream import StreamFeed
 

@@ -104,6 +104,10 @@ async def _off_loop(body: bytes, fn, *args):
     return await asyncio.to_thread(fn, *args)
 
 
+def _nonblank_lines(body: bytes) -> int:
+    return sum(1 for line in body.split(b"\n") if line.strip())
+
+
 def _too_many(n: int, limit: int, what: str) -> None:
     if n > limit:
         raise PayloadTooLarge(f"{n} {what} in one request, over the {limit}-item limit (service.max_batch)",
@@ -220,8 +224,8 @@ async def post_events(request: web.Request) -> web.Response:
     limit = svc.config.service.max_batch
     if ctype == "application/x-ndjson":
         lines = body.count(b"\n") + 1
-        if lines > limit:
-            _too_many(sum(1 for line in body.split(b"\n") if line.strip()), limit, "events")
+        if lines > limit:  # counting non-blank lines of a large body is a worker thread's job
+            _too_many(await asyncio.to_thread(_nonblank_lines, body), limit, "events")
         reserved = ing.reserve(min(lines, limit))
     else:
         # every event has a "features" key: counting them bounds the batch before parsing
