@@ -3,7 +3,8 @@
 ``create_app(config)`` builds the app; its ``cleanup_ctx`` opens the journal and the label store,
 starts recovery (``/readyz`` answers 503 until the newest good checkpoint is loaded and the journal
 after it is re-applied), and on shutdown drains the queue and writes a final checkpoint. The
-handlers are in :mod:`service.http.handlers`; the ingestion loop in :mod:`service.ingest`.
+handlers are in :mod:`service.http.handlers`; the ingestion loop in :mod:`service.ingest`; body
+limits in :mod:`service.http.bodies`; connection limits and timeouts in :mod:`service.http.transport`.
 """
 
 from __future__ import annotations

@@ -3,8 +3,10 @@
 Writes need ``Authorization: Bearer <token>`` when the variable named by ``service.token_env`` is
 set and not empty; a missing or a wrong token is answered 401 (RFC 6750: both are an authentication
 failure, the message says which). Reads need it too when ``service.token_for_reads`` is true;
-``/healthz``, ``/readyz`` and ``/v1/openapi.json`` never do. Request bodies over 16 KiB are parsed
-on a worker thread, so ``/v1/score`` keeps answering while a large batch is validated.
+``/healthz``, ``/readyz`` and ``/v1/openapi.json`` never do. Bodies are read through
+:class:`service.http.bodies.BodyReader` (size limit per route, in-flight budget, deadline,
+``Content-Encoding``); those over 16 KiB are parsed on a worker thread, so ``/v1/score`` keeps
+answering while a large batch is validated. Scoring never adds to the model's categorical values.
 """
 
 from __future__ import annotations
