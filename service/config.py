@@ -149,8 +149,10 @@ class ServiceConfig(_Section):
     #: largest body of /v1/score and the operator routes (scoring needs no token: keep it small)
     max_score_bytes: int = Field(1024 * 1024, ge=1024)
     #: request body bytes held at once over all requests; past it a request gets 503 and Retry-After
-    #: before its body is read (chunked or compressed bodies count at their route's limit)
-    max_inflight_bytes: int = Field(64 * 1024 * 1024, ge=1024)
+    #: before its body is read (chunked or compressed bodies count at their route's limit). A claim
+    #: lasts until the answer, i.e. until its events are learned; parsed and queued, events take about
+    #: 12 times their NDJSON size (measured), so memory stays near the idle size plus 12 times this
+    max_inflight_bytes: int = Field(24 * 1024 * 1024, ge=1024)
     #: open connections; a new one past it closes the oldest connection that has no request in
     #: progress, or is answered 503 when every connection is busy
     max_connections: int = Field(512, ge=1)

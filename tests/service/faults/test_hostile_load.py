@@ -60,7 +60,7 @@ class Sampler(threading.Thread):
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("hostile")
-    cfg = make_config(tmp / "data", queue_limit=5_000, header_timeout_s=3.0, checkpoint_every=1_000_000)
+    cfg = make_config(tmp / "data", queue_limit=20_000, header_timeout_s=3.0, checkpoint_every=1_000_000)
     proc = serve(tmp, cfg)
     sampler = Sampler(proc.proc.pid)
     sampler.start()
@@ -212,13 +212,13 @@ def test_15mb_bodies_are_refused_within_the_memory_bound(server):
 
 def test_burst_at_ten_times_the_queue_gets_429_with_retry_after(server):
     learned_before = call(server, "GET", "/v1/model")[1]["counters"]
-    bodies = [b"\n".join(orjson.dumps(e) for e in demo_events(1000, tag=f"burst{k}-")) for k in range(50)]
+    bodies = [b"\n".join(orjson.dumps(e) for e in demo_events(4000, tag=f"burst{k}-")) for k in range(50)]
 
     def post(body):
         return exchange(server.url, request_bytes("POST", "/v1/events", body,
                                                   {"Content-Type": "application/x-ndjson"}), timeout=120)
 
-    with NormalClient(server), ThreadPoolExecutor(25) as pool:  # 50,000 events at a 5,000-event queue
+    with NormalClient(server), ThreadPoolExecutor(25) as pool:  # 200,000 events at a 20,000-event queue
         answers = list(pool.map(post, bodies))
     ok = [a for a in answers if a.status == 200]
     refused = [a for a in answers if a.status in (429, 503)]
@@ -230,6 +230,33 @@ def test_burst_at_ten_times_the_queue_gets_429_with_retry_after(server):
     c = call(server, "GET", "/v1/model")[1]["counters"]
     assert c["learned"] + c["held_out"] == learned_before["learned"] + learned_before["held_out"] + accepted
     print(f"burst: {len(ok)} accepted ({accepted} events), {len(refused)} refused with Retry-After")
+    assert server.sampler.peak < RSS_BOUND, server.sampler.peak / 2**20
+
+
+def test_burst_of_large_valid_bodies_stays_within_the_memory_bound(server):
+    """Twenty 7 MB bodies of 20,000 valid events at once: ten times what the in-flight budget
+    (``service.max_inflight_bytes``, 24 MiB) lets through together; the rest wait their turn (503,
+    or 429 while the queue is full)."""
+    def body(k):
+        events = demo_events(20_000, tag=f"large{k}-")
+        for e in events:
+            e["features"]["route"] = f"{'r' * 200}{k}"
+        return b"\n".join(orjson.dumps(e) for e in events)
+
+    bodies = [body(k) for k in range(20)]
+
+    def post(data):
+        return exchange(server.url, request_bytes("POST", "/v1/events", data,
+                                                  {"Content-Type": "application/x-ndjson"}), timeout=300)
+
+    with NormalClient(server), ThreadPoolExecutor(20) as pool:
+        answers = list(pool.map(post, bodies))
+    statuses = sorted(a.status for a in answers)
+    print(f"large bodies ({len(bodies[0]) / 2**20:.1f} MB each): statuses {statuses}; "
+          f"peak RSS so far {server.sampler.peak / 2**20:.0f} MB")
+    assert set(statuses) <= {200, 429, 503} and 200 in statuses and 503 in statuses
+    assert all(a.error()["code"] in ("busy", "overloaded") and int(a.headers["retry-after"]) >= 1
+               for a in answers if a.status != 200)
     assert server.sampler.peak < RSS_BOUND, server.sampler.peak / 2**20
 
 
