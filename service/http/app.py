@@ -14,6 +14,7 @@ import gc
 import ipaddress
 import logging
 import os
+import resource
 import signal
 import sys
 import time
@@ -153,8 +154,6 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
 
 def _descriptors_for(connections: int) -> None:
     """Raise the soft limit on open files to fit ``connections`` plus the service's own files, or warn."""
-    import resource
-
     want = connections + 256  # the journal, checkpoints, threads' pipes, the listening socket
     soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
     if soft != resource.RLIM_INFINITY and soft < want:
