@@ -52,6 +52,8 @@ class Service:
     recovery_error: str | None = None
     feed: object | None = None  # service.feeds.redis_stream.StreamFeed when [feed] is configured
     bodies: BodyReader | None = None  # set by the app factory
+    card_lock: asyncio.Lock = field(default_factory=asyncio.Lock)
+    card_cache: tuple | None = None  # (state key, serialized model card)
     openapi: bytes = b""
     started: float = field(default_factory=time.time)
 
@@ -285,9 +287,15 @@ async def model_card(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     _auth(svc, request, write=False)
     ing = _ready(svc)
-    # built and serialized on a worker thread: the card holds every coefficient and the digest hashes
-    # the whole state, which must not stall scoring on the loop
-    return web.Response(body=await asyncio.to_thread(_card_bytes, svc, ing), content_type="application/json")
+    # built and serialized on a worker thread (the card holds up to 65,536 coefficients per iterate and
+    # the digest hashes the whole state: 1-2 s of work that must not stall scoring), once per state:
+    # requests that arrive meanwhile wait for that build instead of starting their own
+    key = (id(ing.engine), ing.applied_seq, ing.checkpoint_seq, ing.engine.events, ing.engine.model.n_updates)
+    async with svc.card_lock:
+        if svc.card_cache is None or svc.card_cache[0] != key:
+            svc.card_cache = (key, await asyncio.to_thread(_card_bytes, svc, ing))
+        body = svc.card_cache[1]
+    return web.Response(body=body, content_type="application/json")
 
 
 def _card_bytes(svc: Service, ing: Ingestor) -> bytes:
