@@ -136,18 +136,19 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes,
                           handler_args=handler_options(config.service))
     app[SERVICE] = svc
-    app.router.add_post("/v1/score", h.score)
-    app.router.add_post("/v1/events", h.post_events)
-    app.router.add_post("/v1/labels", h.post_labels)
-    app.router.add_get("/v1/model", h.model_card)
-    app.router.add_post("/v1/model/rollback", h.rollback)
-    app.router.add_get("/v1/checkpoints", h.get_checkpoints)
-    app.router.add_post("/v1/checkpoints", h.post_checkpoint)
-    app.router.add_get("/v1/incidents", h.incidents)
-    app.router.add_get("/v1/openapi.json", h.openapi)
-    app.router.add_get("/metrics", h.metrics)
-    app.router.add_get("/healthz", h.healthz)
-    app.router.add_get("/readyz", h.readyz)
+    expect = svc.bodies.expect  # size and encoding checked before "100 Continue" asks for the body
+    app.router.add_post("/v1/score", h.score, expect_handler=expect)
+    app.router.add_post("/v1/events", h.post_events, expect_handler=expect)
+    app.router.add_post("/v1/labels", h.post_labels, expect_handler=expect)
+    app.router.add_get("/v1/model", h.model_card, expect_handler=expect)
+    app.router.add_post("/v1/model/rollback", h.rollback, expect_handler=expect)
+    app.router.add_get("/v1/checkpoints", h.get_checkpoints, expect_handler=expect)
+    app.router.add_post("/v1/checkpoints", h.post_checkpoint, expect_handler=expect)
+    app.router.add_get("/v1/incidents", h.incidents, expect_handler=expect)
+    app.router.add_get("/v1/openapi.json", h.openapi, expect_handler=expect)
+    app.router.add_get("/metrics", h.metrics, expect_handler=expect)
+    app.router.add_get("/healthz", h.healthz, expect_handler=expect)
+    app.router.add_get("/readyz", h.readyz, expect_handler=expect)
     app.cleanup_ctx.append(_lifecycle)
     return app
 

@@ -31,11 +31,13 @@ from dataclasses import dataclass
 
 from aiohttp import web
 from aiohttp.client_exceptions import ClientPayloadError
+from aiohttp.http import HttpVersion11
 from aiohttp.http_exceptions import HttpProcessingError
 from aiohttp.web_protocol import RequestPayloadError
 
 from service.config import ServiceConfig
-from service.errors import Busy, MalformedBody, PayloadTooLarge, RequestTimeout, UnsupportedMediaType
+from service.errors import (Busy, MalformedBody, PayloadTooLarge, RequestTimeout, ServiceError, UnsupportedMediaType,
+                            error_response)
 
 __all__ = ["BodyReader", "RouteLimit"]
 
@@ -71,6 +73,29 @@ class BodyReader:
         """The body limit of the route at ``path`` (scoring and operator routes get the small one)."""
         return self._routes.get(path, self._small)
 
+    async def expect(self, request: web.Request) -> web.StreamResponse | None:
+        """``Expect: 100-continue``: the size and encoding checks of :meth:`read` come *before* the
+        client is told to send its body (so a refused body is never sent); any other expectation is
+        a 417. The app factory sets this as every route's expect handler."""
+        if request.headers.get("Expect", "").lower() != "100-continue":
+            err = ServiceError(f"Expect: {request.headers.get('Expect')!r} not supported (only 100-continue)",
+                               where="Expect")
+            err.status, err.code = 417, "expectation_failed"
+            return _closing(error_response(err))
+        if request.version != HttpVersion11:
+            return None  # an HTTP/1.0 client does not wait for 100 Continue
+        route = self.limit_for(request.path)
+        try:
+            _encoding(request.headers.getall("Content-Encoding", []))
+            if request.content_length is not None and request.content_length > route.limit:
+                raise PayloadTooLarge(f"body of {request.content_length} bytes (Content-Length) over the "
+                                      f"{route.limit}-byte limit of {request.path} ({route.key})", where="body")
+        except ServiceError as exc:
+            return _closing(error_response(exc))
+        await request.writer.write(b"HTTP/1.1 100 Continue\r\n\r\n")
+        request.writer.output_size = 0  # the answer proper has not started (as aiohttp's own handler does)
+        return None
+
     def release(self, request: web.Request) -> None:
         """Give back what ``request``'s body claimed (the error middleware calls this once it answered)."""
         self.held -= request.get(_HELD, 0)
@@ -100,6 +125,11 @@ class BodyReader:
                                  where="body") from None
         except (RequestPayloadError, ClientPayloadError, HttpProcessingError) as exc:
             raise MalformedBody(f"the body's framing is broken: {exc}", where="body") from None
+
+
+def _closing(resp: web.Response) -> web.Response:
+    resp.force_close()
+    return resp
 
 
 def _encoding(values: list[str]) -> int | None:

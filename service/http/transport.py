@@ -58,6 +58,15 @@ def canned(status: int, code: str, message: str, where: str) -> bytes:
     return head.encode("ascii") + body
 
 
+def _shaped(exc: web.HTTPException) -> web.Response:
+    """aiohttp's plain-text refusal as the same status in the error shape."""
+    code = HTTPStatus(exc.status).phrase.lower().replace(" ", "_").replace("-", "_")
+    resp = web.Response(status=exc.status, body=orjson.dumps(error_body(code, exc.text or exc.reason, "request")),
+                        content_type="application/json")
+    resp.force_close()
+    return resp
+
+
 class _Connection(RequestHandler):
     """aiohttp's protocol, knowing whether a request is in progress, with a first-head deadline."""
 
@@ -82,6 +91,8 @@ class _Connection(RequestHandler):
             self.head_timer = None
 
     async def finish_response(self, request, resp, start_time):
+        if isinstance(resp, web.HTTPException) and resp.status >= 400:
+            resp = _shaped(resp)  # raised where no middleware runs (an expect handler of an unknown path)
         try:
             return await super().finish_response(request, resp, start_time)
         finally:

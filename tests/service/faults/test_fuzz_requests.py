@@ -245,6 +245,23 @@ def test_heads_and_bodies_that_never_finish_get_408(server):
         assert status == 408 and err["code"] == "request_timeout", err
 
 
+def test_expectations_are_checked_before_the_body_is_sent(server):
+    """RFC 9110 section 10.1.1: a server may answer a request that expects 100-continue with a final
+    status instead, and answers 417 to an expectation it does not support."""
+    head = (b"POST /v1/score HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
+            b"Content-Length: 15000000\r\nExpect: 100-continue\r\n\r\n")
+    a = exchange(server.url, head)  # the body is never sent: the answer must come without it
+    SENT["n"] += 1
+    assert a.status == 413 and a.error()["code"] == "too_large", (a.status, a.body[:200])
+    for path in ("/v1/score", "/nowhere", "/healthz"):
+        status, err = refused(server, request_bytes("POST", path, b"{}", {"Content-Type": "application/json",
+                                                                         "Expect": "teapot"}))
+        assert status == 417, (path, status, err)
+    status, err = refused(server, request_bytes("POST", "/v1/events", b"[]", {
+        "Content-Type": "application/json", "Expect": "100-continue", "Content-Encoding": "br"}))
+    assert status == 415
+
+
 def test_nothing_reached_the_model(server):
     """Runs last in this module: after every malformed request the model is the one before."""
     assert SENT["n"] >= 2000, SENT["n"]
