@@ -250,7 +250,20 @@ async def post_labels(request: web.Request) -> web.Response:
     _auth(svc, request, write=True)
     _ready(svc)
     _content_type(request, ("application/json",))
-    arr = envelope(LabelsBody, parse_json(await svc.bodies.read(request))).root
+    body = await svc.bodies.read(request)
+    # on a worker thread: each label is a lookup in the label store and maybe the journal, whose
+    # locks a commit can hold for a while; the loop never waits on them
+    events, payloads, rejected, where, expired, unknown, known = await asyncio.to_thread(_labels, svc, body)
+    resp = await _ingest(svc, events, payloads, rejected, where, note=False,
+                         extra={"expired": expired, "unknown": unknown}, known=known)
+    if events:
+        await asyncio.to_thread(svc.labels.forget, [e.id for e in events])
+    return resp
+
+
+def _labels(svc: Service, body: bytes) -> tuple:
+    """Parse a labels body and join each label with its remembered features (worker thread)."""
+    arr = envelope(LabelsBody, parse_json(body)).root
     _too_many(len(arr), svc.config.service.max_batch, "labels")
     events, payloads, rejected, where, expired, unknown, known = [], [], [], [], [], [], []
     ttl = svc.config.service.remember_ttl_s
@@ -275,11 +288,7 @@ async def post_labels(request: web.Request) -> web.Response:
         reason = (f"expired: scored {time.time() - got.scored_at:.0f} s ago, kept {ttl:g} s (service.remember_ttl_s)"
                   if state == "expired" else "unknown id: never scored with remember, or already forgotten")
         rejected.append(Rejection(f"labels[{i}].id", reason))
-    resp = await _ingest(svc, events, payloads, rejected, where, note=False,
-                         extra={"expired": expired, "unknown": unknown}, known=known)
-    if events:
-        await asyncio.to_thread(svc.labels.forget, [e.id for e in events])
-    return resp
+    return events, payloads, rejected, where, expired, unknown, known
 
 
 # -------------------------------------------------------------------- model and operator actions
