@@ -42,8 +42,9 @@ def server(tmp_path_factory):
                       body_timeout_s=2.0, header_timeout_s=2.0, max_header_bytes=4096, max_headers=32)
     proc = serve(tmp, cfg)
     try:
+        # the first apply may compile the kernels (a fresh checkout has no cache): minutes on a busy machine
         a = exchange(proc.url, request_bytes("POST", "/v1/events", orjson.dumps(demo_events(300)),
-                                             {"Content-Type": "application/json"}))
+                                             {"Content-Type": "application/json"}), timeout=300)
         assert a.status == 200 and orjson.loads(a.body)["accepted"] == 300
         proc.card = model_card(proc)
         yield proc
