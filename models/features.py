@@ -126,15 +126,20 @@ class FeatureMapper:
         """Number of coordinates (numeric features plus hash buckets), without the intercept."""
         return len(self.numeric) + (1 << self.hash_bits) if self.categorical else len(self.numeric)
 
-    def bucket(self, name: str, text: str) -> tuple[int, float]:
-        """Coordinate and sign of categorical value ``text`` of feature ``name``."""
+    def bucket(self, name: str, text: str, remember: bool = True) -> tuple[int, float]:
+        """Coordinate and sign of categorical value ``text`` of feature ``name``.
+
+        ``remember=False`` looks the value up without adding it to the values seen: the hash is
+        deterministic, so the answer is the same either way, and values that only pass through
+        (scoring) never grow the state that checkpoints and the model card carry.
+        """
         key = (name, text)
         hit = self._cache.get(key)
         if hit is not None:
             return hit
         h = stable_hash64(f"{name}\x1f{text}")
         hit = (len(self.numeric) + (h & self._mask), -1.0 if h >> 63 else 1.0)
-        if len(self._cache) < _CACHE_LIMIT:
+        if remember and len(self._cache) < _CACHE_LIMIT:
             self._cache[key] = hit
         return hit
 
@@ -142,8 +147,11 @@ class FeatureMapper:
         """The categorical values seen so far (up to 65,536), for reporting coefficients by value."""
         return dict(self._cache)
 
-    def map(self, events, where: str = "") -> Rows:
-        """Map a sequence of feature dicts; raise :class:`NonFiniteInput` on NaN/inf numbers."""
+    def map(self, events, where: str = "", remember: bool = True) -> Rows:
+        """Map a sequence of feature dicts; raise :class:`NonFiniteInput` on NaN/inf numbers.
+
+        ``remember``: whether new categorical values join the values seen (see :meth:`bucket`).
+        """
         indptr = [0]
         indices: list[int] = []
         values: list[float] = []
@@ -164,7 +172,7 @@ class FeatureMapper:
                 text = categorical_text(feats.get(name))
                 if text is None:
                     continue
-                j, sign = self.bucket(name, text)
+                j, sign = self.bucket(name, text, remember)
                 if j in indices[start:]:
                     values[start + indices[start:].index(j)] += sign
                 else:

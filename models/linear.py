@@ -137,9 +137,10 @@ class LinearModel:
         return self._mean.copy(), self._std.copy()
 
     # ------------------------------------------------------------------ mapping and validation
-    def rows(self, features, where: str = "") -> Rows:
-        """Map feature dicts to :class:`Rows` (raises :class:`NonFiniteInput` naming the feature)."""
-        return self._mapper.map(features, where=where)
+    def rows(self, features, where: str = "", remember: bool = True) -> Rows:
+        """Map feature dicts to :class:`Rows` (raises :class:`NonFiniteInput` naming the feature);
+        ``remember=False`` for rows that are only scored (new categorical values are not kept)."""
+        return self._mapper.map(features, where=where, remember=remember)
 
     def check_targets(self, targets, where: str = "") -> np.ndarray:
         """Targets as float64; raise naming the index if one is non-finite or not 0/1 for binary."""

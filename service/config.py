@@ -180,7 +180,27 @@ class ServiceConfig(_Section):
     #: whether reads (score, model card, metrics) also need the token when one is configured
     token_for_reads: bool = False
     queue_limit: int = Field(200_000, ge=1)
+    #: largest body of /v1/events and /v1/labels (after Content-Encoding is undone)
     max_body_bytes: int = Field(16 * 1024 * 1024, ge=1024)
+    #: largest body of /v1/score and the operator routes (scoring needs no token: keep it small)
+    max_score_bytes: int = Field(1024 * 1024, ge=1024)
+    #: request body bytes held at once over all requests; past it a request gets 503 and Retry-After
+    #: before its body is read (chunked or compressed bodies count at their route's limit). A claim
+    #: lasts until the answer, i.e. until its events are learned; parsed and queued, events take about
+    #: 12 times their NDJSON size (measured), so memory stays near the idle size plus 12 times this
+    max_inflight_bytes: int = Field(24 * 1024 * 1024, ge=1024)
+    #: open connections; a new one past it closes the oldest connection that has no request in
+    #: progress, or is answered 503 when every connection is busy
+    max_connections: int = Field(512, ge=1)
+    #: seconds from opening a connection to its first complete request head (else 408, closed)
+    header_timeout_s: float = Field(10.0, gt=0.0)
+    #: seconds to receive a whole request body once its head is in (else 408, closed)
+    body_timeout_s: float = Field(30.0, gt=0.0)
+    #: seconds an idle connection is kept between requests
+    keepalive_timeout_s: float = Field(15.0, gt=0.0)
+    #: longest request line and longest header field, and the most header fields in one request (431/400)
+    max_header_bytes: int = Field(8190, ge=256, le=65536)
+    max_headers: int = Field(64, ge=8, le=1024)
     max_batch: int = Field(20_000, ge=1)
     max_line_bytes: int = Field(64 * 1024, ge=256)
     remember_ttl_s: float = Field(3600.0, gt=0.0)

@@ -11,9 +11,11 @@ the part of the request at fault (``events[3].features.ambient_c``, ``line 17``,
           +-- Unauthorized            401 unauthorized: token missing or wrong
           +-- NotFound                404 not_found
           +-- MethodNotAllowed        405 method_not_allowed
+          +-- RequestTimeout          408 request_timeout: head or body not received in time
           +-- PayloadTooLarge         413 too_large: body or batch over a limit (the limit is named)
           +-- UnsupportedMediaType    415 unsupported_media_type
           +-- Overloaded              429 overloaded (with Retry-After)
+          +-- Busy                    503 busy: request bodies in flight or open connections at their limit
           +-- NotReady                503 not_ready: recovery still running or shutting down
           +-- JournalUnavailable      503 journal_unavailable: the durable write failed; retry
 """
@@ -28,9 +30,9 @@ from aiohttp import web
 from models import InvalidInput, InvalidSettings, SnapshotError, TrimtabError
 
 __all__ = [
-    "JournalUnavailable", "MalformedBody", "MethodNotAllowed", "NotFound", "NotReady", "Overloaded",
-    "PayloadTooLarge", "ServiceError", "Unauthorized", "UnsupportedMediaType", "error_body", "error_response",
-    "from_http_exception",
+    "Busy", "JournalUnavailable", "MalformedBody", "MethodNotAllowed", "NotFound", "NotReady", "Overloaded",
+    "PayloadTooLarge", "RequestTimeout", "ServiceError", "Unauthorized", "UnsupportedMediaType", "error_body",
+    "error_response", "from_http_exception",
 ]
 
 log = logging.getLogger("trimtab.service")
@@ -65,6 +67,10 @@ class MethodNotAllowed(ServiceError):
     status, code = 405, "method_not_allowed"
 
 
+class RequestTimeout(ServiceError):
+    status, code = 408, "request_timeout"
+
+
 class PayloadTooLarge(ServiceError):
     status, code = 413, "too_large"
 
@@ -84,6 +90,15 @@ class Overloaded(ServiceError):
 
     def headers(self) -> dict[str, str]:
         return {"Retry-After": str(self.retry_after)}
+
+
+class Busy(ServiceError):
+    """A shared transport budget (body bytes in flight, open connections) is used up; retry soon."""
+
+    status, code = 503, "busy"
+
+    def headers(self) -> dict[str, str]:
+        return {"Retry-After": "1"}
 
 
 class NotReady(ServiceError):

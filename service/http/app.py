@@ -3,7 +3,8 @@
 ``create_app(config)`` builds the app; its ``cleanup_ctx`` opens the journal and the label store,
 starts recovery (``/readyz`` answers 503 until the newest good checkpoint is loaded and the journal
 after it is re-applied), and on shutdown drains the queue and writes a final checkpoint. The
-handlers are in :mod:`service.http.handlers`; the ingestion loop in :mod:`service.ingest`.
+handlers are in :mod:`service.http.handlers`; the ingestion loop in :mod:`service.ingest`; body
+limits in :mod:`service.http.bodies`; connection limits and timeouts in :mod:`service.http.transport`.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import gc
 import ipaddress
 import logging
 import os
+import resource
 import signal
 import sys
 import time
@@ -24,6 +26,9 @@ import orjson
 from aiohttp import web
 
 from service.http import handlers as h
+from service.http.bodies import BodyReader
+from service.http.looplag import LoopLag
+from service.http.transport import GuardedRunner, handler_options
 from service.config import Config, ConfigError, load_config
 from service.errors import error_response, from_http_exception
 from service.events import EventValidator
@@ -51,6 +56,10 @@ async def _errors(request: web.Request, handler) -> web.StreamResponse:
         resp = error_response(from_http_exception(exc, request, svc.config.service.max_body_bytes))
     except Exception as exc:
         resp = error_response(exc)
+    finally:
+        svc.bodies.release(request)
+    if resp.status in (408, 413):  # the rest of the body is not read: the connection cannot be reused
+        resp.force_close()
     resource = request.match_info.route.resource
     svc.metrics.observe(resource.canonical if resource is not None else "unmatched", resp.status,
                         time.perf_counter() - start)
@@ -71,6 +80,10 @@ async def _lifecycle(app: web.Application):
     m.watch("trimtab_model_updates", lambda: ing.engine.model.n_updates if ing.engine else 0)
     m.watch("trimtab_ready", lambda: 1.0 if ing.ready else 0.0)
     m.watch("trimtab_remembered", lambda: len(svc.labels))
+    lag = LoopLag()
+    m.watch("trimtab_loop_lag_max_seconds", lambda: lag.max_s)  # since ready
+    m.watch("trimtab_loop_busy_max_seconds", lambda: lag.busy_max_s)
+    m.watch("trimtab_body_bytes_in_flight", lambda: svc.bodies.held)
 
     async def recover():
         try:
@@ -79,6 +92,7 @@ async def _lifecycle(app: web.Application):
             svc.recovery_error = f"recovery failed: {exc}"
             log.exception("recovery failed")
             return
+        lag.reset()
         if svc.config.feed is not None:  # a broker stream besides HTTP, once the journal is replayed
             from service.feeds.redis_stream import StreamFeed
 
@@ -90,7 +104,8 @@ async def _lifecycle(app: web.Application):
             await asyncio.sleep(max(1.0, min(60.0, cfg.remember_ttl_s / 4)))
             await asyncio.to_thread(svc.labels.sweep)
 
-    tasks = [asyncio.create_task(recover(), name="trimtab-recovery"), asyncio.create_task(sweep())]
+    tasks = [asyncio.create_task(recover(), name="trimtab-recovery"), asyncio.create_task(sweep()),
+             asyncio.create_task(lag.run(), name="trimtab-loop-lag")]
     yield
     if not tasks[0].done():
         tasks[0].cancel()
@@ -145,24 +160,40 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     if token is None:
         log.warning("%s", h.OPEN_WRITES)
     svc = Service(config=config, data_dir=data_dir or config.service.data_dir, token=token,
-                  validator=EventValidator(config), metrics=Metrics())
+                  validator=EventValidator(config), metrics=Metrics(), bodies=BodyReader(config.service))
     svc.openapi = orjson.dumps(openapi_document(config, _version()))
-    app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes)
+    app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes,
+                          handler_args=handler_options(config.service))
     app[SERVICE] = svc
-    app.router.add_post("/v1/score", h.score)
-    app.router.add_post("/v1/events", h.post_events)
-    app.router.add_post("/v1/labels", h.post_labels)
-    app.router.add_get("/v1/model", h.model_card)
-    app.router.add_post("/v1/model/rollback", h.rollback)
-    app.router.add_get("/v1/checkpoints", h.get_checkpoints)
-    app.router.add_post("/v1/checkpoints", h.post_checkpoint)
-    app.router.add_get("/v1/incidents", h.incidents)
-    app.router.add_get("/v1/openapi.json", h.openapi)
-    app.router.add_get("/metrics", h.metrics)
-    app.router.add_get("/healthz", h.healthz)
-    app.router.add_get("/readyz", h.readyz)
+    expect = svc.bodies.expect  # size and encoding checked before "100 Continue" asks for the body
+    app.router.add_post("/v1/score", h.score, expect_handler=expect)
+    app.router.add_post("/v1/events", h.post_events, expect_handler=expect)
+    app.router.add_post("/v1/labels", h.post_labels, expect_handler=expect)
+    app.router.add_get("/v1/model", h.model_card, expect_handler=expect)
+    app.router.add_post("/v1/model/rollback", h.rollback, expect_handler=expect)
+    app.router.add_get("/v1/checkpoints", h.get_checkpoints, expect_handler=expect)
+    app.router.add_post("/v1/checkpoints", h.post_checkpoint, expect_handler=expect)
+    app.router.add_get("/v1/incidents", h.incidents, expect_handler=expect)
+    app.router.add_get("/v1/openapi.json", h.openapi, expect_handler=expect)
+    app.router.add_get("/metrics", h.metrics, expect_handler=expect)
+    app.router.add_get("/healthz", h.healthz, expect_handler=expect)
+    app.router.add_get("/readyz", h.readyz, expect_handler=expect)
     app.cleanup_ctx.append(_lifecycle)
     return app
+
+
+def _descriptors_for(connections: int) -> None:
+    """Raise the soft limit on open files to fit ``connections`` plus the service's own files, or warn."""
+    want = connections + 256  # the journal, checkpoints, threads' pipes, the listening socket
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft != resource.RLIM_INFINITY and soft < want:
+        target = want if hard == resource.RLIM_INFINITY else min(want, hard)
+        with suppress(ValueError, OSError):
+            resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+        soft = resource.getrlimit(resource.RLIMIT_NOFILE)[0]
+        if soft < want:
+            log.warning("open-file limit %d is below service.max_connections + 256 = %d: lower "
+                        "service.max_connections or raise the limit (ulimit -n)", soft, want)
 
 
 def _loopback(host: str) -> bool:
@@ -177,8 +208,10 @@ def _loopback(host: str) -> bool:
 async def _serve(app: web.Application, host: str, port: int) -> None:
     asyncio.get_running_loop().set_default_executor(
         ThreadPoolExecutor(thread_name_prefix="trimtab-parse", initializer=background_thread))
-    runner = web.AppRunner(app, access_log=None, handle_signals=False)
+    runner = GuardedRunner(app, app[SERVICE].config.service, access_log=None, handle_signals=False)
     await runner.setup()
+    app[SERVICE].metrics.watch("trimtab_connections_open", lambda: runner.server.open_connections)
+    _descriptors_for(app[SERVICE].config.service.max_connections)
     site = web.TCPSite(runner, host, port, backlog=1024)
     await site.start()
     # the objects alive now (modules, the recovered engine) never become garbage: move them out of

@@ -6,8 +6,10 @@ a missing or a wrong token is answered 401 (RFC 6750: both are an authentication
 message says which). The app factory refuses to build an app without a token unless
 ``service.auth = "none"``, which opens writes and says so on the model card. Reads need the token
 too when ``service.token_for_reads`` is true; ``/healthz``, ``/readyz`` and ``/v1/openapi.json``
-never do. Request bodies over 16 KiB are parsed on a worker thread, so ``/v1/score`` keeps
-answering while a large batch is validated.
+never do. Bodies are read through :class:`service.http.bodies.BodyReader` (size limit per route,
+in-flight budget, deadline, ``Content-Encoding``); those over 16 KiB are parsed on a worker thread, so
+``/v1/score`` keeps answering while a large batch is validated. Scoring never adds to the model's
+categorical values.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ from aiohttp import web
 from models import InvalidInput
 
 from service.config import Config
+from service.http.bodies import BodyReader
 from service.errors import NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType, error_response
 from service.events import Event, EventValidator, Rejection, check_id, parse_ndjson
 from service.ingest import Ingestor, encode_event
@@ -51,6 +54,9 @@ class Service:
     labels: LabelStore | None = None
     recovery_error: str | None = None
     feed: object | None = None  # service.feeds.redis_stream.StreamFeed when [feed] is configured
+    bodies: BodyReader | None = None  # set by the app factory
+    card_lock: asyncio.Lock = field(default_factory=asyncio.Lock)
+    card_cache: tuple | None = None  # (state key, serialized model card)
     openapi: bytes = b""
     started: float = field(default_factory=time.time)
 
@@ -105,6 +111,10 @@ async def _off_loop(body: bytes, fn, *args):
     return await asyncio.to_thread(fn, *args)
 
 
+def _nonblank_lines(body: bytes) -> int:
+    return sum(1 for line in body.split(b"\n") if line.strip())
+
+
 def _too_many(n: int, limit: int, what: str) -> None:
     if n > limit:
         raise PayloadTooLarge(f"{n} {what} in one request, over the {limit}-item limit (service.max_batch)",
@@ -112,6 +122,15 @@ def _too_many(n: int, limit: int, what: str) -> None:
 
 
 # -------------------------------------------------------------------- scoring
+def _score_body(body: bytes, v: EventValidator, view: tuple, max_batch: int):
+    """Parse, validate and score one body (on a worker thread when large)."""
+    obj = parse_json(body)
+    req = envelope(ScoreRequest, obj)
+    if req.events is not None:
+        _too_many(len(req.events), max_batch, "events")
+    return req, *_score(obj, req, v, view)
+
+
 def _score(obj: dict, req: ScoreRequest, v: EventValidator, view: tuple):
     if req.features is not None:
         events = [v.validate({k: obj[k] for k in ("id", "ts", "features") if k in obj}, "")]
@@ -121,7 +140,8 @@ def _score(obj: dict, req: ScoreRequest, v: EventValidator, view: tuple):
         events = [v.validate(e, w) for e, w in zip(req.events, where)]
     model, serving, seq, updates = view
     used = req.iterate or serving
-    preds = model.predict_rows(model.rows([e.features for e in events]), used)
+    # scoring never adds a categorical value to the model's values seen (the hash needs no memory)
+    preds = model.predict_rows(model.rows([e.features for e in events], remember=False), used)
     return events, where, preds, used, {"seq": seq, "updates": updates}
 
 
@@ -130,17 +150,13 @@ async def score(request: web.Request) -> web.Response:
     _auth(svc, request, write=False)
     ing = _ready(svc)
     _content_type(request, ("application/json",))
-    body = await request.read()
-    obj = parse_json(body)
-    req = envelope(ScoreRequest, obj)
+    body = await svc.bodies.read(request)
+    # the view is a copy published by the learner: no lock, no waiting, safe on a worker thread too
+    req, events, where, preds, used, version = await _off_loop(body, _score_body, body, svc.validator, ing.view,
+                                                               svc.config.service.max_batch)
+    remembered = 0
     if req.remember:  # remembered features are state: another client's label would join them
         _auth(svc, request, write=True)
-    if req.events is not None:
-        _too_many(len(req.events), svc.config.service.max_batch, "events")
-    # the view is a copy published by the learner: no lock, no waiting, safe on a worker thread too
-    events, where, preds, used, version = await _off_loop(body, _score, obj, req, svc.validator, ing.view)
-    remembered = 0
-    if req.remember:
         for e, w in zip(events, where):
             if e.id is None:
                 raise InvalidInput("required when remember is true", where=f"{w}.id" if w else "id")
@@ -212,12 +228,12 @@ async def post_events(request: web.Request) -> web.Response:
     _auth(svc, request, write=True)
     ing = _ready(svc)
     ctype = _content_type(request, ("application/json", "application/x-ndjson"))
-    body = await request.read()
+    body = await svc.bodies.read(request)
     limit = svc.config.service.max_batch
     if ctype == "application/x-ndjson":
         lines = body.count(b"\n") + 1
-        if lines > limit:
-            _too_many(sum(1 for line in body.split(b"\n") if line.strip()), limit, "events")
+        if lines > limit:  # counting non-blank lines of a large body is a worker thread's job
+            _too_many(await asyncio.to_thread(_nonblank_lines, body), limit, "events")
         reserved = ing.reserve(min(lines, limit))
     else:
         # every event has a "features" key: counting them bounds the batch before parsing
@@ -238,7 +254,20 @@ async def post_labels(request: web.Request) -> web.Response:
     _auth(svc, request, write=True)
     _ready(svc)
     _content_type(request, ("application/json",))
-    arr = envelope(LabelsBody, parse_json(await request.read())).root
+    body = await svc.bodies.read(request)
+    # on a worker thread: each label is a lookup in the label store and maybe the journal, whose
+    # locks a commit can hold for a while; the loop never waits on them
+    events, payloads, rejected, where, expired, unknown, known = await asyncio.to_thread(_labels, svc, body)
+    resp = await _ingest(svc, events, payloads, rejected, where, note=False,
+                         extra={"expired": expired, "unknown": unknown}, known=known)
+    if events:
+        await asyncio.to_thread(svc.labels.forget, [e.id for e in events])
+    return resp
+
+
+def _labels(svc: Service, body: bytes) -> tuple:
+    """Parse a labels body and join each label with its remembered features (worker thread)."""
+    arr = envelope(LabelsBody, parse_json(body)).root
     _too_many(len(arr), svc.config.service.max_batch, "labels")
     events, payloads, rejected, where, expired, unknown, known = [], [], [], [], [], [], []
     ttl = svc.config.service.remember_ttl_s
@@ -264,11 +293,7 @@ async def post_labels(request: web.Request) -> web.Response:
         reason = (f"expired: scored {time.time() - got.scored_at:.0f} s ago, kept {ttl:g} s (service.remember_ttl_s)"
                   if state == "expired" else "unknown id: never scored with remember, or already forgotten")
         rejected.append(Rejection(f"labels[{i}].id", reason))
-    resp = await _ingest(svc, events, payloads, rejected, where, note=False,
-                         extra={"expired": expired, "unknown": unknown}, known=known)
-    if events:
-        await asyncio.to_thread(svc.labels.forget, [e.id for e in events])
-    return resp
+    return events, payloads, rejected, where, expired, unknown, known
 
 
 # -------------------------------------------------------------------- model and operator actions
@@ -276,8 +301,21 @@ async def model_card(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     _auth(svc, request, write=False)
     ing = _ready(svc)
+    # built and serialized on a worker thread (the card holds up to 65,536 coefficients per iterate and
+    # the digest hashes the whole state: 1-2 s of work that must not stall scoring), once per state:
+    # requests that arrive meanwhile wait for that build instead of starting their own
+    key = (id(ing.engine), ing.applied_seq, ing.checkpoint_seq, ing.engine.events, ing.engine.model.n_updates)
+    async with svc.card_lock:
+        if svc.card_cache is None or svc.card_cache[0] != key:
+            svc.card_cache = (key, await asyncio.to_thread(_card_bytes, svc, ing))
+        body = svc.card_cache[1]
+    return web.Response(body=body, content_type="application/json")
+
+
+def _card_bytes(svc: Service, ing: Ingestor) -> bytes:
     with ing.lock:
-        return _json(_card(svc, ing))
+        card = _card(svc, ing)
+    return orjson.dumps(card, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
 #: on the model card when ``service.auth = "none"`` (the app factory logs it at start too)
@@ -309,7 +347,7 @@ async def rollback(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     _auth(svc, request, write=True)
     ing = _ready(svc)
-    body = await request.read()
+    body = await svc.bodies.read(request)
     reason = "operator request"
     if body.strip():
         _content_type(request, ("application/json",))

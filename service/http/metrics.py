@@ -43,6 +43,11 @@ class Metrics:
                 ("trimtab_model_updates", "SGD updates the model has made"),
                 ("trimtab_ready", "1 once recovery has finished"),
                 ("trimtab_remembered", "Scored events waiting for their label"),
+                ("trimtab_loop_lag_max_seconds", "Longest the event loop was late waking a 10 ms timer since ready"),
+                ("trimtab_loop_busy_max_seconds", "Longest CPU time the event loop's thread spent past a 10 ms "
+                 "timer since ready (work on the loop itself)"),
+                ("trimtab_body_bytes_in_flight", "Request body bytes claimed by requests being answered"),
+                ("trimtab_connections_open", "Open client connections (trimtab serve only)"),
             )}
         self._children: dict = {}
 

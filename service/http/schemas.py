@@ -191,7 +191,7 @@ def _kind(v) -> str:
 _BEARER = [{"bearer": []}]
 
 
-def _op(summary: str, req: str | None, resp: str, write: bool, codes=(400, 401, 413, 415, 422, 429, 503),
+def _op(summary: str, req: str | None, resp: str, write: bool, codes=(400, 401, 408, 413, 415, 422, 429, 503),
         ndjson: bool = False) -> dict:
     ref = {"$ref": f"#/components/schemas/{resp}"}
     err = {"description": "error", "content": {"application/json": {"schema": {
@@ -222,13 +222,13 @@ def openapi_document(config, version: str) -> dict:
     plain = {"summary": "", "responses": {"200": {"description": "ok"}, "503": {"description": "not ready"}}}
     paths = {
         "/v1/score": {"post": _op("score one event or a list", "ScoreRequest", "ScoreResponse", reads,
-                                  (400, 401, 413, 415, 422, 503))},
+                                  (400, 401, 408, 413, 415, 422, 503))},
         "/v1/events": {"post": _op("learn labelled events (JSON array or NDJSON)", "EventsBody", "IngestResponse",
                                    True, ndjson=True)},
         "/v1/labels": {"post": _op("labels for events scored with remember", "LabelsBody", "IngestResponse", True)},
         "/v1/model": {"get": _op("model card", None, "Object", reads, (401, 503))},
         "/v1/model/rollback": {"post": _op("roll the raw iterate back to the average", "RollbackRequest",
-                                           "Object", True, (400, 401, 422, 429, 503))},
+                                           "Object", True, (400, 401, 408, 413, 415, 422, 429, 503))},
         "/v1/checkpoints": {"get": _op("stored checkpoints", None, "Object", reads, (401, 503)),
                             "post": _op("write a checkpoint now", None, "Object", True, (401, 429, 503))},
         "/v1/incidents": {"get": _op("rollbacks, restarts, rejected bursts, service incidents", None, "Object",

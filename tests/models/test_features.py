@@ -102,6 +102,28 @@ def test_buckets_are_signed_blake2b():
     assert signs == {-1.0, 1.0}
 
 
+def test_rows_mapped_without_remembering_are_the_same_and_keep_nothing():
+    """Scoring maps with ``remember=False``: the same rows, bit for bit, as the independent hash for
+    values seen before and never seen, and the values seen are not grown (nor their coefficients)."""
+    model, _ = _trained(hash_bits=8)
+    seen = model.mapper.known_values()
+    known = [{"ambient_c": 3.0, "van": text} for (name, text) in list(seen)[:20] if name == "van"]
+    fresh = [{"ambient_c": 3.0, "van": f"never-seen-{k}", "route": f"R-{k}" * (k % 5 + 1)} for k in range(500)]
+    for events in (known, fresh):
+        quiet, loud = model.rows(events, remember=False), model.clone().rows(events)
+        assert quiet.indices.tolist() == loud.indices.tolist() and quiet.values.tolist() == loud.values.tolist()
+        assert model.predict_rows(quiet).tolist() == model.predict_rows(loud).tolist()
+    for e in fresh[:50]:  # never-seen values land in the independently computed signed buckets
+        rows = model.rows([e], remember=False)
+        expected = {0: 3.0}
+        for name in ("van", "route"):
+            j, sign = bucket(name, e[name], 3, 8)
+            expected[j] = expected.get(j, 0.0) + sign
+        assert dict(zip(rows.indices.tolist(), rows.values.tolist())) == expected
+    assert model.mapper.known_values() == seen
+    assert set(model.coefficients()["categorical"]["van"]) == {t for (n, t) in seen if n == "van"}
+
+
 def _collisions(hash_bits):
     """Pairs (van value, route value) that share a bucket, one with equal and one with opposite signs."""
     found = {}
