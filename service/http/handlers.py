@@ -20,7 +20,8 @@ from aiohttp import web
 from models import InvalidInput
 
 from service.config import Config
-from service.errors import NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType, error_response
+from service.errors import (JournalUnavailable, NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType,
+                            error_response)
 from service.events import Event, EventValidator, Rejection, parse_ndjson
 from service.ingest import Ingestor, encode_event
 from service.storage.labels import LabelStore
@@ -150,8 +151,9 @@ async def score(request: web.Request) -> web.Response:
 # -------------------------------------------------------------------- learning
 def _parse_ndjson(body: bytes, v: EventValidator):
     """NDJSON through the validator's fast path (run on a worker thread)."""
-    events, rejected, where = parse_ndjson(body, v)
-    return events, [encode_event(e) for e in events], rejected, where
+    events, rejected, lines = parse_ndjson(body, v)
+    # positions count from 0 like array indices (``duplicates``); line numbers count from 1
+    return events, [encode_event(e) for e in events], rejected, [n - 1 for n in lines]
 
 
 def _parse_array(body: bytes, v: EventValidator, limit: int):
@@ -251,7 +253,7 @@ async def post_labels(request: web.Request) -> web.Response:
             payloads.append(encode_event(e))
             where.append(i)
             continue
-        if state == "unknown" and svc.ingestor.journaled(lab.id):
+        if state == "unknown" and await svc.ingestor.journaled(lab.id):
             known.append(i)  # learned before (its entry was forgotten then): a retry, not an error
             continue
         (expired if state == "expired" else unknown).append(lab.id)
@@ -347,6 +349,8 @@ async def healthz(request: web.Request) -> web.Response:
 async def readyz(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     ing = _ready(svc)
+    if ing.fault is not None:
+        raise JournalUnavailable(f"not ready: writes are refused: {ing.fault}", where="storage")
     return _json({"ready": True, "applied_seq": ing.applied_seq, "recovery": ing.recovery,
                   "feed": svc.feed.status() if svc.feed is not None else None})
 

@@ -21,6 +21,7 @@ import pytest
 
 from service.config import ConfigError
 from service.storage.journal import EVENT, NOTE, Journal
+from service.storage.seen import id_key
 from tests.service.servicekit import ROOT
 
 
@@ -31,30 +32,37 @@ def payload(ident: str, x: float) -> bytes:
 def test_rows_and_runs_commit_in_order_with_exact_payloads(tmp_path):
     j = Journal(tmp_path)
     run = [payload(f"a{k}", k / 7) for k in range(50)]
-    j.append([(1, run), (51, None, NOTE, orjson.dumps([3, 53, None])), (52, [payload("b", 0.1)])])
-    rows = sqlite3.connect(tmp_path / "trimtab.sqlite").execute(
-        "SELECT seq, id, kind, typeof(payload), payload FROM journal ORDER BY seq").fetchall()
+    keys = [(id_key(f"a{k}"), k + 1) for k in range(50)] + [(id_key("b"), 52)]
+    j.append([(1, [f"a{k}" for k in range(50)], run), (51, None, NOTE, orjson.dumps([3, 53, None])),
+              (52, ["b"], [payload("b", 0.1)])], keys)
+    assert j.known([k for k, _ in keys] + [id_key("c")]) == {k for k, _ in keys}
+    assert [r[0] for r in j.rows_after(49, limit=2)] == [50, 51]
+    assert j.last_seq() == 52
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    rows = db.execute("SELECT seq, id, kind, typeof(payload), payload FROM journal ORDER BY seq").fetchall()
     assert [r[0] for r in rows] == list(range(1, 53))
     assert [r[1] for r in rows[:50]] == [f"a{k}" for k in range(50)] and rows[50][1] is None and rows[51][1] == "b"
     assert [r[2] for r in rows] == [EVENT] * 50 + [NOTE, EVENT]
     assert {r[3] for r in rows} == {"blob"}
     assert [r[4] for r in rows[:50]] == run  # byte for byte, floats included
-    assert j.ids() == {**{f"a{k}": k + 1 for k in range(50)}, "b": 52}
-    assert [r[0] for r in j.rows_after(49, limit=2)] == [50, 51]
-    assert j.last_seq() == 52
+    # the index holds the BLAKE2b-128 digest of each id (hashlib as the outside reference)
+    got = dict(db.execute("SELECT seq, h FROM seen"))
+    assert got[52] == hashlib.blake2b(b"b", digest_size=16).digest() and len(got) == 51
 
 
-def test_a_duplicate_id_rolls_the_whole_transaction_back(tmp_path):
+def test_an_indexed_key_rolls_the_whole_transaction_back(tmp_path):
     j = Journal(tmp_path)
-    j.append([(1, [payload("a", 1.0)])])
+    j.append([(1, ["a"], [payload("a", 1.0)])], [(id_key("a"), 1)])
     with pytest.raises(sqlite3.IntegrityError):
-        j.append([(2, [payload("b", 1.0), payload("a", 2.0)])])
-    assert j.count() == 1 and j.ids() == {"a": 1}
+        j.append([(2, ["b", "a"], [payload("b", 1.0), payload("a", 2.0)])], [(id_key("b"), 2), (id_key("a"), 3)])
+    assert j.count() == 1 and j.known([id_key("a"), id_key("b")]) == {id_key("a")}
 
 
 def test_checkpoints_are_kept_pruned_and_verified(tmp_path):
     j = Journal(tmp_path)
-    j.append([(1, [payload(f"e{k}", k) for k in range(100)])])
+    j.append([(1, [f"e{k}" for k in range(100)], [payload(f"e{k}", k) for k in range(100)])],
+             [(id_key(f"e{k}"), k + 1) for k in range(100)])
     for seq in (20, 40, 60, 80):
         blob = os.urandom(1000) + seq.to_bytes(4, "little")
         ck, upto = j.write_checkpoint(seq, blob, f"state{seq}", keep=2)
@@ -63,15 +71,19 @@ def test_checkpoints_are_kept_pruned_and_verified(tmp_path):
     assert j.rows_after(0, 1)[0][0] == 61  # rows up to the oldest kept checkpoint are gone
     seq, blob, ok = j.load_checkpoint(j.checkpoints()[0][0])
     assert (seq, ok, blob[-4:]) == (80, True, (80).to_bytes(4, "little"))
+    assert j.pruned_to() == 60 and j.known([id_key("e0")]) == {id_key("e0")}  # the index is never pruned
+    j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     db.execute("UPDATE checkpoints SET blob = substr(blob, 1, 500) WHERE seq = 80")
     db.commit()
+    db.close()
+    j = Journal(tmp_path)
     assert j.load_checkpoint(j.checkpoints()[0][0])[2] is False
 
     keep_all = Journal(tmp_path / "all")
-    keep_all.append([(1, [payload(f"e{k}", k) for k in range(10)])])
+    keep_all.append([(1, [f"e{k}" for k in range(10)], [payload(f"e{k}", k) for k in range(10)])])
     keep_all.write_checkpoint(5, b"x", "s", keep=1, prune=False)
-    assert keep_all.count() == 10
+    assert keep_all.count() == 10 and keep_all.pruned_to() == 0
 
 
 def test_a_journal_refuses_another_learning_config(tmp_path):
@@ -98,7 +110,7 @@ def test_a_commit_survives_sigkill_right_after_it_returns(tmp_path, sync):
         import os, signal, sys, orjson
         from service.storage.journal import Journal
         j = Journal({str(tmp_path)!r}, sync={sync!r})
-        j.append([(1, [orjson.dumps(("k%d" % k, None, {{}}, 1.0)) for k in range(5000)])])
+        j.append([(1, ["k%d" % k for k in range(5000)], [orjson.dumps(("k%d" % k, None, {{}}, 1.0)) for k in range(5000)])])
         os.kill(os.getpid(), signal.SIGKILL)
     """)
     proc = subprocess.run([sys.executable, "-c", script], cwd=ROOT, capture_output=True)
