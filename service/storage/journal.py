@@ -98,6 +98,9 @@ class Journal:
     wal_damage
         ``None``, or why the write-ahead log found at open holds committed transactions that SQLite
         could not replay (a copy of it is kept next to the file; see :mod:`service.storage.health`).
+    open_damage
+        ``None``, or why SQLite could not read the file at all; the object then works on an empty
+        in-memory database so the service can stay up, not ready, and say why.
     """
 
     def __init__(self, data_dir: str | Path, *, sync: str = "full") -> None:
@@ -108,31 +111,44 @@ class Journal:
         self.dir_lock = DataDirLock(data_dir)
         self._lock = threading.Lock()
         self.wal_damage: str | None = None
-        wal = Path(f"{self.path}-wal")
-        frames = scan_wal(wal)  # before SQLite opens the file and replays (or drops) the WAL
+        self.open_damage: str | None = None
         try:
-            self._db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None)
-            self._db.execute("PRAGMA mmap_size=0")
-            self._db.execute("PRAGMA journal_mode=WAL")
-            self._db.execute(f"PRAGMA synchronous={sync.upper()}")
-            if frames is not None:
-                accepted = self._db.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()[1]
-                lost = frames.lost_frames(max(accepted, 0))
-                if lost:
-                    copy = wal.with_name(f"{wal.name}.damaged-{int(time.time())}")
-                    shutil.copyfile(wal, copy)
-                    self.wal_damage = (f"the write-ahead log {wal.name} holds {lost} committed frame(s) that fail "
-                                       f"SQLite's checksum (SQLite replayed {accepted} of {frames.frames}); "
-                                       f"acknowledged events may be missing. A copy is in {copy.name}")
-            tables = {r[0] for r in self._db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+            self._open(sync)
+        except sqlite3.DatabaseError as exc:
+            name = getattr(exc, "sqlite_errorname", "")
+            if not name.startswith(("SQLITE_CORRUPT", "SQLITE_NOTADB")):
+                self.dir_lock.release()
+                raise
+            # keep the process up (not ready, with the reason and an incident) without touching the file
+            self.open_damage = f"SQLite cannot read the journal file {FILE_NAME}: {exc} ({name})"
+            self._db = sqlite3.connect(":memory:", check_same_thread=False, isolation_level=None)
             self._db.executescript(_SCHEMA)
-            if "journal" not in tables:  # a new file: it holds the whole history from the start
-                self._db.execute("INSERT OR IGNORE INTO meta VALUES ('pruned_to', '0')")
-            elif "seen" not in tables:
-                self._index_retained_ids()
         except BaseException:
             self.dir_lock.release()
             raise
+
+    def _open(self, sync: str) -> None:
+        wal = Path(f"{self.path}-wal")
+        frames = scan_wal(wal)  # before SQLite opens the file and replays (or drops) the WAL
+        self._db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None)
+        self._db.execute("PRAGMA mmap_size=0")
+        self._db.execute("PRAGMA journal_mode=WAL")
+        self._db.execute(f"PRAGMA synchronous={sync.upper()}")
+        if frames is not None:
+            accepted = self._db.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()[1]
+            lost = frames.lost_frames(max(accepted, 0))
+            if lost:
+                copy = wal.with_name(f"{wal.name}.damaged-{int(time.time())}")
+                shutil.copyfile(wal, copy)
+                self.wal_damage = (f"the write-ahead log {wal.name} holds {lost} committed frame(s) that fail "
+                                   f"SQLite's checksum (SQLite replayed {accepted} of {frames.frames}); "
+                                   f"acknowledged events may be missing. A copy is in {copy.name}")
+        tables = {r[0] for r in self._db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+        self._db.executescript(_SCHEMA)
+        if "journal" not in tables:  # a new file: it holds the whole history from the start
+            self._db.execute("INSERT OR IGNORE INTO meta VALUES ('pruned_to', '0')")
+        elif "seen" not in tables:
+            self._index_retained_ids()
 
     def _index_retained_ids(self) -> None:
         """A journal written before the ``seen`` table existed: index the ids it still holds."""

@@ -80,7 +80,7 @@ async def check_storage(ing) -> None:
     if mark.exists():
         raise RecoveryRefused(f"storage damage was found earlier: {mark.read_text().strip()}. Check the data "
                               f"dir, then delete {mark} to start with what the journal holds")
-    problems = await ing.db(journal.quick_check)
+    problems = [journal.open_damage] if journal.open_damage else await ing.db(journal.quick_check)
     if problems:
         reason = (f"the journal file {journal.path.name} is damaged (PRAGMA quick_check: {'; '.join(problems[:3])}); "
                   "not starting, so that no acknowledged event is silently dropped; restore the data dir")
