@@ -37,7 +37,7 @@ import orjson
 from service.engine import Engine
 from service.errors import JournalUnavailable, NotReady, Overloaded
 from service.events import Event
-from service.storage.health import storage_fault
+from service.storage.health import has_room, storage_fault
 from service.storage.journal import NOTE, ROLLBACK, Journal
 from service.storage.recovery import (RecoveryRefused, check_storage, encode_event, load_state, replay_rows,
                                       serving_view)
@@ -122,6 +122,7 @@ class Ingestor:
         #: why the storage refuses writes now (disk full, read-only, ...), or None; see :meth:`_storage_failed`
         self.fault: str | None = None
         self._failed = False                 # the learner failed: nothing more is applied or checkpointed
+        self._watch: asyncio.Future | None = None
         self._tasks: list[asyncio.Task] = []
         self._background: set[asyncio.Future] = set()
         self._rate = 20_000.0                # events/s applied, for Retry-After
@@ -222,7 +223,7 @@ class Ingestor:
             try:
                 await self.db(self._commit, items)
             except Exception as exc:
-                reason = storage_fault(exc)
+                reason = storage_fault(exc, self.journal.path.parent)
                 log.error("journal commit failed: %s", reason or repr(exc))
                 if reason is not None:
                     self._storage_failed(reason, "a journal commit")
@@ -305,7 +306,7 @@ class Ingestor:
         self._background.discard(fut)
         if not fut.cancelled() and fut.exception() is not None:
             exc = fut.exception()
-            reason = storage_fault(exc)
+            reason = storage_fault(exc, self.journal.path.parent)
             log.error("checkpoint failed: %s", reason or repr(exc))
             if reason is not None:
                 self._storage_failed(reason, "a checkpoint")
@@ -342,13 +343,15 @@ class Ingestor:
             self.fault = reason
             self._incident("storage_fault", f"{during} failed: {reason}; writes are refused until it recovers, "
                            "nothing unacknowledged was applied", {"during": during})
-            self._tasks.append(asyncio.ensure_future(self._watch_storage()))
+            self._watch = asyncio.ensure_future(self._watch_storage())
 
     async def _watch_storage(self, every: float = 0.5) -> None:
         """Probe with a small durable write until it succeeds, then take writes again."""
         began = time.monotonic()
         while True:
             await asyncio.sleep(every)
+            if not has_room(self.journal.path.parent):
+                continue
             try:
                 await self.db(self.journal.probe)
                 faults = [i for i in self.incidents if i["kind"] == "storage_fault"][-1:]
@@ -414,8 +417,17 @@ class Ingestor:
             for fut in list(self._background):
                 with suppress(Exception):
                     await fut
-            if final_checkpoint and self.applied_seq > self.checkpoint_seq:
-                await self.checkpoint()
+            if final_checkpoint and self.applied_seq > self.checkpoint_seq and self.fault is None:
+                try:
+                    await self.checkpoint()
+                except Exception as exc:  # the journal holds every applied row: the next start replays them
+                    if storage_fault(exc, self.journal.path.parent) is None:
+                        raise
+                    log.error("final checkpoint not written (%s); the next start re-applies the journal", exc)
+        if self._watch is not None:
+            self._watch.cancel()
+            with suppress(asyncio.CancelledError):
+                await self._watch
         for t in self._tasks:
             t.cancel()
         for t in self._tasks:

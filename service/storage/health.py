@@ -19,12 +19,18 @@ from __future__ import annotations
 
 import errno
 import os
+import resource
+import shutil
 import sqlite3
 import struct
 from dataclasses import dataclass
 from pathlib import Path
 
-__all__ = ["WalFrames", "scan_wal", "storage_fault"]
+__all__ = ["MIN_FREE_BYTES", "WalFrames", "has_room", "scan_wal", "storage_fault"]
+
+#: free space a full disk must regain before writes are taken again: a tiny probe write can succeed
+#: in pages SQLite already owns while the next real commit would fail again
+MIN_FREE_BYTES = 32 * 1024 * 1024
 
 _WAL_HEADER = 32
 _FRAME_HEADER = 24
@@ -46,19 +52,42 @@ _ERRNO = {errno.ENOSPC: "the disk holding the data dir is full",
           errno.EIO: "the disk reported an I/O error"}
 
 
-def storage_fault(exc: BaseException) -> str | None:
-    """A sentence naming the storage fault behind ``exc``, or ``None`` if it is not one."""
+def storage_fault(exc: BaseException, folder: Path | None = None) -> str | None:
+    """A sentence naming the storage fault behind ``exc``, or ``None`` if it is not one.
+
+    SQLite reports a write refused for lack of space as ``SQLITE_FULL`` only for ``ENOSPC``; other
+    refusals (a file-size limit's ``EFBIG``, a quota) arrive as ``SQLITE_IOERR_WRITE`` without the
+    errno, so the cause is then looked for in the process's file-size limit and the free space of
+    ``folder``.
+    """
     if isinstance(exc, sqlite3.Error):
         name = getattr(exc, "sqlite_errorname", "") or ""
         for prefix, text in _FAULTS.items():
             if name.startswith(prefix):
                 return f"{text} ({name}: {exc})"
         if name.startswith("SQLITE_IOERR"):
-            return f"the disk reported an I/O error writing the journal ({name}: {exc})"
+            return f"{_io_cause(folder)} ({name}: {exc})"
         return None
     if isinstance(exc, OSError) and exc.errno in _ERRNO:
         return f"{_ERRNO[exc.errno]} ({exc})"
     return None
+
+
+def has_room(folder: Path) -> bool:
+    """Whether the file system of ``folder`` has at least :data:`MIN_FREE_BYTES` free."""
+    try:
+        return shutil.disk_usage(folder).free >= MIN_FREE_BYTES
+    except OSError:
+        return False
+
+
+def _io_cause(folder: Path | None) -> str:
+    limit = resource.getrlimit(resource.RLIMIT_FSIZE)[0]
+    if limit != resource.RLIM_INFINITY:
+        return f"a write failed, probably at the file-size limit of this process (RLIMIT_FSIZE {limit} bytes)"
+    if folder is not None and not has_room(folder):
+        return "a write failed and the disk holding the data dir is (nearly) full"
+    return "the disk reported an I/O error writing the journal"
 
 
 @dataclass(frozen=True)
