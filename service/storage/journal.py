@@ -123,6 +123,7 @@ class Journal:
             self.open_damage = f"SQLite cannot read the journal file {FILE_NAME}: {exc} ({name})"
             self._db = sqlite3.connect(":memory:", check_same_thread=False, isolation_level=None)
             self._db.executescript(_SCHEMA)
+            self._buffer = set()
         except BaseException:
             self.dir_lock.release()
             raise
@@ -132,6 +133,9 @@ class Journal:
         frames = scan_wal(wal)  # before SQLite opens the file and replays (or drops) the WAL
         self._db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None)
         self._db.execute("PRAGMA mmap_size=0")
+        # the dedup index takes random keys: a bounded page cache of 32 MiB keeps its inner pages and a
+        # share of its leaves in memory (the default 2 MiB re-read pages on almost every insert)
+        self._db.execute("PRAGMA cache_size=-32768")
         self._db.execute("PRAGMA journal_mode=WAL")
         self._db.execute(f"PRAGMA synchronous={sync.upper()}")
         if frames is not None:
@@ -147,7 +151,8 @@ class Journal:
         self._db.executescript(_SCHEMA)
         if "journal" not in tables:  # a new file: it holds the whole history from the start
             self._db.execute("INSERT OR IGNORE INTO meta VALUES ('pruned_to', '0')")
-        elif "seen" not in tables:
+        self._buffer = seen.load_buffer(self._db)  # the unindexed tail of the index, mirrored in memory
+        if "journal" in tables and "seen" not in tables:
             self._index_retained_ids()
 
     def _index_retained_ids(self) -> None:
@@ -155,7 +160,10 @@ class Journal:
         rows = self._db.execute("SELECT seq, id FROM journal WHERE kind = 0 AND id IS NOT NULL").fetchall()
         if rows:
             self._db.execute("BEGIN IMMEDIATE")
-            seen.insert_keys(self._db, ((seen.id_key(i), s) for s, i in rows))
+            if seen.insert_keys(self._db, self._buffer, [(seen.id_key(i), s) for s, i in rows]):
+                self._buffer = set()
+            else:
+                self._buffer = seen.load_buffer(self._db)
             self._db.execute("COMMIT")
 
     # ---------------------------------------------------------------- setup and health
@@ -213,13 +221,14 @@ class Journal:
     def known(self, keys: list[bytes]) -> set[bytes]:
         """Which id keys (:func:`service.storage.seen.id_key`) were ever journaled."""
         with self._lock:
-            return seen.known_keys(self._db, keys)
+            return seen.known_keys(self._db, self._buffer, keys)
 
     def last_seq(self) -> int:
         with self._lock:
             row = self._db.execute("SELECT max(seq) FROM journal").fetchone()
             cps = self._db.execute("SELECT max(seq) FROM checkpoints").fetchone()
-            ids = self._db.execute("SELECT max(seq) FROM seen").fetchone()
+            ids = self._db.execute("SELECT max(seq) FROM seen_new").fetchone()
+            ids = max(ids, self._db.execute("SELECT max(seq) FROM seen").fetchone(), key=lambda r: r[0] or 0)
             pruned = self._db.execute("SELECT value FROM meta WHERE key = 'pruned_to'").fetchone()
         return max(row[0] or 0, cps[0] or 0, ids[0] or 0, int(pruned[0]) if pruned else 0)
 
@@ -242,9 +251,12 @@ class Journal:
                                    zip(range(first, first + len(payloads)), ids, payloads))
                 else:
                     db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
-            seen.insert_keys(db, keys)
+            return seen.insert_keys(db, self._buffer, keys)
 
-        self._transaction(body)
+        if self._transaction(body):
+            self._buffer = set()
+        else:
+            self._buffer.update(k for k, _ in keys)
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """Up to ``limit`` rows with a position above ``seq``, in order."""

@@ -21,6 +21,7 @@ import pytest
 
 from service.config import ConfigError
 from service.storage.journal import EVENT, NOTE, Journal
+from service.storage import seen
 from service.storage.seen import id_key
 from tests.service.servicekit import ROOT
 
@@ -47,16 +48,30 @@ def test_rows_and_runs_commit_in_order_with_exact_payloads(tmp_path):
     assert {r[3] for r in rows} == {"blob"}
     assert [r[4] for r in rows[:50]] == run  # byte for byte, floats included
     # the index holds the BLAKE2b-128 digest of each id (hashlib as the outside reference)
-    got = dict(db.execute("SELECT seq, h FROM seen"))
+    got = dict(db.execute("SELECT seq, h FROM seen UNION ALL SELECT seq, h FROM seen_new"))
     assert got[52] == hashlib.blake2b(b"b", digest_size=16).digest() and len(got) == 51
 
 
-def test_an_indexed_key_rolls_the_whole_transaction_back(tmp_path):
+def test_the_index_buffer_moves_into_the_indexed_table_and_both_answer(tmp_path, monkeypatch):
+    """Keys go to ``seen_new`` first and move to ``seen`` (primary key ``h``) once the buffer is full;
+    a lookup sees both, before and after a reopen; a failed transaction changes neither."""
+    monkeypatch.setattr(seen, "BUFFER_KEYS", 10)
     j = Journal(tmp_path)
-    j.append([(1, ["a"], [payload("a", 1.0)])], [(id_key("a"), 1)])
-    with pytest.raises(sqlite3.IntegrityError):
-        j.append([(2, ["b", "a"], [payload("b", 1.0), payload("a", 2.0)])], [(id_key("b"), 2), (id_key("a"), 3)])
-    assert j.count() == 1 and j.known([id_key("a"), id_key("b")]) == {id_key("a")}
+    keys = [id_key(f"k{n}") for n in range(25)]
+    for n in range(0, 25, 4):  # commits of 4: the buffer fills at 12 and at 24
+        part = list(range(n, min(25, n + 4)))
+        j.append([(n + 1, [f"k{m}" for m in part], [payload(f"k{m}", m) for m in part])],
+                 [(keys[m], m + 1) for m in part])
+    with pytest.raises(sqlite3.IntegrityError):  # a row at a taken position: all or nothing
+        j.append([(26, ["late"], [payload("late", 0.0)]), (25, None, NOTE, b"[]")], [(id_key("late"), 26)])
+    assert j.known(keys + [id_key("late")]) == set(keys)
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    assert db.execute("SELECT count(*) FROM seen").fetchone()[0] == 24
+    assert db.execute("SELECT seq FROM seen_new").fetchall() == [(25,)]
+    db.close()
+    j = Journal(tmp_path)
+    assert j.known(keys) == set(keys) and j.last_seq() == 25
 
 
 def test_checkpoints_are_kept_pruned_and_verified(tmp_path):
