@@ -9,9 +9,10 @@ the code the service commits with. Prints a table; the last line is one JSON obj
 * ``lookup_us_per_id`` and ``lookup_vs_set``: :meth:`Journal.known` on batches of 5,000 ids (half
   known, half new) against a history of ``--history`` ids, per id, against a Python ``set`` holding
   the same keys in memory (what an in-memory index costs; it also grows RSS without bound).
-* ``commit_with_index_vs_without``: a commit of 5,000 events (journal rows plus their keys, after
-  the lookup) against the same commit of the rows alone, both with ``synchronous=FULL``, at that
-  history size: the time the index adds to every acknowledgement.
+* ``commit_with_index_vs_without``: mean time of a commit of 5,000 events (journal rows plus their
+  keys, after the lookup) against the same commits of the rows alone, both with
+  ``synchronous=FULL``, at that history size, over enough commits that the buffer of new keys is
+  moved into the indexed table twice (those commits are the slow ones: ``commit_ms_max_with_index``).
 * ``set_mb_per_million``: memory an in-memory set of the keys takes per million ids (the set and its
   bytes objects, by ``sys.getsizeof``),
   the cost the on-disk index avoids (its own memory is SQLite's page cache, 2 MB by default).
@@ -114,14 +115,18 @@ def main() -> int:
         res["lookup_vs_set"] = round(statistics.median(db_t) / statistics.median(set_t), 1)
         j.close()
 
+        commits = 2 * seen.BUFFER_KEYS // BATCH + 2
         j = Journal(tmp / "indexed", sync="full")
-        with_index = time_commits(j, "w", BATCH, reps, True, n + 1)
+        with_index = time_commits(j, "w", BATCH, commits, True, n + 1)
         j.close()
         plain = Journal(tmp / "plain", sync="full")
-        without = time_commits(plain, "p", BATCH, reps, False, 1)
-        res["commit_ms_with_index"] = round(statistics.median(with_index) * 1e3, 2)
-        res["commit_ms_without_index"] = round(statistics.median(without) * 1e3, 2)
-        res["commit_with_index_vs_without"] = round(statistics.median(with_index) / statistics.median(without), 2)
+        without = time_commits(plain, "p", BATCH, commits, False, 1)
+        res["commit_ms_with_index"] = round(statistics.mean(with_index) * 1e3, 2)
+        res["commit_ms_max_with_index"] = round(max(with_index) * 1e3, 2)
+        res["commit_ms_without_index"] = round(statistics.mean(without) * 1e3, 2)
+        res["commit_with_index_vs_without"] = round(statistics.mean(with_index) / statistics.mean(without), 2)
+        res["commit_us_per_event_added_by_index"] = round((statistics.mean(with_index) - statistics.mean(without))
+                                                           / BATCH * 1e6, 1)
         plain.close()
 
         for size in (1, 100, BATCH):

@@ -37,7 +37,8 @@ import orjson
 from service.engine import Engine
 from service.errors import JournalUnavailable, NotReady, Overloaded
 from service.events import Event
-from service.storage.health import has_room, storage_fault
+from service.storage.guard import StorageGuard
+from service.storage.health import storage_fault
 from service.storage.journal import NOTE, ROLLBACK, Journal
 from service.storage.recovery import (RecoveryRefused, check_storage, encode_event, load_state, replay_rows,
                                       serving_view)
@@ -119,10 +120,8 @@ class Ingestor:
         #: held while the engine changes (one slice at a time); readers of the model take it too
         self.lock = threading.Lock()
         self._next_seq = 1
-        #: why the storage refuses writes now (disk full, read-only, ...), or None; see :meth:`_storage_failed`
-        self.fault: str | None = None
         self._failed = False                 # the learner failed: nothing more is applied or checkpointed
-        self._watch: asyncio.Future | None = None
+        self.guard = StorageGuard(journal, self.db, self._incident)
         self._tasks: list[asyncio.Task] = []
         self._background: set[asyncio.Future] = set()
         self._rate = 20_000.0                # events/s applied, for Retry-After
@@ -134,6 +133,11 @@ class Ingestor:
             self.incidents.append(self.journal.add_incident(kind, reason, evidence))
         else:
             self.incidents.append({"kind": kind, "ts": time.time(), "reason": reason, "evidence": evidence})
+
+    @property
+    def fault(self) -> str | None:
+        """Why the storage refuses writes now (disk full, read-only, ...), or None."""
+        return self.guard.fault
 
     async def db(self, fn, *args):
         """Run a journal call on the journal's thread."""
@@ -226,7 +230,7 @@ class Ingestor:
                 reason = storage_fault(exc, self.journal.path.parent)
                 log.error("journal commit failed: %s", reason or repr(exc))
                 if reason is not None:
-                    self._storage_failed(reason, "a journal commit")
+                    self.guard.failed(reason, "a journal commit")
                 for it in items:
                     self._finish(it, JournalUnavailable(f"the journal write failed ({reason or exc}); nothing from "
                                                         "this request was applied or acknowledged; retry",
@@ -309,7 +313,7 @@ class Ingestor:
             reason = storage_fault(exc, self.journal.path.parent)
             log.error("checkpoint failed: %s", reason or repr(exc))
             if reason is not None:
-                self._storage_failed(reason, "a checkpoint")
+                self.guard.failed(reason, "a checkpoint")
             else:
                 self._incident("checkpoint_failed", f"writing a checkpoint failed: {exc!r}", {})
 
@@ -335,37 +339,6 @@ class Ingestor:
         ck, _ = await self.db(self.journal.write_checkpoint, seq, blob, digest, self._keep, self._prune)
         self.metrics.checkpoints.inc()
         return ck.as_dict()
-
-    # ---------------------------------------------------------------- storage faults
-    def _storage_failed(self, reason: str, during: str) -> None:
-        """Refuse writes (503 with the reason, ``/readyz`` 503) until a probe write succeeds again."""
-        if self.fault is None:
-            self.fault = reason
-            self._incident("storage_fault", f"{during} failed: {reason}; writes are refused until it recovers, "
-                           "nothing unacknowledged was applied", {"during": during})
-            self._watch = asyncio.ensure_future(self._watch_storage())
-
-    async def _watch_storage(self, every: float = 0.5) -> None:
-        """Probe with a small durable write until it succeeds, then take writes again."""
-        began = time.monotonic()
-        while True:
-            await asyncio.sleep(every)
-            if not has_room(self.journal.path.parent):
-                continue
-            try:
-                await self.db(self.journal.probe)
-                faults = [i for i in self.incidents if i["kind"] == "storage_fault"][-1:]
-                for inc in faults:  # kept in memory while the disk refused it; persisted now
-                    await self.db(self.journal.add_incident, inc["kind"], inc["reason"], inc["evidence"])
-            except Exception as exc:
-                if storage_fault(exc) is None:
-                    log.exception("storage probe failed")
-                continue
-            took = round(time.monotonic() - began, 1)
-            await self.db(self._incident, "storage_recovered", f"the storage takes writes again after {took} s "
-                          f"(it had failed: {self.fault})", {"seconds": took}, True)
-            self.fault = None
-            return
 
     # ---------------------------------------------------------------- start and stop
     async def recover(self) -> None:
@@ -424,10 +397,7 @@ class Ingestor:
                     if storage_fault(exc, self.journal.path.parent) is None:
                         raise
                     log.error("final checkpoint not written (%s); the next start re-applies the journal", exc)
-        if self._watch is not None:
-            self._watch.cancel()
-            with suppress(asyncio.CancelledError):
-                await self._watch
+        await self.guard.close()
         for t in self._tasks:
             t.cancel()
         for t in self._tasks:
