@@ -74,6 +74,16 @@ def fingerprint(config) -> str:
     return hashlib.sha256(orjson.dumps(keep, option=orjson.OPT_SORT_KEYS)).hexdigest()
 
 
+def _as_text(ids: list) -> list:
+    """Ids for the informational ``id`` column: SQLite text must be UTF-8, so an id holding a lone
+    surrogate is stored with it replaced (the payload and the index keep the exact id)."""
+    try:
+        "".join(i for i in ids if i is not None).encode("utf-8")
+        return ids
+    except UnicodeEncodeError:
+        return [None if i is None else i.encode("utf-8", "surrogatepass").decode("utf-8", "replace") for i in ids]
+
+
 class Checkpoint(tuple):
     """``(id, seq, created, digest, state_digest, size)`` of a stored checkpoint."""
 
@@ -247,6 +257,7 @@ class Journal:
             for part in parts:
                 if len(part) == 3:
                     first, ids, payloads = part
+                    ids = _as_text(ids)
                     db.executemany("INSERT INTO journal VALUES (?, ?, 0, ?)",
                                    zip(range(first, first + len(payloads)), ids, payloads))
                 else:

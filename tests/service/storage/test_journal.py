@@ -133,3 +133,16 @@ def test_a_commit_survives_sigkill_right_after_it_returns(tmp_path, sync):
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT count(*), max(seq) FROM journal").fetchone() == (5000, 5000)
     assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+def test_ids_are_compared_as_bytes_whatever_they_hold(tmp_path):
+    """Ids that SQLite's text and JSON functions confuse (U+0000 inside, a prefix of another, lone
+    surrogates, long ones) are distinct keys, and each is a duplicate of itself only."""
+    odd = ["a", "a\x00", "a\x00b", "a\x00c", "\x00", "a\ud800", "x" * 10_000, "é", "e\u0301"]
+    j = Journal(tmp_path)
+    keys = [id_key(i) for i in odd]
+    assert len(set(keys)) == len(odd)
+    seqs, pairs = seen.number_events(keys + [id_key("a\x00b")], j.known(keys), 1)
+    assert seqs == list(range(1, len(odd) + 1)) + [None]  # the repeat in the same commit is the duplicate
+    j.append([(1, odd, [payload(f"p{k}", k) for k in range(len(odd))])], pairs)
+    assert j.known(keys + [id_key("a\x00d"), id_key("b")]) == set(keys)
