@@ -4,8 +4,9 @@ Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its
 *item*; the answer waits on the item's future. Two stages drain the queue, in order:
 
 1. the *committer* takes queued items (up to ``service.chunk_events`` events) and, on the journal's
-   own thread, drops duplicate ids, assigns journal positions and commits the rows in one
-   transaction;
+   own thread, drops ids ever accepted before (the whole-history index of
+   :mod:`service.storage.seen`; within a chunk the first occurrence wins), assigns journal
+   positions and commits the rows with their id keys in one transaction;
 2. the *learner* applies committed chunks to the engine on its own thread, in slices of
    ``service.apply_slice`` events, and resolves each item's future as soon as its events are applied
    (an acknowledged event is journaled *and* learned).
