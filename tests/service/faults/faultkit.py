@@ -17,7 +17,7 @@ from service.events import EventValidator
 from service.storage.journal import EVENT, ROLLBACK
 from tests.service.servicekit import ServeProcess, make_config, toml_text
 
-__all__ = ["TOKEN", "Client", "journal_replay", "start", "write_config"]
+__all__ = ["STARTED", "TOKEN", "Client", "journal_replay", "start", "write_config"]
 
 TOKEN = "fault-test-token"
 ENV = {"TRIMTAB_TEST_TOKEN": TOKEN}
@@ -34,9 +34,14 @@ def write_config(tmp_path: Path, data_dir: Path, *, hash_bits: int | None = None
     return cfg, path
 
 
+#: every server started by :func:`start`; the faults package's conftest kills those still running
+STARTED: list[ServeProcess] = []
+
+
 def start(conf: Path, ready: bool = True) -> ServeProcess:
     """``trimtab serve`` on ``conf`` with the token in its environment (waits for /readyz if ``ready``)."""
     server = ServeProcess(conf, env=ENV)
+    STARTED.append(server)
     if ready:
         server.wait_ready()
     return server
