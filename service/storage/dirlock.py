@@ -35,6 +35,7 @@ class DataDirLock:
     """
 
     def __init__(self, data_dir: str | Path) -> None:
+        self._fd: int | None = None
         self.path = Path(data_dir) / LOCK_NAME
         self.path.parent.mkdir(parents=True, exist_ok=True)
         fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
@@ -49,7 +50,7 @@ class DataDirLock:
         with suppress(OSError):  # the PID only names the holder; a full disk must not stop the start
             os.ftruncate(fd, 0)
             os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
-        self._fd: int | None = fd
+        self._fd = fd
 
     def release(self) -> None:
         """Unlock (the file stays; its content is stale once unlocked and is rewritten by the next owner)."""

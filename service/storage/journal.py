@@ -46,12 +46,14 @@ from pathlib import Path
 
 import orjson
 
+from models import TrimtabError
+
 from service.config import ConfigError
 from service.storage import seen
 from service.storage.dirlock import DataDirLock
-from service.storage.health import scan_wal
+from service.storage.health import scan_wal, storage_fault
 
-__all__ = ["EVENT", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "fingerprint"]
+__all__ = ["EVENT", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable", "fingerprint"]
 
 EVENT, NOTE, ROLLBACK = 0, 1, 2
 FILE_NAME = "trimtab.sqlite"
@@ -72,6 +74,10 @@ def fingerprint(config) -> str:
     d = config.resolved()
     keep = {k: d[k] for k in ("features", "model", "constraint", "steps", "averaging", "monitor")}
     return hashlib.sha256(orjson.dumps(keep, option=orjson.OPT_SORT_KEYS)).hexdigest()
+
+
+class StorageUnavailable(TrimtabError):
+    """The journal file cannot be opened for writing (read-only, full, missing permission)."""
 
 
 def _as_text(ids: list) -> list:
@@ -128,7 +134,10 @@ class Journal:
             name = getattr(exc, "sqlite_errorname", "")
             if not name.startswith(("SQLITE_CORRUPT", "SQLITE_NOTADB")):
                 self.dir_lock.release()
-                raise
+                reason = storage_fault(exc, self.path.parent)
+                if reason is None:
+                    raise
+                raise StorageUnavailable(f"cannot open {self.path}: {reason}", where="service.data_dir") from exc
             # keep the process up (not ready, with the reason and an incident) without touching the file
             self.open_damage = f"SQLite cannot read the journal file {FILE_NAME}: {exc} ({name})"
             self._db = sqlite3.connect(":memory:", check_same_thread=False, isolation_level=None)
