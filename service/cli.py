@@ -12,6 +12,7 @@ import json
 import sys
 
 from models import InvalidSettings, TrimtabError
+from service.storage.dirlock import DataDirLocked
 
 __all__ = ["main"]
 
@@ -87,6 +88,9 @@ def main(argv: list[str] | None = None) -> int:
             from service.replay.demo import demo_main
 
             return demo_main(args)
+    except DataDirLocked as exc:
+        print(f"trimtab: error: {exc.message}", file=sys.stderr)
+        return 2
     except InvalidSettings as exc:
         print(f"trimtab: config error: {exc}", file=sys.stderr)
         return 2

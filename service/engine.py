@@ -20,11 +20,12 @@ a bit-identical state, however they are chunked.
 from __future__ import annotations
 
 import hashlib
-import pickle
+import math
 from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
+import orjson
 
 from models import LinearModel, Outcome, Rows
 
@@ -33,8 +34,9 @@ from service.config import Config
 from service.events import Event, EventValidator
 from service.idhash import HOLDOUT_PREFIX
 from service.monitor.monitor import Monitor
+from service.storage.checkpoint import CheckpointFormatError, read_sections, write_sections
 
-__all__ = ["Applied", "Engine", "PreparedBatch", "holdout_fraction"]
+__all__ = ["Applied", "Engine", "PreparedBatch", "STATE_COUNTERS", "holdout_fraction"]
 
 _TWO64 = float(2**64)
 _BASELINE_WORDS = {False: "the running mean of the target", True: "the base rate"}
@@ -272,28 +274,84 @@ class Engine:
                 "baseline_progressive_loss": self.baseline.progressive_loss}
 
     # ---------------------------------------------------------------- state
-    def to_bytes(self) -> bytes:
-        """Model, monitor and counters; :meth:`from_bytes` restores an engine that continues identically."""
-        state = {
+    def to_bytes(self, *, position: int | None = None) -> bytes:
+        """The engine as a checkpoint (:mod:`service.storage.checkpoint`, no pickle): the model
+        snapshot, the monitor's own bytes, counters and trace as JSON; ``position`` is the journal
+        position it was taken at (recorded in the ``meta`` section). :meth:`from_bytes` restores an
+        engine that continues identically."""
+        sections = {
+            "meta": orjson.dumps({"state": "engine", "position": position, "counters": list(STATE_COUNTERS),
+                                  "monitor": self.monitor is not None}),
             "model": self.model.to_bytes(),
-            "monitor": self.monitor.to_bytes() if self.monitor is not None else None,
-            "counters": {k: getattr(self, k) for k in ("events", "learned", "held_out", "scored", "refused",
-                                                        "rejected", "_loss_sum", "_loss_n", "_since_check",
-                                                        "_seg_loss", "_seg_n", "_seg_base")},
-            "baseline": self.baseline.state(),
-            "trace": list(self.trace),
+            "counters": orjson.dumps({k: _exact(getattr(self, k)) for k in STATE_COUNTERS}),
+            "baseline": orjson.dumps({k: [_exact(x) for x in v] if isinstance(v, list) else _exact(v)
+                                      for k, v in self.baseline.state().items()}),
+            "trace": orjson.dumps([_tagged(r) for r in self.trace], option=orjson.OPT_SERIALIZE_NUMPY),
         }
-        return pickle.dumps(state, protocol=5)
+        if self.monitor is not None:
+            sections["monitor"] = self.monitor.to_bytes()
+        return write_sections(sections)
 
     @classmethod
     def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:
-        state = pickle.loads(blob)
+        """An engine from :meth:`to_bytes`; :class:`CheckpointFormatError` (with the reason) for
+        anything else, including a checkpoint of another format version or layout."""
+        parts = read_sections(blob, {"meta", "model", "counters", "baseline", "trace"}, frozenset({"monitor"}))
+        meta = orjson.loads(parts["meta"])
+        counters = orjson.loads(parts["counters"])
+        if meta.get("state") != "engine" or list(counters) != list(STATE_COUNTERS):
+            raise CheckpointFormatError(f"checkpoint counters {sorted(counters)} are not this version's "
+                                        f"{sorted(STATE_COUNTERS)}")
         engine = cls(config, trace_limit=trace_limit)
-        engine.model = LinearModel.from_bytes(state["model"])
-        if engine.monitor is not None and state["monitor"] is not None:
-            engine.monitor.load_bytes(state["monitor"])
-        for k, v in state["counters"].items():
-            setattr(engine, k, v)
-        engine.baseline.load_state(state["baseline"])
-        engine.trace.extend(state["trace"])
+        if ("monitor" in parts) != (engine.monitor is not None):
+            raise CheckpointFormatError("checkpoint and config disagree on whether a monitor runs")
+        engine.model = LinearModel.from_bytes(parts["model"])
+        if engine.monitor is not None:
+            engine.monitor.load_bytes(parts["monitor"])
+        for k, v in counters.items():
+            setattr(engine, k, _unexact(v))
+        engine.baseline.load_state({k: [_unexact(x) for x in v] if isinstance(v, list) else _unexact(v)
+                                    for k, v in orjson.loads(parts["baseline"]).items()})
+        engine.trace.extend(_untagged(r) for r in orjson.loads(parts["trace"]))
         return engine
+
+    @staticmethod
+    def checkpoint_position(blob: bytes) -> int | None:
+        """The journal position recorded in a checkpoint's ``meta`` section (``None``: not recorded)."""
+        return orjson.loads(read_sections(blob, {"meta", "model", "counters", "baseline", "trace"},
+                                          frozenset({"monitor"}))["meta"]).get("position")
+
+
+#: engine attributes a checkpoint holds; changing this tuple changes the state: bump FORMAT_VERSION
+STATE_COUNTERS = ("events", "learned", "held_out", "scored", "refused", "rejected", "_loss_sum", "_loss_n",
+                  "_since_check", "_seg_loss", "_seg_n", "_seg_base")
+
+
+def _exact(value):
+    """A counter for JSON: floats as C99 hex text (exact, and defined for inf and nan), ints as they are."""
+    return {"float": float(value).hex()} if isinstance(value, float) else value
+
+
+def _unexact(value):
+    return float.fromhex(value["float"]) if isinstance(value, dict) else value
+
+
+def _tagged(value):
+    """A trace record for JSON: non-finite floats (which JSON lacks) become ``{"float": "nan"}``."""
+    if isinstance(value, dict):
+        return {k: _tagged(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_tagged(v) for v in value]
+    if isinstance(value, float) and not math.isfinite(value):
+        return {"float": repr(float(value))}
+    return value
+
+
+def _untagged(value):
+    if isinstance(value, dict):
+        if len(value) == 1 and "float" in value:
+            return float(value["float"])
+        return {k: _untagged(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_untagged(v) for v in value]
+    return value

@@ -4,8 +4,9 @@ Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its
 *item*; the answer waits on the item's future. Two stages drain the queue, in order:
 
 1. the *committer* takes queued items (up to ``service.chunk_events`` events) and, on the journal's
-   own thread, drops duplicate ids, assigns journal positions and commits the rows in one
-   transaction;
+   own thread, drops ids ever accepted before (the whole-history index of
+   :mod:`service.storage.seen`; within a chunk the first occurrence wins), assigns journal
+   positions and commits the rows with their id keys in one transaction;
 2. the *learner* applies committed chunks to the engine on its own thread, in slices of
    ``service.apply_slice`` events, and resolves each item's future as soon as its events are applied
    (an acknowledged event is journaled *and* learned).
@@ -37,8 +38,12 @@ import orjson
 from service.engine import Engine
 from service.errors import JournalUnavailable, NotReady, Overloaded
 from service.events import Event
+from service.storage.guard import StorageGuard
+from service.storage.health import storage_fault
 from service.storage.journal import NOTE, ROLLBACK, Journal
-from service.storage.recovery import encode_event, newest_good_checkpoint, replay_rows, serving_view
+from service.storage.recovery import (RecoveryRefused, check_storage, encode_event, load_state, replay_rows,
+                                      serving_view)
+from service.storage.seen import id_key, number_events
 
 __all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
 
@@ -115,9 +120,9 @@ class Ingestor:
                                             for n in ("journal", "learner"))
         #: held while the engine changes (one slice at a time); readers of the model take it too
         self.lock = threading.Lock()
-        self._ids: dict[str, int] = {}       # journal thread only: the deduplication index
-        self._order: deque = deque()         # (seq, id) in journal order, to prune the index
         self._next_seq = 1
+        self._failed = False                 # the learner failed: nothing more is applied or checkpointed
+        self.guard = StorageGuard(journal, self.db, self._incident)
         self._tasks: list[asyncio.Task] = []
         self._background: set[asyncio.Future] = set()
         self._rate = 20_000.0                # events/s applied, for Retry-After
@@ -130,6 +135,11 @@ class Ingestor:
         else:
             self.incidents.append({"kind": kind, "ts": time.time(), "reason": reason, "evidence": evidence})
 
+    @property
+    def fault(self) -> str | None:
+        """Why the storage refuses writes now (disk full, read-only, ...), or None."""
+        return self.guard.fault
+
     async def db(self, fn, *args):
         """Run a journal call on the journal's thread."""
         return await asyncio.get_running_loop().run_in_executor(self._thread, fn, *args)
@@ -138,9 +148,15 @@ class Ingestor:
         """Run an engine-changing call on the learner's thread."""
         return await asyncio.get_running_loop().run_in_executor(self._learn_thread, fn, *args)
 
-    def journaled(self, ident: str) -> bool:
-        """Whether an event with this id is in the journal (a membership test is safe off its thread)."""
-        return ident in self._ids
+    async def journaled(self, ident: str) -> bool:
+        """Whether an event with this id was ever journaled (the deduplication index, on its thread)."""
+        key = id_key(ident)
+        return key in await self.db(self.journal.known, [key])
+
+    def journaled_blocking(self, ident: str) -> bool:
+        """:meth:`journaled` for a worker thread (never the event loop): waits for the journal's thread."""
+        key = id_key(ident)
+        return key in self._thread.submit(self.journal.known, [key]).result()
 
     # ---------------------------------------------------------------- submitting
     def reserve(self, n: int) -> int:
@@ -148,6 +164,8 @@ class Ingestor:
         parsing and parsed-but-unqueued events count against ``service.queue_limit`` too."""
         if not self.ready or self.stopping:
             raise NotReady("recovering from the journal" if not self.stopping else "shutting down", where="startup")
+        if self.fault is not None:
+            raise JournalUnavailable(f"writes are refused until the storage recovers: {self.fault}", where="storage")
         n = max(1, n)
         if self.queued_events + n > self._limit:
             self.metrics.overloaded.inc()
@@ -180,44 +198,26 @@ class Ingestor:
 
     # ---------------------------------------------------------------- stage 1: journal commit
     def _commit(self, items: list[Item]) -> None:
-        """On the journal thread: deduplicate, number and commit the items' rows in one transaction."""
-        ids, parts, seq, added = self._ids, [], self._next_seq, []
-        for it in items:
-            seqs = it.receipt.seqs = []
-            run: list[bytes] = []
-            first = seq
-            for e, payload in zip(it.events, it.payloads):
-                if e.id is not None:
-                    if e.id in ids:
-                        seqs.append(None)
-                        continue
-                    ids[e.id] = seq
-                    added.append(e.id)
-                run.append(payload)
-                seqs.append(seq)
-                seq += 1
+        """On the journal thread: deduplicate against the whole history, number and commit the items'
+        rows and their id keys in one transaction. The first occurrence of an id in queue order wins."""
+        keys = [[None if e.id is None else id_key(e.id) for e in it.events] for it in items]
+        known = self.journal.known(list({k for ks in keys for k in ks if k is not None}))
+        parts, pairs, seq = [], [], self._next_seq
+        for it, ks in zip(items, keys):
+            seqs, new = number_events(ks, known, seq)
+            it.receipt.seqs = seqs
+            run = [(e.id, p) for e, p, s in zip(it.events, it.payloads, seqs) if s is not None]
             if run:
-                parts.append((first, run))
+                parts.append((seq, [r[0] for r in run], [r[1] for r in run]))
+                seq += len(run)
+            pairs += new
             if it.note is not None or (it.action and it.action[0] == "rollback"):
                 kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
                 parts.append((seq, None, kind, orjson.dumps(body)))
                 it.receipt.extra_seq = seq
                 seq += 1
-        try:
-            self.journal.append(parts)
-        except BaseException:
-            for k in added:
-                del ids[k]
-            raise
-        self._order.extend((ids[k], k) for k in added)
+        self.journal.append(parts, pairs)
         self._next_seq = seq
-
-    def _prune_index(self, upto: int) -> None:
-        """On the journal thread: forget ids whose journal rows were pruned."""
-        while self._order and self._order[0][0] <= upto:
-            _, k = self._order.popleft()
-            if self._ids.get(k, upto + 1) <= upto:
-                del self._ids[k]
 
     async def _committer(self) -> None:
         while True:
@@ -233,10 +233,14 @@ class Ingestor:
             try:
                 await self.db(self._commit, items)
             except Exception as exc:
-                log.error("journal commit failed: %s", exc)
+                reason = storage_fault(exc, self.journal.path.parent)
+                log.error("journal commit failed: %s", reason or repr(exc))
+                if reason is not None:
+                    self.guard.failed(reason, "a journal commit")
                 for it in items:
-                    self._finish(it, JournalUnavailable(f"the journal write failed ({exc}); nothing from this "
-                                                        "request was applied; retry", where="journal"))
+                    self._finish(it, JournalUnavailable(f"the journal write failed ({reason or exc}); nothing from "
+                                                        "this request was applied or acknowledged; retry",
+                                                        where="journal"))
                 continue
             self.metrics.commit_seconds.observe(time.perf_counter() - start)
             await self._committed.put(items)
@@ -279,11 +283,16 @@ class Ingestor:
         while True:
             items = await self._committed.get()
             for it in items:
+                if self._failed:  # journaled, not applied: a restart applies them in journal order
+                    self._finish(it, JournalUnavailable("the learner failed; these events are journaled and will "
+                                                        "be applied at restart", where="learner"))
+                    continue
                 try:
                     await self._apply_item(it)
                 except Exception as exc:
-                    # the journal holds rows the model has not learned: stop taking writes until a restart
-                    self.ready = False
+                    # the journal holds rows the model has not learned: stop applying and checkpointing
+                    # (a checkpoint now would record a position that does not describe the engine)
+                    self.ready, self._failed = False, True
                     self._incident("learner_failed", f"applying journaled events failed: {exc!r}; "
                                        "restart the service to re-apply them from the journal", {})
                     log.exception("learner failed")
@@ -306,8 +315,13 @@ class Ingestor:
     def _background_done(self, fut: asyncio.Future) -> None:
         self._background.discard(fut)
         if not fut.cancelled() and fut.exception() is not None:
-            log.error("checkpoint failed: %s", fut.exception())
-            self._incident("checkpoint_failed", f"writing a checkpoint failed: {fut.exception()}", {})
+            exc = fut.exception()
+            reason = storage_fault(exc, self.journal.path.parent)
+            log.error("checkpoint failed: %s", reason or repr(exc))
+            if reason is not None:
+                self.guard.failed(reason, "a checkpoint")
+            else:
+                self._incident("checkpoint_failed", f"writing a checkpoint failed: {exc!r}", {})
 
     def _finish(self, it: Item, exc: Exception | None) -> None:
         self.queued_events -= it.weight()
@@ -319,34 +333,32 @@ class Ingestor:
 
     async def checkpoint(self) -> dict:
         """Write a checkpoint of the engine at the applied position (and prune the journal)."""
+        if self._failed:
+            raise JournalUnavailable("no checkpoint after a learner failure: restart the service", where="learner")
+
         def snapshot():
-            with self.lock:
-                return self.applied_seq, self.engine.to_bytes(), self.engine.state_digest
+            with self.lock:  # the position and the state under one lock: the position is the state's
+                return self.applied_seq, self.engine.to_bytes(position=self.applied_seq), self.engine.state_digest
 
         seq, blob, digest = await self.learn(snapshot)
         self.checkpoint_seq = max(self.checkpoint_seq, seq)
-
-        def write():
-            ck, upto = self.journal.write_checkpoint(seq, blob, digest, self._keep, self._prune)
-            self._prune_index(upto)
-            return ck
-
-        ck = await self.db(write)
+        ck, _ = await self.db(self.journal.write_checkpoint, seq, blob, digest, self._keep, self._prune)
         self.metrics.checkpoints.inc()
         return ck.as_dict()
 
     # ---------------------------------------------------------------- start and stop
     async def recover(self) -> None:
-        """Newest checkpoint whose digest verifies, then the journal after it; then start the stages."""
+        """Check the storage, load the newest usable checkpoint, re-apply the journal after it; then
+        start the stages. Raises :class:`RecoveryRefused` (the service stays not ready, with an
+        incident) when the storage is damaged or the acknowledged history cannot be rebuilt."""
         t0 = time.perf_counter()
         self.recovery["state"] = "recovering"
         self.incidents.extend(await self.db(self.journal.incidents))
-        ids = await self.db(self.journal.ids)
-        self._ids = ids
-        self._order = deque((s, k) for k, s in ids.items())
-        engine, pos = await newest_good_checkpoint(self)
-        self.engine = engine or Engine(self.config)
-        self.view = serving_view(self.engine, pos)
+        await check_storage(self)
+        engine, pos = await load_state(self)
+        with self.lock:
+            self.engine, self.applied_seq = engine, pos  # the checkpoint's position is where the engine is
+            self.view = serving_view(engine, pos)
         self.checkpoint_seq = pos
         self.recovery["checkpoint"] = pos
         replayed, after = 0, pos
@@ -354,10 +366,9 @@ class Ingestor:
             rows = await self.db(self.journal.rows_after, after, 5000)
             if not rows:
                 break
-            if engine is None and replayed == 0 and rows[0][0] > 1:
-                await self.db(self._incident, "history_incomplete",
-                              f"no usable checkpoint and the journal starts at position {rows[0][0]}: the model "
-                              "was rebuilt from the retained journal only", {"first_seq": rows[0][0]}, True)
+            if rows[0][0] != after + 1:
+                raise RecoveryRefused(f"the journal continues at position {rows[0][0]} after the state at "
+                                      f"position {after}: rows are missing")
             await self.learn(replay_rows, self, rows)
             replayed += len(rows)
             after = rows[-1][0]
@@ -385,8 +396,14 @@ class Ingestor:
             for fut in list(self._background):
                 with suppress(Exception):
                     await fut
-            if final_checkpoint and self.applied_seq > self.checkpoint_seq:
-                await self.checkpoint()
+            if final_checkpoint and self.applied_seq > self.checkpoint_seq and self.fault is None:
+                try:
+                    await self.checkpoint()
+                except Exception as exc:  # the journal holds every applied row: the next start replays them
+                    if storage_fault(exc, self.journal.path.parent) is None:
+                        raise
+                    log.error("final checkpoint not written (%s); the next start re-applies the journal", exc)
+        await self.guard.close()
         for t in self._tasks:
             t.cancel()
         for t in self._tasks:

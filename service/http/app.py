@@ -243,6 +243,8 @@ def serve_main(args) -> int:
     if not _loopback(config.service.host) and token is None:
         log.warning("binding %s (not loopback) with service.auth = \"none\": anyone who can reach it can write",
                     config.service.host)
+    if hasattr(signal, "SIGXFSZ"):  # a file-size limit is then a write error (503 with the reason), not a kill
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     # the journal thread runs some Python (row binding); a short switch interval keeps it from holding
     # the GIL for the default 5 ms while a score request waits
     sys.setswitchinterval(0.0005)

@@ -26,7 +26,8 @@ from models import InvalidInput
 
 from service.config import Config
 from service.http.bodies import BodyReader
-from service.errors import NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType, error_response
+from service.errors import (JournalUnavailable, NotReady, PayloadTooLarge, Unauthorized, UnsupportedMediaType,
+                            error_response)
 from service.events import Event, EventValidator, Rejection, check_id, parse_ndjson
 from service.ingest import Ingestor, encode_event
 from service.storage.labels import LabelStore
@@ -171,8 +172,9 @@ async def score(request: web.Request) -> web.Response:
 # -------------------------------------------------------------------- learning
 def _parse_ndjson(body: bytes, v: EventValidator):
     """NDJSON through the validator's fast path (run on a worker thread)."""
-    events, rejected, where = parse_ndjson(body, v)
-    return events, [encode_event(e) for e in events], rejected, where
+    events, rejected, lines = parse_ndjson(body, v)
+    # positions count from 0 like array indices (``duplicates``); line numbers count from 1
+    return events, [encode_event(e) for e in events], rejected, [n - 1 for n in lines]
 
 
 def _parse_array(body: bytes, v: EventValidator, limit: int):
@@ -286,7 +288,7 @@ def _labels(svc: Service, body: bytes) -> tuple:
             payloads.append(encode_event(e))
             where.append(i)
             continue
-        if state == "unknown" and svc.ingestor.journaled(lab.id):
+        if state == "unknown" and svc.ingestor.journaled_blocking(lab.id):
             known.append(i)  # learned before (its entry was forgotten then): a retry, not an error
             continue
         (expired if state == "expired" else unknown).append(lab.id)
@@ -396,6 +398,8 @@ async def healthz(request: web.Request) -> web.Response:
 async def readyz(request: web.Request) -> web.Response:
     svc = request.app[SERVICE]
     ing = _ready(svc)
+    if ing.fault is not None:
+        raise JournalUnavailable(f"not ready: writes are refused: {ing.fault}", where="storage")
     return _json({"ready": True, "applied_seq": ing.applied_seq, "recovery": ing.recovery,
                   "feed": svc.feed.status() if svc.feed is not None else None})
 

@@ -118,7 +118,8 @@ class ErrorResponse(BaseModel):
 
 class IngestResponse(BaseModel):
     accepted: int = Field(description="events journaled and applied by this request")
-    duplicates: list[int] = Field(description="indices of events whose id was already journaled (not re-applied)")
+    duplicates: list[int] = Field(description="positions (from 0: the array index, or the NDJSON line number minus 1) "
+                                              "of events whose id was ever accepted before (not re-applied)")
     rejected: list[Rejection]
     seq: list[int] | None = Field(description="first and last journal position of the accepted events")
     applied_seq: int = Field(description="journal position the model has applied when this answer was sent")

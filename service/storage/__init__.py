@@ -1,5 +1,8 @@
-"""Storage: the SQLite journal and checkpoints (``journal``), recovery from them (``recovery``), and
-the store of features remembered for a later label (``labels``).
+"""Storage: the SQLite journal (``journal``) with its whole-history deduplication index (``seen``),
+the checkpoint format (``checkpoint``, described in ``docs/checkpoint-format.md``), recovery at start
+(``recovery``), storage faults (``health`` names them and finds a damaged write-ahead log, ``guard``
+refuses writes until the storage recovers), the data-dir lock (``dirlock``), and the store of
+features remembered for a later label (``labels``).
 
 May import ``models``, ``service.config``, ``service.errors`` and ``service.engine``'s state; never
 HTTP, feeds, monitor internals or replay.

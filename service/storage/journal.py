@@ -2,21 +2,33 @@
 
 Tables:
 
-* ``journal(seq INTEGER PRIMARY KEY, id TEXT UNIQUE, kind INTEGER, payload BLOB)``: everything that
+* ``journal(seq INTEGER PRIMARY KEY, id TEXT, kind INTEGER, payload BLOB)``: everything that
   changes the engine, in the order it is applied. ``kind`` 0 is an event (``payload`` is the
-  validated event as orjson), 1 a note of input rejected at the boundary (``[rejected, total, ts]``,
-  it feeds the monitor's rejected-burst rule), 2 an operator rollback (``{"reason": ...}``). Replaying
-  the rows in ``seq`` order through :meth:`Engine.apply` rebuilds the engine bit for bit.
-* ``checkpoints(id, seq, created, digest, state_digest, blob)``: ``blob`` is ``Engine.to_bytes()``
-  after applying every row up to ``seq``; ``digest`` is the SHA-256 of the blob, checked on load so a
-  corrupt or truncated checkpoint is detected and an older one used.
+  validated event as orjson, ``id`` its id for readers of the file), 1 a note of input rejected at
+  the boundary (``[rejected, total, ts]``, it feeds the monitor's rejected-burst rule), 2 an operator
+  rollback (``{"reason": ...}``). Replaying the rows in ``seq`` order through :meth:`Engine.apply`
+  rebuilds the engine bit for bit.
+* ``seen(h, seq)``: the deduplication index over the whole history (:mod:`service.storage.seen`);
+  never pruned.
+* ``checkpoints(id, seq, created, digest, state_digest, blob)``: ``blob`` is a checkpoint in the
+  format of :mod:`service.storage.checkpoint` after applying every row up to ``seq``; ``digest`` is
+  the SHA-256 of the blob, checked on load so a corrupt or truncated checkpoint is detected and an
+  older one used.
 * ``incidents`` (service incidents that must outlive a restart, such as a corrupt checkpoint) and
-  ``meta`` (the fingerprint of the learning config the journal belongs to).
+  ``meta`` (the fingerprint of the learning config the journal belongs to, and ``pruned_to``: the
+  last position deleted from ``journal``, absent while it holds the whole history).
 
 Durability: with ``synchronous=FULL`` (the default, ``service.journal_sync``) SQLite fsyncs the WAL
 on every commit, so an event acknowledged after :meth:`Journal.append` returns survives a process
 crash, an OS crash and power loss. ``synchronous=NORMAL`` in WAL mode still survives a process crash
 (SIGKILL): the commit is in the OS page cache; only an OS crash or power loss can lose it.
+
+The connection sets ``mmap_size=0``: database pages are read with ``read()``, never through a memory
+map, so a file that shrinks or a disk that fails mid-run gives an error (an answer), not a SIGBUS.
+(SQLite still maps the small ``-shm`` index of the WAL, but it allocates each of its pages with a
+real write before mapping it, so a full disk is an error there too.) The data-dir lock
+(:mod:`service.storage.dirlock`) is taken first, so a second process fails with a message naming
+the holder instead of writing alongside.
 
 The class is synchronous; the service calls it from one dedicated thread so the event loop never
 waits on SQLite. A lock makes it safe to call from tests as well.
@@ -25,34 +37,36 @@ waits on SQLite. A lock makes it safe to call from tests as well.
 from __future__ import annotations
 
 import hashlib
+import shutil
 import sqlite3
 import threading
 import time
+from contextlib import suppress
 from pathlib import Path
 
 import orjson
 
-from service.config import ConfigError
+from models import TrimtabError
 
-__all__ = ["EVENT", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "fingerprint"]
+from service.config import ConfigError
+from service.storage import seen
+from service.storage.dirlock import DataDirLock
+from service.storage.health import scan_wal, storage_fault
+
+__all__ = ["EVENT", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable", "fingerprint"]
 
 EVENT, NOTE, ROLLBACK = 0, 1, 2
 FILE_NAME = "trimtab.sqlite"
 
 _SCHEMA = """
-CREATE TABLE IF NOT EXISTS journal (seq INTEGER PRIMARY KEY, id TEXT UNIQUE, kind INTEGER NOT NULL,
-                                    payload BLOB NOT NULL);
+CREATE TABLE IF NOT EXISTS journal (seq INTEGER PRIMARY KEY, id TEXT, kind INTEGER NOT NULL, payload BLOB NOT NULL);
 CREATE TABLE IF NOT EXISTS checkpoints (id INTEGER PRIMARY KEY AUTOINCREMENT, seq INTEGER NOT NULL,
                                         created REAL NOT NULL, digest TEXT NOT NULL,
                                         state_digest TEXT NOT NULL, blob BLOB NOT NULL);
 CREATE TABLE IF NOT EXISTS incidents (n INTEGER PRIMARY KEY AUTOINCREMENT, ts REAL NOT NULL,
                                       kind TEXT NOT NULL, reason TEXT NOT NULL, evidence BLOB NOT NULL);
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-"""
-
-# an event payload is [id, ts, features, target]; its id goes to the UNIQUE column
-_INSERT_RUN = ("INSERT INTO journal (seq, id, kind, payload) SELECT ?1 + key, json_extract(value, '$[0]'), 0, "
-               "CAST(value AS BLOB) FROM json_each(?2)")
+""" + seen.SCHEMA
 
 
 def fingerprint(config) -> str:
@@ -60,6 +74,20 @@ def fingerprint(config) -> str:
     d = config.resolved()
     keep = {k: d[k] for k in ("features", "model", "constraint", "steps", "averaging", "monitor")}
     return hashlib.sha256(orjson.dumps(keep, option=orjson.OPT_SORT_KEYS)).hexdigest()
+
+
+class StorageUnavailable(TrimtabError):
+    """The journal file cannot be opened for writing (read-only, full, missing permission)."""
+
+
+def _as_text(ids: list) -> list:
+    """Ids for the informational ``id`` column: SQLite text must be UTF-8, so an id holding a lone
+    surrogate is stored with it replaced (the payload and the index keep the exact id)."""
+    try:
+        "".join(i for i in ids if i is not None).encode("utf-8")
+        return ids
+    except UnicodeEncodeError:
+        return [None if i is None else i.encode("utf-8", "surrogatepass").decode("utf-8", "replace") for i in ids]
 
 
 class Checkpoint(tuple):
@@ -77,9 +105,18 @@ class Journal:
     Parameters
     ----------
     data_dir
-        Folder for the file (created if missing).
+        Folder for the file (created if missing); locked for this object's lifetime.
     sync
         ``"full"`` or ``"normal"``: SQLite's ``synchronous`` setting (see the module docstring).
+
+    Attributes
+    ----------
+    wal_damage
+        ``None``, or why the write-ahead log found at open holds committed transactions that SQLite
+        could not replay (a copy of it is kept next to the file; see :mod:`service.storage.health`).
+    open_damage
+        ``None``, or why SQLite could not read the file at all; the object then works on an empty
+        in-memory database so the service can stay up, not ready, and say why.
     """
 
     def __init__(self, data_dir: str | Path, *, sync: str = "full") -> None:
@@ -87,14 +124,68 @@ class Journal:
             raise ConfigError(f"invalid value {sync!r}; valid values are 'full', 'normal'",
                               where="service.journal_sync")
         self.path = Path(data_dir) / FILE_NAME
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.dir_lock = DataDirLock(data_dir)
         self._lock = threading.Lock()
+        self.wal_damage: str | None = None
+        self.open_damage: str | None = None
+        try:
+            self._open(sync)
+        except sqlite3.DatabaseError as exc:
+            name = getattr(exc, "sqlite_errorname", "")
+            if not name.startswith(("SQLITE_CORRUPT", "SQLITE_NOTADB")):
+                self.dir_lock.release()
+                reason = storage_fault(exc, self.path.parent)
+                if reason is None:
+                    raise
+                raise StorageUnavailable(f"cannot open {self.path}: {reason}", where="service.data_dir") from exc
+            # keep the process up (not ready, with the reason and an incident) without touching the file
+            self.open_damage = f"SQLite cannot read the journal file {FILE_NAME}: {exc} ({name})"
+            self._db = sqlite3.connect(":memory:", check_same_thread=False, isolation_level=None)
+            self._db.executescript(_SCHEMA)
+            self._buffer = set()
+        except BaseException:
+            self.dir_lock.release()
+            raise
+
+    def _open(self, sync: str) -> None:
+        wal = Path(f"{self.path}-wal")
+        frames = scan_wal(wal)  # before SQLite opens the file and replays (or drops) the WAL
         self._db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None)
+        self._db.execute("PRAGMA mmap_size=0")
+        # the dedup index takes random keys: a bounded page cache of 32 MiB keeps its inner pages and a
+        # share of its leaves in memory (the default 2 MiB re-read pages on almost every insert)
+        self._db.execute("PRAGMA cache_size=-32768")
         self._db.execute("PRAGMA journal_mode=WAL")
         self._db.execute(f"PRAGMA synchronous={sync.upper()}")
+        if frames is not None:
+            accepted = self._db.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()[1]
+            lost = frames.lost_frames(max(accepted, 0))
+            if lost:
+                copy = wal.with_name(f"{wal.name}.damaged-{int(time.time())}")
+                shutil.copyfile(wal, copy)
+                self.wal_damage = (f"the write-ahead log {wal.name} holds {lost} committed frame(s) that fail "
+                                   f"SQLite's checksum (SQLite replayed {accepted} of {frames.frames}); "
+                                   f"acknowledged events may be missing. A copy is in {copy.name}")
+        tables = {r[0] for r in self._db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
         self._db.executescript(_SCHEMA)
+        if "journal" not in tables:  # a new file: it holds the whole history from the start
+            self._db.execute("INSERT OR IGNORE INTO meta VALUES ('pruned_to', '0')")
+        self._buffer = seen.load_buffer(self._db)  # the unindexed tail of the index, mirrored in memory
+        if "journal" in tables and "seen" not in tables:
+            self._index_retained_ids()
 
-    # ---------------------------------------------------------------- setup
+    def _index_retained_ids(self) -> None:
+        """A journal written before the ``seen`` table existed: index the ids it still holds."""
+        rows = self._db.execute("SELECT seq, id FROM journal WHERE kind = 0 AND id IS NOT NULL").fetchall()
+        if rows:
+            self._db.execute("BEGIN IMMEDIATE")
+            if seen.insert_keys(self._db, self._buffer, [(seen.id_key(i), s) for s, i in rows]):
+                self._buffer = set()
+            else:
+                self._buffer = seen.load_buffer(self._db)
+            self._db.execute("COMMIT")
+
+    # ---------------------------------------------------------------- setup and health
     def claim(self, config_fingerprint: str) -> None:
         """Bind the file to a learning config; refuse a file written under another one."""
         with self._lock:
@@ -106,42 +197,86 @@ class Journal:
                                   "[model], [constraint], [steps], [averaging] or [monitor] differ); use a "
                                   "new data_dir", where="service.data_dir")
 
-    def ids(self) -> dict[str, int]:
-        """Event id -> seq for every journaled event (the deduplication index), in seq order."""
+    def quick_check(self) -> list[str]:
+        """``PRAGMA quick_check``: an empty list when the file is sound, else SQLite's findings."""
         with self._lock:
-            cur = self._db.execute("SELECT id, seq FROM journal WHERE id IS NOT NULL ORDER BY seq")
-            return dict(cur.fetchall())
+            rows = [r[0] for r in self._db.execute("PRAGMA quick_check(20)").fetchall()]
+        return [] if rows == ["ok"] else rows
+
+    def pruned_to(self) -> int:
+        """The last journal position deleted by pruning (0: the journal holds the whole history)."""
+        with self._lock:
+            row = self._db.execute("SELECT value FROM meta WHERE key = 'pruned_to'").fetchone()
+            if row is not None:
+                return int(row[0])
+            # a file from before ``pruned_to`` was recorded: a first row above 1 says rows were deleted
+            first = self._db.execute("SELECT min(seq) FROM journal").fetchone()[0]
+            cps = self._db.execute("SELECT count(*) FROM checkpoints").fetchone()[0]
+        if first is not None:
+            return first - 1
+        return -1 if cps else 0  # checkpoints but no rows: pruned up to an unknown position
+
+    def probe(self) -> None:
+        """A small durable write: raises the storage error while the disk is full or read-only."""
+        self._transaction(lambda db: db.execute("INSERT OR REPLACE INTO meta VALUES ('probe', ?)",
+                                                (repr(time.time()),)))
+
+    def _transaction(self, body):
+        """Run ``body(db)`` in one write transaction; on any error roll back and re-raise *that* error."""
+        with self._lock:
+            self._db.execute("BEGIN IMMEDIATE")
+            try:
+                out = body(self._db)
+                self._db.execute("COMMIT")
+                return out
+            except BaseException:
+                # a failed COMMIT may have rolled back already; a second error must not hide the first
+                if self._db.in_transaction:
+                    with suppress(sqlite3.Error):
+                        self._db.execute("ROLLBACK")
+                raise
+
+    # ---------------------------------------------------------------- deduplication
+    def known(self, keys: list[bytes]) -> set[bytes]:
+        """Which id keys (:func:`service.storage.seen.id_key`) were ever journaled."""
+        with self._lock:
+            return seen.known_keys(self._db, self._buffer, keys)
 
     def last_seq(self) -> int:
         with self._lock:
             row = self._db.execute("SELECT max(seq) FROM journal").fetchone()
             cps = self._db.execute("SELECT max(seq) FROM checkpoints").fetchone()
-        return max(row[0] or 0, cps[0] or 0)
+            ids = self._db.execute("SELECT max(seq) FROM seen_new").fetchone()
+            ids = max(ids, self._db.execute("SELECT max(seq) FROM seen").fetchone(), key=lambda r: r[0] or 0)
+            pruned = self._db.execute("SELECT value FROM meta WHERE key = 'pruned_to'").fetchone()
+        return max(row[0] or 0, cps[0] or 0, ids[0] or 0, int(pruned[0]) if pruned else 0)
 
     # ---------------------------------------------------------------- the journal
-    def append(self, parts: list[tuple]) -> None:
-        """Commit rows in one transaction (all or none).
+    def append(self, parts: list[tuple], keys: list[tuple[bytes, int]] = ()) -> None:
+        """Commit rows and their id keys in one transaction (all or none).
 
-        Each part is a row ``(seq, id, kind, payload)`` or a run of events ``(first_seq, [payload, ...])``
-        numbered from ``first_seq``. A run is inserted by one statement that unpacks a JSON array
-        inside SQLite (``json_each``): the GIL stays released for the whole insert, instead of being
-        taken back for every row as ``executemany`` does, so parsing and learning go on meanwhile.
+        Each part is a row ``(seq, id, kind, payload)`` or a run of events ``(first_seq, ids, payloads)``
+        numbered from ``first_seq``; ``keys`` are the ``(id key, seq)`` pairs of the new events. Ids
+        and payloads are bound as parameters, never parsed by SQLite.
         """
         if not parts:
             return
-        with self._lock:
-            self._db.execute("BEGIN IMMEDIATE")
-            try:
-                for part in parts:
-                    if len(part) == 2:
-                        run = b"[" + b",".join(part[1]) + b"]"
-                        self._db.execute(_INSERT_RUN, (part[0], run.decode()))
-                    else:
-                        self._db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
-                self._db.execute("COMMIT")
-            except BaseException:
-                self._db.execute("ROLLBACK")
-                raise
+
+        def body(db):
+            for part in parts:
+                if len(part) == 3:
+                    first, ids, payloads = part
+                    ids = _as_text(ids)
+                    db.executemany("INSERT INTO journal VALUES (?, ?, 0, ?)",
+                                   zip(range(first, first + len(payloads)), ids, payloads))
+                else:
+                    db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
+            return seen.insert_keys(db, self._buffer, keys)
+
+        if self._transaction(body):
+            self._buffer = set()
+        else:
+            self._buffer.update(k for k, _ in keys)
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """Up to ``limit`` rows with a position above ``seq``, in order."""
@@ -160,20 +295,20 @@ class Journal:
         oldest kept one, in one transaction. Returns the checkpoint and the position pruned to."""
         digest = hashlib.sha256(blob).hexdigest()
         created = time.time()
-        with self._lock:
-            self._db.execute("BEGIN IMMEDIATE")
-            try:
-                cur = self._db.execute("INSERT INTO checkpoints (seq, created, digest, state_digest, blob) "
-                                       "VALUES (?, ?, ?, ?, ?)", (seq, created, digest, state_digest, blob))
-                ck_id = cur.lastrowid
-                self._db.execute("DELETE FROM checkpoints WHERE id NOT IN "
-                                 "(SELECT id FROM checkpoints ORDER BY id DESC LIMIT ?)", (keep,))
-                oldest = self._db.execute("SELECT min(seq) FROM checkpoints").fetchone()[0] if prune else 0
-                self._db.execute("DELETE FROM journal WHERE seq <= ?", (oldest,))
-                self._db.execute("COMMIT")
-            except BaseException:
-                self._db.execute("ROLLBACK")
-                raise
+
+        def body(db):
+            cur = db.execute("INSERT INTO checkpoints (seq, created, digest, state_digest, blob) "
+                             "VALUES (?, ?, ?, ?, ?)", (seq, created, digest, state_digest, blob))
+            db.execute("DELETE FROM checkpoints WHERE id NOT IN (SELECT id FROM checkpoints ORDER BY id DESC LIMIT ?)",
+                       (keep,))
+            oldest = db.execute("SELECT min(seq) FROM checkpoints").fetchone()[0] if prune else 0
+            if oldest > 0 and db.execute("SELECT 1 FROM journal WHERE seq <= ? LIMIT 1", (oldest,)).fetchone():
+                db.execute("DELETE FROM journal WHERE seq <= ?", (oldest,))
+                db.execute("INSERT INTO meta VALUES ('pruned_to', ?) ON CONFLICT (key) DO UPDATE SET "
+                           "value = max(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))", (str(oldest),))
+            return cur.lastrowid, oldest
+
+        ck_id, oldest = self._transaction(body)
         return Checkpoint((ck_id, seq, created, digest, state_digest, len(blob))), oldest
 
     def checkpoints(self) -> list[Checkpoint]:
@@ -207,5 +342,13 @@ class Journal:
         return [{"kind": k, "ts": ts, "reason": r, "evidence": orjson.loads(e)} for ts, k, r, e in reversed(rows)]
 
     def close(self) -> None:
+        """Close the file and release the data dir (idempotent)."""
         with self._lock:
             self._db.close()
+        self.dir_lock.release()
+
+    def __del__(self) -> None:
+        # the connection sits in a reference cycle (its statement cache) and would hold SQLite's
+        # exclusive lock until a garbage collection; a dropped journal lets go of both locks at once
+        if hasattr(self, "_db"):
+            self.close()

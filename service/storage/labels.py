@@ -16,18 +16,25 @@ through the journal like any other. The store is
 
 from __future__ import annotations
 
+import logging
 import sqlite3
 import threading
 import time
 from collections.abc import Callable
+from contextlib import suppress
 from pathlib import Path
 from typing import NamedTuple
 
 import orjson
 
+from service.errors import JournalUnavailable
+from service.storage.health import storage_fault
+
 __all__ = ["LabelStore", "Remembered"]
 
 FILE_NAME = "labels.sqlite"
+
+log = logging.getLogger("trimtab.service")
 
 
 class Remembered(NamedTuple):
@@ -66,6 +73,8 @@ class LabelStore:
         path = Path(data_dir) / FILE_NAME
         path.parent.mkdir(parents=True, exist_ok=True)
         self._db = sqlite3.connect(path, check_same_thread=False, isolation_level=None)
+        # as for the journal: no mapped database pages, so a failing disk is an error, never a SIGBUS
+        self._db.execute("PRAGMA mmap_size=0")
         self._db.execute("PRAGMA journal_mode=WAL")
         self._db.execute(f"PRAGMA synchronous={'FULL' if sync == 'full' else 'NORMAL'}")
         self._db.execute("CREATE TABLE IF NOT EXISTS remembered (id TEXT PRIMARY KEY, scored_at REAL NOT NULL, "
@@ -81,28 +90,48 @@ class LabelStore:
         return len(self._items)
 
     def remember(self, entries: list[tuple[str, float | None, dict]]) -> int:
-        """Keep ``(id, ts, features)`` entries durably; returns how many older entries were evicted."""
+        """Keep ``(id, ts, features)`` entries durably; returns how many older entries were evicted.
+
+        Raises
+        ------
+        JournalUnavailable
+            The write failed on a storage fault (disk full, read-only, ...): nothing was remembered
+            and the entries in memory are as before.
+        """
         now = self.clock()
-        rows = []
+        rows, prior = [], {}
         with self._lock:
             for ident, ts, feats in entries:
                 item = Remembered(now, now + self.ttl, ts, feats)
-                self._items.pop(ident, None)
+                prior.setdefault(ident, self._items.pop(ident, None))
                 self._items[ident] = item
                 rows.append((ident, item.scored_at, item.expires_at, ts, orjson.dumps(feats)))
-            drop = self._overflow(now)
+            evicted = self.evicted
+            drop = self._overflow(now, prior)
             self._db.execute("BEGIN IMMEDIATE")
             try:
                 self._db.executemany("INSERT OR REPLACE INTO remembered VALUES (?, ?, ?, ?, ?)", rows)
                 self._db.executemany("DELETE FROM remembered WHERE id = ?", [(k,) for k in drop])
                 self._db.execute("COMMIT")
-            except BaseException:
-                self._db.execute("ROLLBACK")
-                raise
+            except Exception as exc:
+                if self._db.in_transaction:
+                    with suppress(sqlite3.Error):
+                        self._db.execute("ROLLBACK")
+                for ident, old in prior.items():  # memory as before the request (order aside)
+                    self._items.pop(ident, None)
+                    if old is not None:
+                        self._items[ident] = old
+                self.evicted = evicted
+                reason = storage_fault(exc)
+                if reason is None:
+                    raise
+                raise JournalUnavailable(f"the features were not remembered: {reason}; retry later",
+                                         where="storage") from exc
         return len(drop)
 
-    def _overflow(self, now: float) -> list[str]:
-        """Entries to drop so that at most ``limit`` stay: expired ones first, then the oldest."""
+    def _overflow(self, now: float, dropped: dict) -> list[str]:
+        """Entries to drop so that at most ``limit`` stay: expired ones first, then the oldest (each
+        dropped entry goes into ``dropped`` unless it is there already, to undo a failed write)."""
         excess = len(self._items) - self.limit
         if excess <= 0:
             return []
@@ -114,7 +143,7 @@ class LabelStore:
             self.evicted += len(evict)
             drop += evict
         for k in drop:
-            del self._items[k]
+            dropped.setdefault(k, self._items.pop(k))
         return drop
 
     def lookup(self, ident: str) -> tuple[str, Remembered | None]:
@@ -132,7 +161,12 @@ class LabelStore:
         with self._lock:
             for k in ids:
                 self._items.pop(k, None)
-            self._db.executemany("DELETE FROM remembered WHERE id = ?", [(k,) for k in ids])
+            try:
+                self._db.executemany("DELETE FROM remembered WHERE id = ?", [(k,) for k in ids])
+            except sqlite3.Error as exc:  # the labels are learned already; a stale row is harmless
+                if storage_fault(exc) is None:
+                    raise
+                log.warning("learned labels stay in %s until the storage recovers: %s", FILE_NAME, exc)
 
     def sweep(self) -> int:
         """Drop tombstones older than one more TTL; returns how many went."""
@@ -141,7 +175,12 @@ class LabelStore:
             gone = [k for k, v in self._items.items() if v.expires_at <= cutoff]
             for k in gone:
                 del self._items[k]
-            self._db.execute("DELETE FROM remembered WHERE expires_at <= ?", (cutoff,))
+            try:
+                self._db.execute("DELETE FROM remembered WHERE expires_at <= ?", (cutoff,))
+            except sqlite3.Error as exc:  # the next sweep deletes them
+                if storage_fault(exc) is None:
+                    raise
+                log.warning("expired entries stay in %s until the storage recovers: %s", FILE_NAME, exc)
         return len(gone)
 
     def counts(self) -> dict:

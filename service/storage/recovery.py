@@ -1,12 +1,19 @@
 """The journal payload of an event, the serving copy of the model, and recovery at start.
 
-Recovery: the newest checkpoint whose digest verifies, then the journal rows after it.
+Recovery, in order (each refusal leaves the service not ready, with an incident that says why):
 
-A checkpoint whose SHA-256 digest does not match its blob (corrupt, truncated) or whose blob cannot
-be read is skipped with a persisted incident, and the next older one is tried; the journal is only
-pruned behind the oldest kept checkpoint, so an older checkpoint still has every row after it.
-Journal rows are re-applied on the learner thread through :meth:`Ingestor.apply_events`, the same
-code that applies live items, so the state after recovery is bit-identical to the state before.
+1. :func:`check_storage`: a write-ahead log that lost committed frames (see
+   :mod:`service.storage.health`) or a mark left by one (``STORAGE-DAMAGED`` in the data dir, until
+   an operator deletes it), and ``PRAGMA quick_check`` of the journal file;
+2. :func:`load_state`: the newest checkpoint whose digest verifies and whose format and position
+   read back. A checkpoint that fails is skipped with a persisted incident and the next older one
+   is tried; the journal is only pruned behind the oldest kept checkpoint, so an older checkpoint
+   still has every row after it. With no usable checkpoint the engine is rebuilt from the journal
+   if it holds the whole history (never pruned); otherwise recovery is refused, because a model
+   built from part of the history would silently drop acknowledged events;
+3. the journal rows after that position, re-applied on the learner thread through
+   :meth:`Ingestor.apply_events`, the same code that applies live items, so the state after
+   recovery is bit-identical to the state before.
 """
 
 from __future__ import annotations
@@ -17,11 +24,21 @@ import logging
 import numpy as np
 import orjson
 
+from models import TrimtabError
+
 from service.engine import Engine
 from service.events import Event
 from service.storage.journal import EVENT, NOTE, ROLLBACK
 
-__all__ = ["decode_event", "encode_event", "newest_good_checkpoint", "replay_rows", "serving_view"]
+__all__ = ["DAMAGE_MARK", "RecoveryRefused", "check_storage", "decode_event", "encode_event", "load_state",
+           "newest_good_checkpoint", "replay_rows", "serving_view"]
+
+#: a file in the data dir that keeps the service not ready after storage damage, until deleted
+DAMAGE_MARK = "STORAGE-DAMAGED"
+
+
+class RecoveryRefused(TrimtabError):
+    """Recovery cannot give a state that holds every acknowledged event; the service stays not ready."""
 
 log = logging.getLogger("trimtab.service")
 
@@ -57,6 +74,25 @@ def decode_event(payload: bytes) -> Event:
     return Event(ident, ts, feats, target)
 
 
+async def check_storage(ing) -> None:
+    """Refuse to start on a damaged journal file or write-ahead log (incident first)."""
+    journal = ing.journal
+    mark = journal.path.parent / DAMAGE_MARK
+    if journal.wal_damage is not None:
+        mark.write_text(journal.wal_damage + "\n")
+        await ing.db(ing._incident, "journal_damaged", journal.wal_damage, {"file": f"{journal.path.name}-wal"},
+                     True)
+    if mark.exists():
+        raise RecoveryRefused(f"storage damage was found earlier: {mark.read_text().strip()}. Check the data "
+                              f"dir, then delete {mark} to start with what the journal holds")
+    problems = [journal.open_damage] if journal.open_damage else await ing.db(journal.quick_check)
+    if problems:
+        reason = (f"the journal file {journal.path.name} is damaged (PRAGMA quick_check: {'; '.join(problems[:3])}); "
+                  "not starting, so that no acknowledged event is silently dropped; restore the data dir")
+        ing._incident("journal_damaged", reason, {"findings": problems})  # not persisted: the file is damaged
+        raise RecoveryRefused(reason)
+
+
 async def newest_good_checkpoint(ing) -> tuple[Engine | None, int]:
     """``(engine, position)`` from the newest usable checkpoint, or ``(None, 0)`` if there is none."""
     for ck in await ing.db(ing.journal.checkpoints):
@@ -68,14 +104,38 @@ async def newest_good_checkpoint(ing) -> tuple[Engine | None, int]:
         reason = "its SHA-256 digest does not match (corrupt or truncated)"
         if ok:
             try:
+                recorded = Engine.checkpoint_position(blob)
+                if recorded is not None and recorded != seq:
+                    raise ValueError(f"it records position {recorded}, its row says {seq}")
                 return Engine.from_bytes(ing.config, blob), seq
             except Exception as exc:  # a blob that hashes right but cannot be read is just as unusable
                 reason = f"it cannot be read: {exc}"
         await ing.db(ing._incident, "corrupt_checkpoint",
                      f"checkpoint {ck[0]} at journal position {seq} was skipped: {reason}; an older one "
-                     "(or an empty model) and a longer journal replay were used instead",
+                     "(or the whole journal) and a longer journal replay were used instead",
                      {"checkpoint": ck[0], "seq": seq}, True)
     return None, 0
+
+
+async def load_state(ing) -> tuple[Engine, int]:
+    """The engine to continue from and its journal position: the newest usable checkpoint, else an
+    empty engine at position 0 when the journal holds the whole history."""
+    engine, pos = await newest_good_checkpoint(ing)
+    if engine is not None:
+        return engine, pos
+    pruned = await ing.db(ing.journal.pruned_to)
+    had = await ing.db(ing.journal.checkpoints)
+    if pruned != 0:
+        where = f"up to position {pruned}" if pruned > 0 else "(up to an unknown position)"
+        reason = (f"no usable checkpoint and the journal was pruned {where}: a model rebuilt from the rest "
+                  "would miss acknowledged events, so the service stays not ready; restore a checkpoint "
+                  "(service.prune_journal = false keeps the whole history for this case)")
+        await ing.db(ing._incident, "history_incomplete", reason, {"pruned_to": pruned}, True)
+        raise RecoveryRefused(reason)
+    if had:
+        await ing.db(ing._incident, "rebuilt_from_journal", "no usable checkpoint: the model is rebuilt from "
+                     "the whole journal, which holds every acknowledged event", {"checkpoints": len(had)}, True)
+    return Engine(ing.config), 0
 
 
 def replay_rows(ing, rows: list[tuple]) -> None:

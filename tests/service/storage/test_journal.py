@@ -21,6 +21,8 @@ import pytest
 
 from service.config import ConfigError
 from service.storage.journal import EVENT, NOTE, Journal
+from service.storage import seen
+from service.storage.seen import id_key
 from tests.service.servicekit import ROOT
 
 
@@ -31,30 +33,51 @@ def payload(ident: str, x: float) -> bytes:
 def test_rows_and_runs_commit_in_order_with_exact_payloads(tmp_path):
     j = Journal(tmp_path)
     run = [payload(f"a{k}", k / 7) for k in range(50)]
-    j.append([(1, run), (51, None, NOTE, orjson.dumps([3, 53, None])), (52, [payload("b", 0.1)])])
-    rows = sqlite3.connect(tmp_path / "trimtab.sqlite").execute(
-        "SELECT seq, id, kind, typeof(payload), payload FROM journal ORDER BY seq").fetchall()
+    keys = [(id_key(f"a{k}"), k + 1) for k in range(50)] + [(id_key("b"), 52)]
+    j.append([(1, [f"a{k}" for k in range(50)], run), (51, None, NOTE, orjson.dumps([3, 53, None])),
+              (52, ["b"], [payload("b", 0.1)])], keys)
+    assert j.known([k for k, _ in keys] + [id_key("c")]) == {k for k, _ in keys}
+    assert [r[0] for r in j.rows_after(49, limit=2)] == [50, 51]
+    assert j.last_seq() == 52
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    rows = db.execute("SELECT seq, id, kind, typeof(payload), payload FROM journal ORDER BY seq").fetchall()
     assert [r[0] for r in rows] == list(range(1, 53))
     assert [r[1] for r in rows[:50]] == [f"a{k}" for k in range(50)] and rows[50][1] is None and rows[51][1] == "b"
     assert [r[2] for r in rows] == [EVENT] * 50 + [NOTE, EVENT]
     assert {r[3] for r in rows} == {"blob"}
     assert [r[4] for r in rows[:50]] == run  # byte for byte, floats included
-    assert j.ids() == {**{f"a{k}": k + 1 for k in range(50)}, "b": 52}
-    assert [r[0] for r in j.rows_after(49, limit=2)] == [50, 51]
-    assert j.last_seq() == 52
+    # the index holds the BLAKE2b-128 digest of each id (hashlib as the outside reference)
+    got = dict(db.execute("SELECT seq, h FROM seen UNION ALL SELECT seq, h FROM seen_new"))
+    assert got[52] == hashlib.blake2b(b"b", digest_size=16).digest() and len(got) == 51
 
 
-def test_a_duplicate_id_rolls_the_whole_transaction_back(tmp_path):
+def test_the_index_buffer_moves_into_the_indexed_table_and_both_answer(tmp_path, monkeypatch):
+    """Keys go to ``seen_new`` first and move to ``seen`` (primary key ``h``) once the buffer is full;
+    a lookup sees both, before and after a reopen; a failed transaction changes neither."""
+    monkeypatch.setattr(seen, "BUFFER_KEYS", 10)
     j = Journal(tmp_path)
-    j.append([(1, [payload("a", 1.0)])])
-    with pytest.raises(sqlite3.IntegrityError):
-        j.append([(2, [payload("b", 1.0), payload("a", 2.0)])])
-    assert j.count() == 1 and j.ids() == {"a": 1}
+    keys = [id_key(f"k{n}") for n in range(25)]
+    for n in range(0, 25, 4):  # commits of 4: the buffer fills at 12 and at 24
+        part = list(range(n, min(25, n + 4)))
+        j.append([(n + 1, [f"k{m}" for m in part], [payload(f"k{m}", m) for m in part])],
+                 [(keys[m], m + 1) for m in part])
+    with pytest.raises(sqlite3.IntegrityError):  # a row at a taken position: all or nothing
+        j.append([(26, ["late"], [payload("late", 0.0)]), (25, None, NOTE, b"[]")], [(id_key("late"), 26)])
+    assert j.known(keys + [id_key("late")]) == set(keys)
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    assert db.execute("SELECT count(*) FROM seen").fetchone()[0] == 24
+    assert db.execute("SELECT seq FROM seen_new").fetchall() == [(25,)]
+    db.close()
+    j = Journal(tmp_path)
+    assert j.known(keys) == set(keys) and j.last_seq() == 25
 
 
 def test_checkpoints_are_kept_pruned_and_verified(tmp_path):
     j = Journal(tmp_path)
-    j.append([(1, [payload(f"e{k}", k) for k in range(100)])])
+    j.append([(1, [f"e{k}" for k in range(100)], [payload(f"e{k}", k) for k in range(100)])],
+             [(id_key(f"e{k}"), k + 1) for k in range(100)])
     for seq in (20, 40, 60, 80):
         blob = os.urandom(1000) + seq.to_bytes(4, "little")
         ck, upto = j.write_checkpoint(seq, blob, f"state{seq}", keep=2)
@@ -63,15 +86,19 @@ def test_checkpoints_are_kept_pruned_and_verified(tmp_path):
     assert j.rows_after(0, 1)[0][0] == 61  # rows up to the oldest kept checkpoint are gone
     seq, blob, ok = j.load_checkpoint(j.checkpoints()[0][0])
     assert (seq, ok, blob[-4:]) == (80, True, (80).to_bytes(4, "little"))
+    assert j.pruned_to() == 60 and j.known([id_key("e0")]) == {id_key("e0")}  # the index is never pruned
+    j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     db.execute("UPDATE checkpoints SET blob = substr(blob, 1, 500) WHERE seq = 80")
     db.commit()
+    db.close()
+    j = Journal(tmp_path)
     assert j.load_checkpoint(j.checkpoints()[0][0])[2] is False
 
     keep_all = Journal(tmp_path / "all")
-    keep_all.append([(1, [payload(f"e{k}", k) for k in range(10)])])
+    keep_all.append([(1, [f"e{k}" for k in range(10)], [payload(f"e{k}", k) for k in range(10)])])
     keep_all.write_checkpoint(5, b"x", "s", keep=1, prune=False)
-    assert keep_all.count() == 10
+    assert keep_all.count() == 10 and keep_all.pruned_to() == 0
 
 
 def test_a_journal_refuses_another_learning_config(tmp_path):
@@ -98,7 +125,7 @@ def test_a_commit_survives_sigkill_right_after_it_returns(tmp_path, sync):
         import os, signal, sys, orjson
         from service.storage.journal import Journal
         j = Journal({str(tmp_path)!r}, sync={sync!r})
-        j.append([(1, [orjson.dumps(("k%d" % k, None, {{}}, 1.0)) for k in range(5000)])])
+        j.append([(1, ["k%d" % k for k in range(5000)], [orjson.dumps(("k%d" % k, None, {{}}, 1.0)) for k in range(5000)])])
         os.kill(os.getpid(), signal.SIGKILL)
     """)
     proc = subprocess.run([sys.executable, "-c", script], cwd=ROOT, capture_output=True)
@@ -106,3 +133,16 @@ def test_a_commit_survives_sigkill_right_after_it_returns(tmp_path, sync):
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT count(*), max(seq) FROM journal").fetchone() == (5000, 5000)
     assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+def test_ids_are_compared_as_bytes_whatever_they_hold(tmp_path):
+    """Ids that SQLite's text and JSON functions confuse (U+0000 inside, a prefix of another, lone
+    surrogates, long ones) are distinct keys, and each is a duplicate of itself only."""
+    odd = ["a", "a\x00", "a\x00b", "a\x00c", "\x00", "a\ud800", "x" * 10_000, "é", "e\u0301"]
+    j = Journal(tmp_path)
+    keys = [id_key(i) for i in odd]
+    assert len(set(keys)) == len(odd)
+    seqs, pairs = seen.number_events(keys + [id_key("a\x00b")], j.known(keys), 1)
+    assert seqs == list(range(1, len(odd) + 1)) + [None]  # the repeat in the same commit is the duplicate
+    j.append([(1, odd, [payload(f"p{k}", k) for k in range(len(odd))])], pairs)
+    assert j.known(keys + [id_key("a\x00d"), id_key("b")]) == set(keys)

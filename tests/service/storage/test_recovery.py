@@ -23,6 +23,7 @@ from service.engine import Engine
 from service.events import EventValidator
 from service.ingest import encode_event
 from service.storage.journal import Journal
+from service.storage.seen import id_key
 from tests.service.servicekit import AUTH, TOKEN, ServeProcess, demo_events, make_config, toml_text, wait_ready
 
 
@@ -172,7 +173,8 @@ async def test_readyz_is_503_until_the_journal_is_replayed(aiohttp_client, tmp_p
     from service.storage.journal import fingerprint
 
     j.claim(fingerprint(cfg))
-    j.append([(1, [encode_event(e) for e in events])])
+    j.append([(1, [e.id for e in events], [encode_event(e) for e in events])],
+             [(id_key(e.id), k + 1) for k, e in enumerate(events)])
     j.close()
     client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     first = await client.get("/readyz")

@@ -1,0 +1,150 @@
+"""Cost of the whole-history deduplication index and of the two durability modes, per million ids.
+
+Everything runs on real SQLite files in a temporary folder through :class:`service.storage.journal.Journal`,
+the code the service commits with. Prints a table; the last line is one JSON object. Figures:
+
+* ``index_bytes_per_million`` and ``index_vs_raw_bytes``: growth of the database file per million
+  indexed ids (``seen`` rows: a 16-byte key and a position), against the 16 MB that the bare keys
+  take in a flat file (the baseline).
+* ``lookup_us_per_id`` and ``lookup_vs_set``: :meth:`Journal.known` on batches of 5,000 ids (half
+  known, half new) against a history of ``--history`` ids, per id, against a Python ``set`` holding
+  the same keys in memory (what an in-memory index costs; it also grows RSS without bound).
+* ``commit_with_index_vs_without``: mean time of a commit of 5,000 events (journal rows plus their
+  keys, after the lookup) against the same commits of the rows alone, both with
+  ``synchronous=FULL``, at that history size, over enough commits that the buffer of new keys is
+  moved into the indexed table twice (those commits are the slow ones: ``commit_ms_max_with_index``).
+* ``set_mb_per_million``: memory an in-memory set of the keys takes per million ids (the set and its
+  bytes objects, by ``sys.getsizeof``),
+  the cost the on-disk index avoids (its own memory is SQLite's page cache, 2 MB by default).
+* ``normal_vs_full_commit_<n>``: commit time with ``synchronous=NORMAL`` divided by ``FULL`` for
+  commits of ``n`` events (1, 100, 5,000): the price of surviving power loss, not just a crash.
+
+Usage: ``python3 benchmarks/dedup.py [--history 1000000] [--repeats 20]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import orjson
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from service.storage import seen  # noqa: E402
+from service.storage.journal import FILE_NAME, Journal  # noqa: E402
+
+BATCH = 5000
+
+
+def payloads(tag: str, n: int) -> tuple[list[str], list[bytes]]:
+    """``n`` journal payloads shaped like the demo feed's events."""
+    ids = [f"{tag}-{k:09d}" for k in range(n)]
+    return ids, [orjson.dumps((i, 1772439300.0 + k, {"ambient_c": 21.4 + k % 7, "door_open_s": 35, "load_kg": 410,
+                                                      "van": f"V{k % 40:02d}", "route": "urban"}, 4.8))
+                 for k, i in enumerate(ids)]
+
+
+def fill_history(folder: Path, n: int) -> tuple[Journal, float]:
+    """A journal whose index holds ``n`` ids; returns it and the file growth in bytes."""
+    j = Journal(folder, sync="normal")
+    before = (folder / FILE_NAME).stat().st_size
+    for start in range(0, n, 100_000):
+        keys = [(seen.id_key(f"h-{k:09d}"), k + 1) for k in range(start, min(n, start + 100_000))]
+        j.append([(keys[0][1], None, 1, b"[0, 0, null]")], keys)  # one small row carries the transaction
+    j._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+    return j, (folder / FILE_NAME).stat().st_size - before
+
+
+def time_commits(j: Journal, tag: str, size: int, repeats: int, index: bool, first_seq: int) -> list[float]:
+    """Seconds per commit of ``size`` events, as the service commits them (lookup, rows, keys)."""
+    out = []
+    for r in range(repeats):
+        ids, pays = payloads(f"{tag}{r}", size)
+        t0 = time.perf_counter()
+        if index:
+            keys = [seen.id_key(i) for i in ids]
+            known = j.known(keys)
+            seqs, pairs = seen.number_events(keys, known, first_seq)
+        else:
+            pairs = []
+        j.append([(first_seq, ids, pays)], pairs)
+        out.append(time.perf_counter() - t0)
+        first_seq += size
+    return out
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--history", type=int, default=1_000_000, help="ids in the index before timing")
+    ap.add_argument("--repeats", type=int, default=20, help="timed commits/lookups per figure")
+    args = ap.parse_args()
+    n, reps = args.history, args.repeats
+    res: dict = {"history": n, "python": platform.python_version(), "machine": platform.machine(),
+                 "cores": os.cpu_count()}
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        t0 = time.perf_counter()
+        j, grown = fill_history(tmp / "indexed", n)
+        res["fill_s"] = round(time.perf_counter() - t0, 2)
+        res["index_bytes_per_million"] = round(grown * 1e6 / n)
+        res["index_vs_raw_bytes"] = round(grown / (16 * n), 2)
+
+        keys = [seen.id_key(f"h-{k:09d}") for k in range(n)]
+        as_set = set(keys)
+        held = sys.getsizeof(as_set) + sum(sys.getsizeof(k) for k in keys)
+        res["set_mb_per_million"] = round(held / 2**20 * 1e6 / n, 1)
+        probe = [keys[(k * 7919) % n] for k in range(BATCH // 2)] + [seen.id_key(f"new-{k}") for k in range(BATCH // 2)]
+        db_t, set_t = [], []
+        for _ in range(reps):
+            t = time.perf_counter()
+            found = j.known(probe)
+            db_t.append(time.perf_counter() - t)
+            t = time.perf_counter()
+            in_set = {k for k in probe if k in as_set}
+            set_t.append(time.perf_counter() - t)
+            assert found == in_set
+        res["lookup_us_per_id"] = round(statistics.median(db_t) / BATCH * 1e6, 3)
+        res["lookup_vs_set"] = round(statistics.median(db_t) / statistics.median(set_t), 1)
+        j.close()
+
+        commits = 2 * seen.BUFFER_KEYS // BATCH + 2
+        j = Journal(tmp / "indexed", sync="full")
+        with_index = time_commits(j, "w", BATCH, commits, True, n + 1)
+        j.close()
+        plain = Journal(tmp / "plain", sync="full")
+        without = time_commits(plain, "p", BATCH, commits, False, 1)
+        res["commit_ms_with_index"] = round(statistics.mean(with_index) * 1e3, 2)
+        res["commit_ms_max_with_index"] = round(max(with_index) * 1e3, 2)
+        res["commit_ms_without_index"] = round(statistics.mean(without) * 1e3, 2)
+        res["commit_with_index_vs_without"] = round(statistics.mean(with_index) / statistics.mean(without), 2)
+        res["commit_us_per_event_added_by_index"] = round((statistics.mean(with_index) - statistics.mean(without))
+                                                           / BATCH * 1e6, 1)
+        plain.close()
+
+        for size in (1, 100, BATCH):
+            times = {}
+            for sync in ("full", "normal"):
+                jj = Journal(tmp / f"sync-{sync}-{size}", sync=sync)
+                times[sync] = statistics.median(time_commits(jj, sync, size, reps, True, 1))
+                jj.close()
+            res[f"commit_ms_full_{size}"] = round(times["full"] * 1e3, 3)
+            res[f"normal_vs_full_commit_{size}"] = round(times["normal"] / times["full"], 3)
+        del as_set
+
+    width = max(len(k) for k in res)
+    for k, v in res.items():
+        print(f"{k:<{width}}  {v}")
+    print(json.dumps(res))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,101 @@
+"""The deduplication index: every event id ever journaled, as a 128-bit hash in an indexed table.
+
+An id that was accepted once is a duplicate forever, however long ago and whatever the journal kept:
+the index lives in the journal database next to the rows (``seen``) and is never pruned with them.
+It is keyed by ``id_key(id)``, the 16-byte BLAKE2b digest of the id's UTF-8 bytes, so
+
+* ids are compared as bytes, never through SQLite's text or JSON functions (an id holding U+0000 is
+  an id like any other);
+* a row costs about the same whatever the id's length (measured in ``benchmarks/dedup.py``);
+* memory stays bounded: lookups go through SQLite's page cache (a fixed size) and a buffer of at
+  most :data:`BUFFER_KEYS` recent keys, not a dict of every id.
+
+Two levels keep the writes small. New keys are appended to ``seen_new``, a table in insertion
+order without an index (a commit writes only its tail pages), and mirrored in memory for lookups.
+When it holds :data:`BUFFER_KEYS` keys, the commit that filled it moves them into ``seen``, the
+indexed table (``h`` is its primary key), in one sorted pass. Inserting random 128-bit keys one
+commit at a time into a large B-tree instead dirties about one page (4 KiB) per new id in every
+commit once the index outgrows the commit (measured in ``benchmarks/dedup.py``); the buffer turns
+that into one pass over the touched pages per :data:`BUFFER_KEYS` ids.
+
+Two different ids share a key with probability about ``n**2 / 2**129`` for ``n`` ids ever seen
+(birthday bound): below 1e-20 for ten billion ids. Such a pair would make the later one a duplicate.
+
+Within one commit the first occurrence of an id wins and later ones are duplicates
+(:func:`number_events`); commits run one at a time on the journal's thread, in queue order, so
+concurrent producers retrying the same ids get a deterministic answer: one accepted, the others
+duplicates, never an error.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import sqlite3
+from collections.abc import Iterable
+
+__all__ = ["BUFFER_KEYS", "SCHEMA", "id_key", "insert_keys", "known_keys", "load_buffer", "number_events"]
+
+SCHEMA = ("CREATE TABLE IF NOT EXISTS seen (h BLOB PRIMARY KEY, seq INTEGER NOT NULL) WITHOUT ROWID;\n"
+          "CREATE TABLE IF NOT EXISTS seen_new (h BLOB NOT NULL, seq INTEGER NOT NULL);")
+
+#: keys buffered in ``seen_new`` (and in memory, about 100 bytes each) before they move to ``seen``
+BUFFER_KEYS = 65_536
+
+#: bound parameters per lookup statement (SQLite allows 32,766 since 3.32)
+_LOOKUP_CHUNK = 4000
+
+
+def id_key(ident: str) -> bytes:
+    """The 16-byte index key of an event id (BLAKE2b-128 of its UTF-8 bytes)."""
+    return hashlib.blake2b(ident.encode("utf-8", "surrogatepass"), digest_size=16).digest()
+
+
+def load_buffer(db: sqlite3.Connection) -> set[bytes]:
+    """The keys in ``seen_new`` (at open: the in-memory mirror of the buffer)."""
+    return {r[0] for r in db.execute("SELECT h FROM seen_new")}
+
+
+def known_keys(db: sqlite3.Connection, buffer: set[bytes], keys: list[bytes]) -> set[bytes]:
+    """The subset of ``keys`` already in the index: the buffer, then primary-key lookups in chunks."""
+    found = {k for k in keys if k in buffer}
+    keys = [k for k in keys if k not in found]
+    for i in range(0, len(keys), _LOOKUP_CHUNK):
+        part = keys[i:i + _LOOKUP_CHUNK]
+        marks = ",".join("?" * len(part))
+        found.update(r[0] for r in db.execute(f"SELECT h FROM seen WHERE h IN ({marks})", part))
+    return found
+
+
+def insert_keys(db: sqlite3.Connection, buffer: set[bytes], pairs: list[tuple[bytes, int]]) -> bool:
+    """Add ``(key, seq)`` pairs inside the caller's transaction; ``buffer`` is the mirror of
+    ``seen_new`` *before* them, and is not changed (the caller updates it once the commit holds).
+
+    Returns whether the buffer was moved into ``seen`` (the caller then empties its mirror).
+    """
+    db.executemany("INSERT INTO seen_new (h, seq) VALUES (?, ?)", pairs)
+    if len(buffer) + len(pairs) < BUFFER_KEYS:
+        return False
+    db.execute("INSERT INTO seen (h, seq) SELECT h, seq FROM seen_new ORDER BY h")
+    db.execute("DELETE FROM seen_new")
+    return True
+
+
+def number_events(keys: list[bytes | None], known: set[bytes], first_seq: int) -> tuple[list, list]:
+    """Journal positions for one item's events: ``None`` for a duplicate (a key in ``known``, which
+    grows with this item's new keys) and consecutive positions from ``first_seq`` for the others.
+
+    Returns ``(seqs, new_pairs)``; events without an id (``None`` key) are never duplicates.
+    """
+    seqs: list = []
+    pairs: list[tuple[bytes, int]] = []
+    seq = first_seq
+    for key in keys:
+        if key is not None:
+            if key in known:
+                seqs.append(None)
+                continue
+            known.add(key)
+            pairs.append((key, seq))
+        seqs.append(seq)
+        seq += 1
+    return seqs, pairs
