@@ -92,12 +92,13 @@ def _reader(feeds, config, columnar: bool, workers: int, out: queue.Queue, stop:
 
 
 def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0, counts: _Counts | None = None,
-               config_path: str | None = None) -> dict:
+               config_path: str | None = None, keep_state: bool = False) -> dict:
     """Replay ``feeds`` (paths, in order) under ``config``; return the run's results.
 
     ``workers`` threads parse ahead of the engine (0: one per core).
 
-    Returns ``{"summary": RUN, "model": model.json content, "trace": {key: list}, "incidents": [...]}``.
+    Returns ``{"summary": RUN, "model": model.json content, "trace": {key: list}, "incidents": [...]}``,
+    plus ``"state"`` (:meth:`Engine.to_bytes`, the final state) with ``keep_state=True``.
     """
     from service.feeds.columns import take_prepared
     from service.engine import Engine
@@ -161,8 +162,11 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
                    bad_lines=bad, duplicate_lines=dups)
     model = {"name": config.name, "state_digest": summary["state_digest"], "serving": engine.serving,
              "raw": engine.model.coefficients("raw"), "averaged": engine.model.coefficients("averaged")}
-    return {"summary": summary, "model": model, "trace": trace, "incidents": _clean(engine.incidents),
-            "loss": config.model.loss}
+    out = {"summary": summary, "model": model, "trace": trace, "incidents": _clean(engine.incidents),
+           "loss": config.model.loss}
+    if keep_state:
+        out["state"] = engine.to_bytes()
+    return out
 
 
 def _drain(engine, trace: dict) -> None:
