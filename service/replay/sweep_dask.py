@@ -20,7 +20,6 @@ scheduler's HTTP endpoint on a free loopback port (no dashboard is served).
 
 from __future__ import annotations
 
-import hashlib
 import os
 import socket
 import sys
@@ -50,23 +49,21 @@ class Outcome:
     lost: list[str] = field(default_factory=list)
 
 
-def _reachable(feed: str) -> str:
-    """A local path for ``feed``: the path itself, or a copy of an http(s) URL kept per worker machine."""
-    scheme = urllib.parse.urlsplit(feed).scheme
-    if scheme == "file":
-        return urllib.request.url2pathname(urllib.parse.urlsplit(feed).path)
-    if scheme not in _URL_SCHEMES:
+def _reachable(feed: str, scratch: Path, k: int) -> str:
+    """A local path for ``feed``: the path itself, or a copy of an http(s) URL downloaded into ``scratch``.
+
+    Each run downloads its own copy and deletes it afterwards: a cache shared between runs would
+    have to know when the file behind the URL changed.
+    """
+    parts = urllib.parse.urlsplit(feed)
+    if parts.scheme == "file":
+        return urllib.request.url2pathname(parts.path)
+    if parts.scheme not in _URL_SCHEMES:
         return feed
-    suffix = "".join(Path(urllib.parse.urlsplit(feed).path).suffixes[-2:])
-    folder = Path(tempfile.gettempdir()) / "trimtab-sweep-feeds"
-    folder.mkdir(exist_ok=True)
-    target = folder / (hashlib.sha256(feed.encode()).hexdigest()[:20] + suffix)
-    if not target.exists():
-        part = folder / f"{target.name}.{uuid.uuid4().hex}.part"
-        with urllib.request.urlopen(feed, timeout=60) as answer, open(part, "wb") as f:
-            while block := answer.read(1 << 20):
-                f.write(block)
-        os.replace(part, target)  # atomic: runs on the same machine never read a half-written copy
+    target = scratch / (f"feed{k}" + "".join(Path(parts.path).suffixes[-2:]))
+    with urllib.request.urlopen(feed, timeout=60) as answer, open(target, "wb") as f:
+        while block := answer.read(1 << 20):
+            f.write(block)
     return str(target)
 
 
@@ -92,8 +89,9 @@ def run_task(feeds: list[str], config_data: dict, parse_threads: int) -> dict:
     from service.replay.runner import run_replay
 
     config = config_from_dict(config_data, source=f"run {config_data.get('name')}")
-    local = [_reachable(f) for f in feeds]
-    result = run_replay(local, config, workers=parse_threads, keep_state=True)
+    with tempfile.TemporaryDirectory(prefix="trimtab-sweep-feed-") as scratch:
+        local = [_reachable(f, Path(scratch), k) for k, f in enumerate(feeds)]
+        result = run_replay(local, config, workers=parse_threads, keep_state=True)
     result["summary"]["feed"] = feeds[0] if len(feeds) == 1 else list(feeds)
     result["worker"] = {"host": socket.gethostname(), "pid": os.getpid()}
     return result
