@@ -143,10 +143,12 @@ def execute(feeds: list[str], grid: list, *, address: str | None = None, workers
     from distributed import as_completed
     from distributed.scheduler import KilledWorker
 
+    begin = time.perf_counter()
     client, cluster, threads, executor = _connect(address, workers, quiet)
     outcomes = [Outcome(run) for run in grid]
     tag = uuid.uuid4().hex[:8]
     start = time.perf_counter()
+    executor["start_seconds"] = start - begin
 
     def submit(k: int):
         outcomes[k].attempts += 1
@@ -181,10 +183,11 @@ def execute(feeds: list[str], grid: list, *, address: str | None = None, workers
             _say(f"{done}/{len(grid)} runs finished, {grid[k].name} {state}; elapsed {_clock(elapsed)}, "
                  f"ETA {_clock(eta)}", quiet)
             fut.release()
+        executor["runs_seconds"] = time.perf_counter() - start
     finally:
         client.close()
         if cluster is not None:
             cluster.close()
-    executor["seconds"] = time.perf_counter() - start
+    executor["seconds"] = time.perf_counter() - begin
     return outcomes, executor
 
