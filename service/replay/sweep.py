@@ -67,6 +67,7 @@ def rank(outcomes: list) -> list[dict]:
             "restarts": len(s.get("restarts") or []), "events": s.get("events"), "learned": s.get("learned"),
             "state_digest": s.get("state_digest"), "events_per_second": s.get("events_per_second"),
             "attempts": out.attempts, "lost_workers": out.lost, "worker": out.result.get("worker"),
+            "parsed": out.result.get("parsed"),
         })
     by_progressive = sorted(rows, key=lambda r: (_order(r["progressive_loss"]), r["name"]))
     for k, row in enumerate(by_progressive, 1):

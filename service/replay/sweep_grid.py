@@ -30,7 +30,7 @@ from pydantic import BaseModel
 
 from service.config import Config, ConfigError, config_from_dict
 
-__all__ = ["GridRun", "build_grid", "parse_vary", "to_toml"]
+__all__ = ["GridRun", "allowed", "build_grid", "parse_vary", "to_toml"]
 
 _NAME_LIMIT = 64  # the config's ``name`` pattern allows 64 characters
 _UNSAFE = re.compile(r"[^A-Za-z0-9_.-]+")
