@@ -176,7 +176,7 @@ def sweep_main(args) -> int:
     if out.exists() and not out.is_dir():
         raise InvalidSettings("exists and is not a folder", where=str(out))
     outcomes, executor = execute(feeds, grid, address=args.cluster, workers=min(workers, len(grid)),
-                                 quiet=args.no_progress)
+                                 quiet=args.no_progress, reuse=not args.parse_each_run)
     meta = {"base": str(args.config), "vary": _axes(grid), "executor": executor}
     written = write_sweep(out, feeds, outcomes, meta, report=not args.no_report)
     _print_ranking(written, outcomes, out)

@@ -200,11 +200,12 @@ def _connect(address: str | None, workers: int, quiet: bool):
 
 
 def execute(feeds: list[str], grid: list, *, address: str | None = None, workers: int = 1,
-            quiet: bool = False) -> tuple[list[Outcome], dict]:
+            quiet: bool = False, reuse: bool = True) -> tuple[list[Outcome], dict]:
     """Run every config of ``grid`` on Dask; outcomes in grid order and the executor's description.
 
     ``address`` is a running scheduler (``tcp://host:port``); ``None`` starts a local cluster of
-    ``workers`` processes and stops it afterwards.
+    ``workers`` processes and stops it afterwards. ``reuse=False`` makes every run parse the feeds
+    itself (no chunks kept in a worker's memory between runs).
     """
     from distributed import as_completed
     from distributed.scheduler import KilledWorker
@@ -214,11 +215,11 @@ def execute(feeds: list[str], grid: list, *, address: str | None = None, workers
     outcomes = [Outcome(run) for run in grid]
     tag = uuid.uuid4().hex[:8]
     start = time.perf_counter()
-    executor["start_seconds"] = start - begin
+    executor.update(start_seconds=start - begin, reuse_parsed=reuse)
 
     def submit(k: int):
         outcomes[k].attempts += 1
-        return client.submit(run_task, list(feeds), grid[k].data(), threads, tag, pure=False,
+        return client.submit(run_task, list(feeds), grid[k].data(), threads, tag if reuse else "", pure=False,
                              key=f"trimtab-sweep-{tag}-{grid[k].name}-{outcomes[k].attempts}")
 
     try:
