@@ -17,7 +17,10 @@ medians over the repeats:
   ``sweep.json``), without starting and stopping the local cluster;
 * ``sweep_speedup_parse_each_run``: ``sweep_speedup`` with ``--parse-each-run``;
 * ``reuse_gain_1_worker``, ``reuse_gain_2_workers``: seconds with ``--parse-each-run`` / without;
-* ``cluster_start_seconds``: starting the local cluster (scheduler, nannies, worker processes).
+* ``cluster_start_seconds``: starting the local cluster (scheduler, nannies, worker processes);
+* ``machine_parallel_speedup``: what this machine gives two processes right now, without Dask:
+  two ``trimtab replay --no-report`` processes of the base config one after the other / both at
+  once. On a shared machine this bounds ``sweep_speedup``.
 
 Every repeat also checks that both sweeps gave the same ``state_digest`` for every run.
 Usage: ``python3 benchmarks/sweep.py [--events N] [--repeat K]``. The last line is one JSON object.
@@ -57,6 +60,26 @@ def sweep(feed: Path, out: Path, workers: int, extra: tuple = ()) -> tuple[float
     return seconds, json.loads((out / "sweep.json").read_text())
 
 
+def machine_parallel(feed: Path, folder: Path) -> float:
+    """Seconds of two plain replays one after the other divided by the seconds of both at once."""
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+
+    def command(k: int) -> list:
+        return [sys.executable, "-m", "service.cli", "replay", str(feed), "-c", str(BASE), "--out",
+                str(folder / f"replay-{k}"), "--no-report", "--no-progress"]
+
+    start = time.perf_counter()
+    for k in range(2):
+        subprocess.run(command(k), env=env, capture_output=True, check=True, timeout=3600)
+    serial = time.perf_counter() - start
+    start = time.perf_counter()
+    procs = [subprocess.Popen(command(k), env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+             for k in range(2)]
+    for proc in procs:
+        proc.wait(timeout=3600)
+    return serial / (time.perf_counter() - start)
+
+
 def _digests(result: dict) -> dict:
     return {row["name"]: row["state_digest"] for row in result["ranking"]}
 
@@ -90,6 +113,8 @@ def main() -> None:
                 p = row[mode]
                 print(f"{k + 1:>6} {mode:>10} {p['whole_1']:>11.1f} {p['whole_2']:>12.1f} {p['speedup']:>8.2f} "
                       f"{p['runs_1']:>9.1f} {p['runs_2']:>9.1f} {p['speedup_runs']:>13.2f} {p['load']:>5.1f}")
+            row["machine"] = machine_parallel(feed, folder)
+            print(f"{k + 1:>6} {'machine':>10} two plain replays at once: {row['machine']:.2f}x one after the other")
             pairs.append(row)
 
     def med(mode: str, key: str) -> float:
@@ -109,7 +134,9 @@ def main() -> None:
         "seconds_1_worker_parse_each_run": med("each", "whole_1"),
         "seconds_2_workers_parse_each_run": med("each", "whole_2"),
         "reuse_gain_1_worker": gain("whole_1"), "reuse_gain_2_workers": gain("whole_2"),
-        "cluster_start_seconds": round(statistics.median(s for p in pairs for m in p.values() for s in m["start"]), 2),
+        "cluster_start_seconds": round(statistics.median(s for p in pairs for m in ("reuse", "each")
+                                                         for s in p[m]["start"]), 2),
+        "machine_parallel_speedup": round(statistics.median(p["machine"] for p in pairs), 3),
         "same_digests": same, "cores": os.cpu_count(), "python": platform.python_version(),
         "load_average_after": round(os.getloadavg()[0], 2), "goal_sweep_speedup": 1.7,
     }
