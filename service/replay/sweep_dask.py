@@ -157,7 +157,10 @@ def run_task(feeds: list[str], config_data: dict, parse_threads: int, tag: str =
             source = _PARSED.recording(key, local, config, parse_threads or os.cpu_count() or 1) if key else None
             parsed = "read"
         result = run_replay(local, config, workers=parse_threads, keep_state=True, chunk_source=source)
-    result["summary"]["feed"] = feeds[0] if len(feeds) == 1 else list(feeds)
+    summary, names = result["summary"], dict(zip(local, feeds))
+    summary["feed"] = feeds[0] if len(feeds) == 1 else list(feeds)
+    for item in summary.get("bad_lines", []) + summary.get("duplicate_lines", []):
+        item["feed"] = names.get(item["feed"], item["feed"])  # the URL, not this worker's copy of it
     result["worker"] = {"host": socket.gethostname(), "pid": os.getpid()}
     result["parsed"] = parsed
     return result

@@ -150,3 +150,6 @@ def test_sweep_through_a_scheduler_and_two_separate_worker_processes(tmp_path, c
     ran_on = {row["worker"]["pid"] for row in sweep["ranking"]}
     assert ran_on <= {p.pid for p in procs[1:]} and len(ran_on) == 2
     assert sweep["feeds"] == [url] and f"Dask scheduler {address} with 2 workers" in err
+    runs = json.loads((out / "summary.json").read_text())["runs"]
+    assert all(r["bad_lines"] for r in runs)  # the scenario's malformed lines, named by the URL
+    assert {b["feed"] for r in runs for b in r["bad_lines"]} == {url}
