@@ -138,3 +138,16 @@ def test_a_run_that_fails_is_reported_and_the_rest_completes(feed, reference):
     assert outcomes[1].attempts == 1  # a refused config fails the same way again: not retried
     assert outcomes[0].result["summary"]["state_digest"] == reference[run_name("anytime", "uniform")]
     assert outcomes[2].result["summary"]["state_digest"] == reference[run_name("sqrt_decay", "uniform")]
+
+
+@pytest.mark.parametrize("extra, where", [
+    ([], "--vary"),
+    (["--vary", "steps.rule=anytime", "--workers", "0"], "--workers"),
+    (["--vary", "steps.rule=anytime", "--workers", "2", "--cluster", "tcp://127.0.0.1:1"], "--workers"),
+])
+def test_sweep_arguments_are_checked_before_anything_runs(tmp_path, capsys, extra, where):
+    """No grid, no worker or a worker count beside a cluster: exit 2 naming the option, nothing written
+    (checked before the feed, absent here, is even looked at)."""
+    out = tmp_path / "never"
+    assert main(["sweep", str(tmp_path / "absent.ndjson"), "-c", str(BASE), "--out", str(out), *extra]) == 2
+    assert f"config error: {where}" in capsys.readouterr().err and not out.exists()
