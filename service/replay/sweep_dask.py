@@ -29,6 +29,7 @@ import time
 import urllib.parse
 import urllib.request
 import uuid
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -149,11 +150,13 @@ def run_task(feeds: list[str], config_data: dict, parse_threads: int, tag: str =
 
     config = config_from_dict(config_data, source=f"run {config_data.get('name')}")
     key = _PARSED.key_of(tag, list(feeds), config_data) if tag else None
-    with tempfile.TemporaryDirectory(prefix="trimtab-sweep-feed-") as scratch:
+    remote = any(urllib.parse.urlsplit(f).scheme in _URL_SCHEMES for f in feeds)
+    # a folder only for downloaded feeds: a worker killed mid-run leaves it behind
+    with tempfile.TemporaryDirectory(prefix="trimtab-sweep-feed-") if remote else nullcontext() as scratch:
         if key is not None and key == _PARSED.key:
             local, source, parsed = list(feeds), _PARSED.chunks, "reused"
         else:
-            local = [_reachable(f, Path(scratch), k) for k, f in enumerate(feeds)]
+            local = [_reachable(f, Path(scratch or "."), k) for k, f in enumerate(feeds)]
             source = _PARSED.recording(key, local, config, parse_threads or os.cpu_count() or 1) if key else None
             parsed = "read"
         result = run_replay(local, config, workers=parse_threads, keep_state=True, chunk_source=source)
