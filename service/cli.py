@@ -53,6 +53,27 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--exact-parse", action="store_true",
                    help="parse NDJSON line by line (orjson) instead of with Arrow; same results, slower")
 
+    w = sub.add_parser("sweep", help="replay a feed under a grid of configs derived from a base, on Dask, and rank them",
+                       description="Derive one config per combination of the --vary values, validate them all, "
+                                   "replay each on Dask and rank the runs by held-out and progressive loss. "
+                                   "Exit status 1 if a run failed (the others are still written).")
+    w.add_argument("feeds", nargs="+", help="NDJSON, CSV or Parquet files (.gz allowed), or http(s) URLs; with "
+                                            "--cluster every worker must reach them (a shared path or a URL)")
+    w.add_argument("-c", "--config", required=True, help="the base config (TOML)")
+    w.add_argument("--vary", action="append", default=[], metavar="KEY=V1,V2,...",
+                   help="a dotted config key and its values, e.g. steps.rule=anytime,sqrt_decay; repeat for a grid")
+    w.add_argument("--out", required=True, help="output folder: sweep.json, sweep.html, <run>/ with config and state")
+    w.add_argument("--workers", type=int, default=None,
+                   help="worker processes of the local Dask cluster on 127.0.0.1 (default: one per core)")
+    w.add_argument("--cluster", default=None, metavar="ADDRESS",
+                   help="a running Dask scheduler (tcp://host:port) instead of a local cluster; its workers "
+                        "need trimtab installed and must reach the feeds")
+    w.add_argument("--parse-each-run", action="store_true",
+                   help="every run parses the feeds itself; by default a worker parses them once and keeps the "
+                        "chunks in memory for its later runs (feeds up to 1 GiB)")
+    w.add_argument("--no-progress", action="store_true", help="no progress lines on stderr")
+    w.add_argument("--no-report", action="store_true", help="write sweep.json and the runs' files, not sweep.html")
+
     c = sub.add_parser("check-config", help="validate a config and print the resolved settings")
     c.add_argument("config")
     return p
@@ -84,6 +105,10 @@ def main(argv: list[str] | None = None) -> int:
             from service.replay.runner import replay_main
 
             return replay_main(args)
+        if args.command == "sweep":
+            from service.replay.sweep import sweep_main
+
+            return sweep_main(args)
         if args.command == "demo":
             from service.replay.demo import demo_main
 

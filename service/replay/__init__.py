@@ -1,5 +1,7 @@
 """Replay: the offline runner (``runner``), the report (``report``), progress lines (``progress``),
-the demo scenario (``scenario``, ``demo``) and feeds built from open datasets (``open_feeds``).
+the demo scenario (``scenario``, ``demo``), feeds built from open datasets (``open_feeds``) and
+config sweeps on Dask (``sweep``: its grid in ``sweep_grid``, its runs in ``sweep_dask``, its page
+in ``sweep_report``).
 
 May import everything in ``service`` but ``service.http``.
 """

@@ -74,32 +74,41 @@ class _Counts:
         self.store[2 * self.slot + 1] = fraction
 
 
-def _reader(feeds, config, columnar: bool, workers: int, out: queue.Queue, stop: threading.Event) -> None:
+def _read(feeds, config, columnar: bool, workers: int):
+    """``(feed index, chunk)`` pairs of the feeds, in order."""
     from service.feeds.files import read_feed
 
+    for k, feed in enumerate(feeds):
+        for chunk in read_feed(feed, config, columnar=columnar, workers=workers):
+            yield k, chunk
+
+
+def _reader(pairs, out: queue.Queue, stop: threading.Event) -> None:
     try:
-        for k, feed in enumerate(feeds):
-            for chunk in read_feed(feed, config, columnar=columnar, workers=workers):
-                while not stop.is_set():
-                    try:
-                        out.put((k, chunk), timeout=0.2)
-                        break
-                    except queue.Full:
-                        continue
-                if stop.is_set():
-                    return
+        for k, chunk in pairs:
+            while not stop.is_set():
+                try:
+                    out.put((k, chunk), timeout=0.2)
+                    break
+                except queue.Full:
+                    continue
+            if stop.is_set():
+                return
         out.put(None)
     except BaseException as exc:  # handed to the engine thread, which re-raises it
         out.put(exc)
 
 
 def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0, counts: _Counts | None = None,
-               config_path: str | None = None) -> dict:
+               config_path: str | None = None, keep_state: bool = False, chunk_source=None) -> dict:
     """Replay ``feeds`` (paths, in order) under ``config``; return the run's results.
 
-    ``workers`` threads parse ahead of the engine (0: one per core).
+    ``workers`` threads parse ahead of the engine (0: one per core). ``chunk_source``, when given, is
+    an iterable of the ``(feed index, chunk)`` pairs to apply instead of reading the feeds: chunks read earlier
+    for a config that prepares events the same way (a sweep's worker reuses them across runs).
 
-    Returns ``{"summary": RUN, "model": model.json content, "trace": {key: list}, "incidents": [...]}``.
+    Returns ``{"summary": RUN, "model": model.json content, "trace": {key: list}, "incidents": [...]}``,
+    plus ``"state"`` (:meth:`Engine.to_bytes`, the final state) with ``keep_state=True``.
     """
     from service.feeds.columns import take_prepared
     from service.engine import Engine
@@ -117,7 +126,8 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
     stop = threading.Event()
     start = time.perf_counter()
     workers = workers or os.cpu_count() or 1
-    thread = threading.Thread(target=_reader, args=(feeds, config, columnar, workers, chunks, stop), daemon=True,
+    pairs = chunk_source if chunk_source is not None else _read(feeds, config, columnar, workers)
+    thread = threading.Thread(target=_reader, args=(pairs, chunks, stop), daemon=True,
                               name="trimtab-replay-reader")
     thread.start()
     try:
@@ -163,8 +173,11 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
                    bad_lines=bad, duplicate_lines=dups)
     model = {"name": config.name, "state_digest": summary["state_digest"], "serving": engine.serving,
              "raw": engine.model.coefficients("raw"), "averaged": engine.model.coefficients("averaged")}
-    return {"summary": summary, "model": model, "trace": trace, "incidents": _clean(engine.incidents),
-            "loss": config.model.loss}
+    out = {"summary": summary, "model": model, "trace": trace, "incidents": _clean(engine.incidents),
+           "loss": config.model.loss}
+    if keep_state:
+        out["state"] = engine.to_bytes()
+    return out
 
 
 def _drain(engine, trace: dict) -> None:
