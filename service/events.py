@@ -1,6 +1,6 @@
 """The event format at the boundary: validation of parsed events and NDJSON/CSV line parsing.
 
-An event (ARCHITECTURE section 3) is ``{"id": str, "ts": epoch seconds | RFC 3339, "features":
+An event (docs/events.md) is ``{"id": str, "ts": epoch seconds | RFC 3339, "features":
 {name: number | string | bool | null}, "target": number | 0/1/true/false}``. Validation checks
 every rule once, here; anything that passes is trusted by the engine and the model. A rejected
 event raises :class:`models.InvalidInput` whose ``where`` says where (``line 17.features.ambient_c``

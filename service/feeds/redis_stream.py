@@ -1,6 +1,6 @@
 """A Redis stream as a feed: a consumer-group reader that acknowledges only what was learned.
 
-Each stream entry carries one event, as the JSON of ARCHITECTURE section 3, in the field
+Each stream entry carries one event, as the JSON of docs/events.md, in the field
 ``[feed] field`` (default ``event``). The reader uses a consumer group, so several services (or a
 restarted one) share the stream without losing entries:
 

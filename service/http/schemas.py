@@ -34,7 +34,7 @@ Scalar = float | int | str | bool | None
 
 
 class EventIn(BaseModel):
-    """One event (ARCHITECTURE section 3)."""
+    """One event (docs/events.md)."""
 
     model_config = _STRICT
     id: str | None = Field(None, description=f"required when target is present; {ID_RULE}",

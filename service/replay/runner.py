@@ -3,7 +3,7 @@
 ``trimtab replay FEED... -c CONFIG [-c CONFIG ...] --out DIR`` reads the feeds in order (bounded
 chunks, see :mod:`service.feeds.files`), drops duplicate ids as the live service does, applies every
 chunk with :class:`~service.engine.Engine` (replay is only a different event source) and writes
-``DIR/summary.json``, ``DIR/<name>/model.json`` and ``DIR/report.html`` (ARCHITECTURE section 6).
+``DIR/summary.json``, ``DIR/<name>/model.json`` and ``DIR/report.html`` (README "Replay outputs").
 
 Each run is deterministic: the same feeds under the same config give the same ``state_digest``,
 whether the run is alone or beside others. Several configs run in parallel processes (forkserver

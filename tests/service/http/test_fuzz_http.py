@@ -3,7 +3,7 @@ real server on a loopback port.
 
 Every answer is a 4xx (never a 5xx) with the error shape ``{"error": {"code", "message", "where"}}``,
 and the model's ``state_digest`` and the journal's events are the same afterwards as before. The
-malformations follow the event rules of ARCHITECTURE section 3 and the JSON grammar of RFC 8259
+malformations follow the event rules of docs/events.md and the JSON grammar of RFC 8259
 (Bray, 2017): NaN and Infinity are not JSON, text must be valid UTF-8.
 """
 

@@ -167,7 +167,7 @@ def test_replay_is_deterministic_and_parallel_runs_match_single_runs(tmp_path):
 
 
 def test_summary_and_model_files_follow_the_contract(tmp_path):
-    """ARCHITECTURE section 6: the RUN fields, and model.json with raw and averaged coefficients by name."""
+    """The replay outputs (README "Replay outputs"): the RUN fields, and model.json with raw and averaged coefficients by name."""
     assert main(["replay", str(FEED), "-c", str(GUARDED), "--out", str(tmp_path), "--no-progress",
                  "--no-report"]) == 0
     summary = json.loads((tmp_path / "summary.json").read_text())

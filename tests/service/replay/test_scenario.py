@@ -291,7 +291,7 @@ def test_open_feeds_keep_their_datasets(tmp_path, name, rows, reference):
     assert [orjson.loads(line) for line in read_lines(tmp_path / "feed.ndjson.gz")] == events
 
 
-SECTION_4_KEYS = {  # ARCHITECTURE.md section 4, without the optional [feed]; key names may grow
+SECTION_4_KEYS = {  # the config contract (README "Config"), without the optional [feed]; key names may grow
     "": {"name"},
     "features": {"numeric", "categorical", "hash_bits", "scaling", "warmup_events"},
     "model": {"task", "loss", "l2"},
