@@ -305,9 +305,11 @@ class LinearModel:
         sc[K.S_CEXP] = 1.0
         sc[K.S_STEPSCALE] = 1.0
 
-    def certificate(self) -> dict:
+    def certificate(self, restarted_at: int | None = None) -> dict:
+        """The certificate (``models.certificate``); ``restarted_at``: the event of the last restart."""
         return certificate(self._spec, self.updates_since_restart, self.grad_bound,
-                           grad_estimated=self._spec.grad_bound is None, step_scale=self.step_scale)
+                           grad_estimated=self._spec.grad_bound is None, step_scale=self.step_scale,
+                           restarted_at=restarted_at)
 
     def coefficients(self, iterate: str = "averaged") -> dict:
         """Intercept and coefficients in the features' own units (the warm-up scaling undone).

@@ -60,10 +60,26 @@ def verdict(run: dict) -> str:
     if ignored:
         parts.insert(0, f"not stable: {ignored:,} rollback alarm{'s' if ignored > 1 else ''} that this config "
                         "does not act on (rollback = false)")
+    elif _doubts(run):
+        parts.insert(0, "not stable: " + "; ".join(_doubts(run)))
     elif not rb and not rs:
         parts.insert(0, "stable: no rollbacks or restarts")
     parts.append(f"serving the {run.get('serving', 'averaged')} iterate")
     return "; ".join(parts)
+
+
+def _doubts(run: dict) -> list[str]:
+    """What forbids the verdict "stable": the monitor's standing warnings (a binding constraint), and a
+    model whose loss is above the baseline's (``baseline_loss``, on the same events).
+
+    >>> _doubts({"progressive_loss": 2.0, "baseline_loss": 1.5, "warnings": []})
+    ["the model's loss 2 is above the baseline's 1.5"]
+    """
+    doubts = list(run.get("warnings") or [])
+    loss, base = run.get("progressive_loss"), run.get("baseline_loss")
+    if isinstance(loss, (int, float)) and isinstance(base, (int, float)) and loss > base:
+        doubts.append(f"the model's loss {loss:.4g} is above the baseline's {base:.4g}")
+    return doubts
 
 
 def _num(x, digits: int = 4) -> str:
