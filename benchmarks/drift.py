@@ -110,20 +110,22 @@ def _record(engine, change_at: int | None) -> dict:
             "false_rollbacks": sum(e < end for e in rollbacks), "delay": hits[0] - change_at if hits else None}
 
 
-def study(seeds: int = 12, dims=(8, 64), friedman_seeds: int | None = None, stationary: int = STATIONARY) -> dict:
-    """Run every family for every seed and dimension; return per-family figures."""
+def study(seeds: int = 12, dims=(8, 64), friedman_seeds: int | None = None, stationary: int = STATIONARY,
+          monitor: dict | None = None) -> dict:
+    """Run every family for every seed and dimension (``[monitor]`` settings ``monitor`` over the
+    defaults); return per-family figures."""
     rows: dict[str, list] = {}
     for d in dims:
         for family in FAMILIES:
             for seed in range(seeds):
                 n = stationary if family == "no_change" else CHANGE_AT + AFTER
                 x, y, rise = synthetic(family, d, seed, n)
-                rec = _record(run_stream(x, y, f"{family}-{d}-{seed}"), None if family == "no_change" else CHANGE_AT)
+                rec = _record(run_stream(x, y, f"{family}-{d}-{seed}", monitor), None if family == "no_change" else CHANGE_AT)
                 rows.setdefault(f"{family} d={d}", []).append({**rec, "rise": rise})
     for seed in range(seeds if friedman_seeds is None else friedman_seeds):
         x, y, _ = friedman(seed, CHANGE_AT + AFTER)
         rows.setdefault("river FriedmanDrift gra", []).append(
-            {**_record(run_stream(x, y, f"friedman-{seed}"), CHANGE_AT), "rise": None})
+            {**_record(run_stream(x, y, f"friedman-{seed}", monitor), CHANGE_AT), "rise": None})
     return {name: _summarize(recs, change=not name.startswith("no_change")) for name, recs in rows.items()}
 
 

@@ -163,6 +163,13 @@ class LinearModel:
                      rows.indptr, rows.indices, rows.values, _iterate(iterate), out)
         return out
 
+    def score_rows_both(self, rows: Rows) -> np.ndarray:
+        """Margins of ``rows`` with both iterates, in one pass: row 0 raw, row 1 averaged."""
+        out = np.zeros((2, len(rows)))
+        K.score_rows_both(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
+                          rows.indptr, rows.indices, rows.values, out)
+        return out
+
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""
         m = self.score_rows(rows, iterate)

@@ -110,7 +110,7 @@ class MonitorConfig(_Section):
     #: (lambda), in those events ...
     drift_threshold: float = Field(10.0, gt=0.0)
     #: ... its tolerated rise of the mean (delta), ...
-    drift_delta: float = Field(0.1, ge=0.0)
+    drift_delta: float = Field(0.05, ge=0.0)
     #: ... and the events it reads before it may fire (replaces ``drift_min_checks``: the detector
     #: now reads events, not one share per check)
     drift_min_events: int = Field(30, ge=1)
