@@ -81,10 +81,19 @@ class ChangeDetector:
         self._det = cls(**self.params)
         self._fed = []
 
-    @property
-    def detector(self):
-        """river's detector object itself."""
-        return self._det
+    def rearm(self) -> None:
+        """Look for a change again after an alarm that was dismissed. Page-Hinkley keeps the running mean
+        it learned (the alarm was no change, so it still describes the feed) and starts its cumulative
+        sums afresh; a fresh start would learn its mean from whatever comes next, and a change that
+        happened while the alarm was open would then look normal. ADWIN starts afresh (its window
+        already dropped what it judged to be the past)."""
+        if self.kind == "adwin":
+            self.reset()
+            return
+        det = self._det
+        det._sum_increase = det._sum_decrease = 0.0
+        det._min_increase, det._max_decrease = math.inf, -1.0
+        det._drift_detected = False
 
     def update(self, x: float) -> bool:
         """Feed one value; ``True`` when the detector signals a change at this value."""

@@ -2,29 +2,21 @@
 
 The convergence guarantees of projected SGD hold in expectation on a stationary feed; live feeds
 change and labels are sometimes wrong. The monitor keeps the newest ``window`` held-out events
-(``window.py``; never learned) and every ``check_every`` learned events scores them with both
-iterates and applies the rules of ``rules.py``, in this order:
+(``window.py``, never learned); every ``check_every`` learned events it scores them with both
+iterates and applies the rules of ``rules.py``, where each is documented, in this order:
 
-1. *non-finite update*, *distance*, *rollback* (held-out loss): roll back. Go back to the newest
-   *trusted copy* of the model (taken every ``snapshot_every`` healthy checks in a row; not after a
-   refused update, when nothing was learned), set its raw iterate to its averaged one and multiply
-   every later step by ``rollback_shrink``. The copy matters because a uniform average absorbs each
-   astray update at once (in the tests' feed, 250 updates of a Fahrenheit burst cost the average 20%
-   of held-out loss, which raw := averaged would keep).
-2. *change confirmed*: a change detector (river's Page-Hinkley or ADWIN) raises an alarm, fresh
-   held-out events confirm it, and the monitor restarts: the average starts again from the raw
-   iterate, the step schedule and ``G`` re-warm, the held-out events from before the change are
-   dropped and so is the trusted copy. An alarm not confirmed within ``drift_confirm`` checks is
-   dismissed.
-3. *boundary pinned*: an incident and a standing warning while the raw iterate sits on the
-   constraint's boundary.
+1. *non-finite update*, *distance*, *rollback*: roll back to the newest *trusted copy* of the model
+   (taken every ``snapshot_every`` healthy checks in a row; a uniform average absorbs each astray
+   update at once, so raw := averaged alone would keep the damage), set its raw iterate to its
+   averaged one and multiply every later step by ``rollback_shrink``;
+2. *change confirmed*: restart. The average starts again from the raw iterate, the step schedule
+   and ``G`` re-warm, the held-out events from before the change and the trusted copy are dropped;
+3. *boundary pinned*: an incident and a standing warning (:attr:`Monitor.warnings`).
 
 Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
 times the median of the older window events (a garbage target is far from both iterates, so it
-says nothing about which is better; with Gaussian noise the default 50 drops about 2 clean events
-in a million). A rollback distrusts the raw iterate and keeps the schedule, shrunk; a restart
-distrusts the average and starts the schedule afresh. Rejected-input bursts (a share above
-``reject_burst_share`` of the last ``reject_window`` events) are incidents too, one per burst.
+says nothing about which is better). Rejected-input bursts (a share above ``reject_burst_share`` of
+the last ``reject_window`` events) are incidents too, one per burst.
 """
 
 from __future__ import annotations
@@ -99,12 +91,10 @@ class Monitor:
         self._trusted: LinearModel | None = None
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None
-        self._last: dict = {}
         self.incidents: list[dict] = []
         self._rejects: list[list[int]] = []
         self._reject_open = False
 
-    # ---------------------------------------------------------------- reading
     @property
     def serving(self) -> str:
         """The iterate the model serves now: ``"raw"`` or ``"averaged"``."""
@@ -121,10 +111,6 @@ class Monitor:
         return self.state.restarted_at if self.state.restarted_at >= 0 else None
 
     @property
-    def last_check(self) -> dict:
-        return dict(self._last)
-
-    @property
     def warnings(self) -> list[str]:
         """Standing warnings (today: the boundary rule's)."""
         if not self.state.boundary_open:
@@ -138,16 +124,11 @@ class Monitor:
         fig = self._figures(model)
         return {"raw": None, "averaged": None} if fig is None else {"raw": fig.raw, "averaged": fig.averaged}
 
-    # ---------------------------------------------------------------- inputs
     def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, start: int, stop: int, first: int) -> None:
         """Keep the held-out events (``mode == 2``) among rows ``start..stop`` of a batch whose row 0 is
         event ``first``."""
         picked = start + np.flatnonzero(mode[start:stop] == 2)
         self.window.add(rows, y, picked, first + picked)
-
-    def add_holdout(self, rows: Rows, y: np.ndarray, events: np.ndarray) -> None:
-        """Keep held-out events: row ``k`` of ``rows`` has target ``y[k]`` and event index ``events[k]``."""
-        self.window.add(rows, np.asarray(y, dtype=np.float64), np.arange(len(rows)), np.asarray(events))
 
     def note_refused(self, count: int) -> None:
         self.state.refused += count
@@ -174,7 +155,6 @@ class Monitor:
         elif share < self.cfg.reject_burst_share / 2:
             self._reject_open = False
 
-    # ---------------------------------------------------------------- the check
     def _figures(self, model: LinearModel) -> CheckFigures | None:
         if not len(self.window):
             return None
@@ -193,10 +173,7 @@ class Monitor:
             np.ones(len(new), dtype=bool)
         kept = losses if usable.all() else losses[:, usable]
         raw, avg = kept.mean(axis=1).tolist() if kept.shape[1] else (math.nan, math.nan)
-        g = model.grad_bound
-        if g and 0.0 < g * g < self.state.g2_min:
-            self.state.g2_min = g * g
-        g2 = self.state.g2_min
+        g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
         return CheckFigures(losses, scored.events, usable, new, reference, raw, avg, model.distance(), allowance)
 
@@ -206,6 +183,9 @@ class Monitor:
         if held is not None:
             self.hold_out(*held)
         cfg, state = self.cfg, self.state
+        g = model.grad_bound  # the smallest since the restart: a burst inflates the estimate, not the noise
+        if g and 0.0 < g * g < state.g2_min:
+            state.g2_min = g * g
         fig = self._figures(model)
         record = {"event": int(event), "action": None, "holdout_raw": None, "holdout_avg": None, "held_out": 0,
                   "excluded": 0, "distance": model.distance() if fig is None else fig.distance}
@@ -223,7 +203,6 @@ class Monitor:
         self._boundary_rule(model, event, ts)
         state.checks = (state.checks + [int(event)])[-_KEPT_CHECKS:]
         record["serving"] = self.serving
-        self._last = record
         return record
 
     def _rollback_rules(self, model: LinearModel, fig: CheckFigures | None, event: int, ts, record: dict) -> bool:
@@ -282,7 +261,10 @@ class Monitor:
         elif state.alarm_checks < self.cfg.drift_confirm:
             return
         state.alarm_from = state.alarm_check = -1
-        self._detector.reset()
+        if evidence is not None:
+            self._detector.reset()
+        else:  # dismissed: the mean it learned before the alarm still holds (see ChangeDetector.rearm)
+            self._detector.rearm()
 
     def _restart(self, model: LinearModel, event: int, ts, evidence: dict) -> None:
         model.restart()
@@ -321,7 +303,6 @@ class Monitor:
                                "evidence": {k: (float(v) if isinstance(v, (float, np.floating)) else v)
                                             for k, v in evidence.items()}})
 
-    # ---------------------------------------------------------------- state
     def to_bytes(self) -> bytes:
         """The monitor's state: a JSON header (layout version, rule state, detector fields, incidents)
         and raw arrays (the window, ADWIN's input, the trusted copy's bytes), in ``models.snapshot``'s
@@ -329,7 +310,7 @@ class Monitor:
         fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
         trusted = self._trusted.to_bytes() if self._trusted is not None else b""
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
-                  "trusted_event": self._trusted_event, "incidents": self.incidents, "last": self._last,
+                  "trusted_event": self._trusted_event, "incidents": self.incidents,
                   "rejects": self._rejects, "reject_open": self._reject_open}
         arrays = {**self.window.to_arrays(), "detector_fed": fed,
                   "trusted": np.frombuffer(trusted, dtype=np.uint8)}
@@ -355,6 +336,6 @@ class Monitor:
         trusted = arrays["trusted"].tobytes()
         self._trusted = LinearModel.from_bytes(trusted) if trusted else None
         self._trusted_event = header["trusted_event"]
-        self.incidents, self._last = header["incidents"], header["last"]
+        self.incidents = header["incidents"]
         self._rejects, self._reject_open = header["rejects"], header["reject_open"]
         self._restored = None

@@ -105,9 +105,9 @@ def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConf
 def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
     """**Change alarm** (the first half of *change confirmed*). Watches, for every event held out since
     the last check, whether its averaged-iterate loss exceeds the median of (a regular sample of at
-    most 500 of) the older window events: on a stationary feed the events are exchangeable and none was learned, so this is a fair coin
-    (slightly below 1/2 while the average still improves) whatever the loss, noise or scale, and one
-    setting fits every feed. After an abrupt change nearly every new event lands above. The 0/1
+    most 500 of) the older window events: on a stationary feed the events are exchangeable and none
+    was learned, so this is a fair coin (slightly below 1/2 while the average still improves)
+    whatever the loss, noise or scale, and one setting fits every feed. After an abrupt change nearly every new event lands above. The 0/1
     sequence goes to river's Page-Hinkley test (Page 1954; mode "up", ``drift_delta`` tolerated rise,
     ``drift_threshold`` lambda, ``drift_min_events``) or ADWIN (Bifet and Gavaldà 2007,
     ``adwin_delta``). With the defaults (delta 0.05, lambda 10) a fair coin crosses lambda about
