@@ -114,7 +114,7 @@ def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
     once in 3,000 values (Siegmund's approximation of the average run length; some 60,000 events at a
     5% hold-out), a stream of 9 in 10 above in about 30 values (600 events), of 6 in 10 in about 200.
     Garbage events count too: an alarm only opens the question that :func:`change_confirmed` answers."""
-    for above in fig.losses[1, fig.new] > fig.reference:
+    for above in (fig.losses[1, fig.new] > fig.reference).tolist():
         if detector.update(1.0 if above else 0.0):
             return True  # the alarm opens here; feeding on would restart the detector from scratch
     return False
