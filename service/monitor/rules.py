@@ -22,6 +22,9 @@ __all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "
 
 #: fewest usable events a comparison is made on (a sign test at level 0.001 needs 10 of 10 above)
 MIN_EVENTS = 10
+#: fewest fresh events a change is confirmed on: more than one check's worth at the default hold-out, so
+#: that a few minutes of misfit (a defrost cycle in the demo feed) cannot restart the model on their own
+MIN_FRESH = 15
 
 
 @dataclass
@@ -123,7 +126,8 @@ def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
 def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) -> dict | None:
     """**Change confirmed** -> restart. Watches, once an alarm is open, the events held out *after* the
     check that raised it (fresh evidence: the alarm's own events are not reused). Threshold: at least
-    10 of them usable, fewer than half garbage (a burst of absurd labels is a rollback matter; it ends,
+    ``MIN_FRESH`` (15) of them usable, fewer than half garbage (a burst of absurd labels is a rollback
+    matter; it ends,
     a change does not), and the averaged iterate worse on them than on the pre-alarm events, at level
     ``drift_level`` and by more than ``rollback_margin``, by either of two tests: an exact one-sided
     sign test against the pre-alarm median (robust, and the stronger one when most events get worse),
@@ -137,7 +141,7 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     before = (fig.events < state.alarm_from) & fig.usable
     pick = fresh & fig.usable
     n, garbage = int(np.count_nonzero(pick)), int(np.count_nonzero(fresh & ~fig.usable))
-    if n < MIN_EVENTS or garbage * 2 >= n + garbage or np.count_nonzero(before) < MIN_EVENTS:
+    if n < MIN_FRESH or garbage * 2 >= n + garbage or np.count_nonzero(before) < MIN_EVENTS:
         return None
     avg, raw, rise = fig.losses[1], fig.losses[0], 1.0 + cfg.rollback_margin
     ref, now = float(np.median(avg[before])), float(np.median(avg[pick]))
