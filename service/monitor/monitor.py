@@ -138,15 +138,10 @@ class Monitor:
         if total <= 0:
             return
         self._rejects.append([rejected, total])
-        n = bad = 0
-        keep = []
-        for r, t in reversed(self._rejects):
-            if n >= self.cfg.reject_window:
-                break
-            keep.append([r, t])
-            n += t
-            bad += r
-        self._rejects = keep[::-1]
+        # keep the newest reports that cover ``reject_window`` events
+        while len(self._rejects) > 1 and sum(t for _, t in self._rejects[1:]) >= self.cfg.reject_window:
+            self._rejects.pop(0)
+        bad, n = (sum(col) for col in zip(*self._rejects))
         share = bad / n
         if share > self.cfg.reject_burst_share and n >= min(self.cfg.reject_window, 50) and not self._reject_open:
             self._reject_open = True

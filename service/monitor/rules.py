@@ -127,8 +127,7 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     """**Change confirmed** -> restart. Watches, once an alarm is open, the events held out *after* the
     check that raised it (fresh evidence: the alarm's own events are not reused). Threshold: at least
     ``MIN_FRESH`` (15) of them usable, fewer than half garbage (a burst of absurd labels is a rollback
-    matter; it ends,
-    a change does not), and the averaged iterate worse on them than on the pre-alarm events, at level
+    matter; it ends, a change does not), and the averaged iterate worse on them than on the pre-alarm events, at level
     ``drift_level`` and by more than ``rollback_margin``, by either of two tests: an exact one-sided
     sign test against the pre-alarm median (robust, and the stronger one when most events get worse),
     or, from 30 fresh events on, a one-sided Welch test of the means (B. L. Welch, 1947, "The
