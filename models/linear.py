@@ -274,6 +274,14 @@ class LinearModel:
         """Euclidean distance between the raw and the averaged iterate (intercept included)."""
         return float(K.iterate_distance(self._lazy, self._st, self._sc))
 
+    def raw_norm(self) -> float:
+        """``||(w_raw, b_raw)||`` without a pass over the coefficients where the lazy state keeps it
+        (``a**2 ||v||**2 + b**2``, the quantity the ball projection bounds)."""
+        if not self._lazy:
+            return self.norm("raw")
+        sc = self._sc
+        return float(math.sqrt(sc[K.S_A] ** 2 * sc[K.S_NV2] + sc[K.S_B] ** 2))
+
     def norm(self, iterate: str = "raw") -> float:
         w, b = self.weights(iterate)
         return float(math.sqrt(np.dot(w, w) + b * b))

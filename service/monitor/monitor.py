@@ -167,7 +167,7 @@ class Monitor:
         usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference if reference > 0 else \
             np.ones(len(new), dtype=bool)
         kept = losses if usable.all() else losses[:, usable]
-        raw, avg = kept.mean(axis=1).tolist() if kept.shape[1] else (math.nan, math.nan)
+        raw, avg = (kept.sum(axis=1) / kept.shape[1]).tolist() if kept.shape[1] else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
         return CheckFigures(losses, scored.events, usable, new, reference, raw, avg, model.distance(), allowance)
@@ -278,10 +278,10 @@ class Monitor:
     def _boundary_rule(self, model: LinearModel, event: int, ts) -> None:
         if not (self._ball and self._radius):
             return
-        on = model.norm("raw") >= self._radius * (1.0 - 1e-6)
+        on = model.raw_norm() >= self._radius * (1.0 - 1e-3)  # within 0.1%: projected back there
         if rules.boundary_pinned(self.state, on, self.cfg):
             self._incident("boundary", event, ts, self.warnings[0],
-                           {"radius": self._radius, "norm_raw": model.norm("raw")})
+                           {"radius": self._radius, "norm_raw": model.raw_norm()})
 
     def take_restored(self) -> LinearModel | None:
         """The model a rollback restored from the last trusted copy, once (the engine adopts it)."""

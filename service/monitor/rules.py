@@ -168,7 +168,7 @@ def welch_pvalue(new: np.ndarray, old: np.ndarray) -> float:
 
 def boundary_pinned(state: RuleState, on_boundary: bool, cfg: MonitorConfig) -> bool | None:
     """**Boundary pinned** -> incident and warning. Watches whether the raw iterate lies on the
-    constraint set's boundary at each check (projected SGD keeps it there when the unconstrained
+    constraint set's boundary (a ball: its norm within 0.1% of the radius) at each check (projected SGD keeps it there when the unconstrained
     optimum lies outside the set). Threshold: on the boundary at a share ``boundary_share`` or more of
     the last ``boundary_checks`` checks. Then the bound of the certificate holds for the best point
     *in the set*, which may be a poor model: the radius is probably too small. Returns ``True`` when a
