@@ -19,16 +19,14 @@ figures; one that cannot run raises :class:`Skipped` with the reason, which is p
   event, ball projection and uniform averaging on, lazy kernel. Two controls separate the causes of
   a ratio above 1: the 20-bit model fed the 8-bit stream (the O(d) work, i.e. ``lazy_rebase``) and
   the cost of one ``lazy_rebase`` over 2**20 coordinates.
-* ``monitor_overhead``: the stability monitor's cost, measured by ``benchmarks/monitor_overhead.py``
-  (written by the monitor's owner) and reported here with the others, with at least that script's
-  own event count and repeats (200,000 and 5); skipped, with the reason, when that script or the
-  service it needs cannot be imported.
+
+The stability monitor's per-event cost is no longer a goal here: its goal is end to end (replay with
+the monitor on over off, ``monitor_on_vs_off`` in ``benchmarks/replay.py``).
 """
 
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import json
 import os
 import platform
@@ -42,8 +40,7 @@ import numpy as np
 import models
 from models import kernels as K
 
-__all__ = ["MEASUREMENTS", "Skipped", "main", "measure_kernel_vs_river", "measure_monitor_overhead",
-           "measure_sparse_cost"]
+__all__ = ["MEASUREMENTS", "Skipped", "main", "measure_kernel_vs_river", "measure_sparse_cost"]
 
 N_DENSE = 20
 ACTIVE = 32
@@ -244,36 +241,14 @@ def measure_sparse_cost(args) -> dict:
     }
 
 
-# ------------------------------------------------------------------------------ plug points
-
-def measure_monitor_overhead(args) -> dict:
-    """The stability monitor's cost per event, from ``benchmarks/monitor_overhead.py`` (its owner's)."""
-    path = Path(__file__).resolve().with_name("monitor_overhead.py")
-    if not path.exists():
-        raise Skipped(f"{path.name} is absent")
-    try:
-        module_spec = importlib.util.spec_from_file_location("monitor_overhead", path)
-        module = importlib.util.module_from_spec(module_spec)
-        module_spec.loader.exec_module(module)
-    except ImportError as exc:
-        raise Skipped(f"service.monitor.monitor or its engine is not importable ({exc})") from None
-    # at least the owner's defaults: the ratio is a median of paired batches in the steady state
-    # (from 40,000 events on), and 100,000 events x 3 repeats leave only 36 pairs, most of them
-    # from a model young enough that its average still moves (more full passes; about 0.02 higher)
-    found = module.measure_monitor_overhead(n_events=max(args.events, 200_000), repeats=max(args.repeats, 5))
-    return {key if key.startswith("monitor_") else f"monitor_{key}": value for key, value in found.items()}
-
-
 #: Each measurement returns a dict of figures; the ones named in ``HEADLINE`` are the goals.
 MEASUREMENTS = {
     "kernel_vs_river": measure_kernel_vs_river,
     "sparse_cost": measure_sparse_cost,
-    "monitor_overhead": measure_monitor_overhead,
 }
 
 HEADLINE = {"kernel_vs_river": ">= 50", "learn_many_vs_river": "(info)", "sparse_cost_ratio": "<= 2",
-            "sparse_cost_ratio_hashed": "(info)", "sparse_cost_ratio_local_indices": "(info)",
-            "monitor_overhead": "(monitor_overhead.py)"}
+            "sparse_cost_ratio_hashed": "(info)", "sparse_cost_ratio_local_indices": "(info)"}
 
 
 def machine() -> dict:
@@ -319,7 +294,6 @@ def main(argv=None) -> dict:
             figures.update(measure(args))
         except Skipped as why:
             skipped[name] = str(why)
-    figures.setdefault("monitor_overhead", None)
     figures["skipped"] = skipped
     figures["machine"] = machine()
 
@@ -336,7 +310,7 @@ def main(argv=None) -> dict:
 
 if __name__ == "__main__":
     # run as a script, this folder comes first on sys.path, and its service.py would shadow the
-    # service package that measure_monitor_overhead imports
+    # service package that the measurements import
     _here = Path(__file__).resolve().parent
     sys.path[:] = [p for p in sys.path if Path(p or ".").resolve() != _here]
     main()

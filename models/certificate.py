@@ -57,7 +57,7 @@ _AVERAGING_NEEDED = {"horizon": "uniform", "anytime": "uniform", "sqrt_decay": "
 
 
 def certificate(spec: ModelSpec, updates: int, grad_bound: float | None, *, grad_estimated: bool,
-                step_scale: float = 1.0) -> dict:
+                step_scale: float = 1.0, restarted_at: int | None = None) -> dict:
     """The certificate of a model with ``spec`` after ``updates`` updates since its last restart.
 
     Parameters
@@ -69,6 +69,9 @@ def certificate(spec: ModelSpec, updates: int, grad_bound: float | None, *, grad
     step_scale
         The product of the rollback shrink factors; a value below 1 changes the step, so the
         bound is computed for the step actually in use where the theorem allows it.
+    restarted_at
+        The event at which the average was last restarted after a change (``None``: never). The
+        bound then speaks of the feed from that event on only: ``T`` counts the updates since.
     """
     dim = spec.dim() + (1 if spec.fit_intercept else 0)
     cons = spec.constraint_set
@@ -89,6 +92,10 @@ def certificate(spec: ModelSpec, updates: int, grad_bound: float | None, *, grad
         "source": _SOURCES.get(spec.rule),
         "assumptions": list(ASSUMPTIONS),
         "reason": "",
+        "restarted": restarted_at is not None,
+        "applies_from_event": 0 if restarted_at is None else int(restarted_at),
+        "scope": ("the whole feed" if restarted_at is None else
+                  f"the feed from event {restarted_at:,} on: the average restarted there after a change"),
     }
     rule = spec.rule
     if rule == "constant":

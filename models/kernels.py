@@ -43,6 +43,7 @@ __all__ = [
     "pair_margins",
     "point_loss",
     "score_rows",
+    "score_rows_both",
 ]
 
 # parameter array (float64), fixed for a model
@@ -420,6 +421,20 @@ def score_rows(lazy, st, sc, prm, mean, std, indptr, indices, values, iterate, o
         lo, hi = indptr[i], indptr[i + 1]
         raw, avg, _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs)
         out[i] = avg if iterate == 1 else raw
+
+
+@_jit
+def score_rows_both(lazy, st, sc, prm, mean, std, indptr, indices, values, out):
+    """Margins of rows ``0..out.shape[1]`` with both iterates in one pass: ``out[0]`` raw, ``out[1]`` averaged
+    (the monitor scores its held-out window with both at every check)."""
+    n = out.shape[1]
+    width = 0
+    for i in range(n):
+        width = max(width, indptr[i + 1] - indptr[i])
+    xs = np.empty(max(width, 1))
+    for i in range(n):
+        out[0, i], out[1, i], _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, indptr[i],
+                                                  indptr[i + 1], xs)
 
 
 @_jit

@@ -164,6 +164,13 @@ class LinearModel:
                      rows.indptr, rows.indices, rows.values, _iterate(iterate), out)
         return out
 
+    def score_rows_both(self, rows: Rows) -> np.ndarray:
+        """Margins of ``rows`` with both iterates, in one pass: row 0 raw, row 1 averaged."""
+        out = np.zeros((2, len(rows)))
+        K.score_rows_both(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
+                          rows.indptr, rows.indices, rows.values, out)
+        return out
+
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""
         m = self.score_rows(rows, iterate)
@@ -268,6 +275,14 @@ class LinearModel:
         """Euclidean distance between the raw and the averaged iterate (intercept included)."""
         return float(K.iterate_distance(self._lazy, self._st, self._sc))
 
+    def raw_norm(self) -> float:
+        """``||(w_raw, b_raw)||`` without a pass over the coefficients where the lazy state keeps it
+        (``a**2 ||v||**2 + b**2``, the quantity the ball projection bounds)."""
+        if not self._lazy:
+            return self.norm("raw")
+        sc = self._sc
+        return float(math.sqrt(sc[K.S_A] ** 2 * sc[K.S_NV2] + sc[K.S_B] ** 2))
+
     def norm(self, iterate: str = "raw") -> float:
         w, b = self.weights(iterate)
         return float(math.sqrt(np.dot(w, w) + b * b))
@@ -306,9 +321,11 @@ class LinearModel:
         sc[K.S_CEXP] = 1.0
         sc[K.S_STEPSCALE] = 1.0
 
-    def certificate(self) -> dict:
+    def certificate(self, restarted_at: int | None = None) -> dict:
+        """The certificate (``models.certificate``); ``restarted_at``: the event of the last restart."""
         return certificate(self._spec, self.updates_since_restart, self.grad_bound,
-                           grad_estimated=self._spec.grad_bound is None, step_scale=self.step_scale)
+                           grad_estimated=self._spec.grad_bound is None, step_scale=self.step_scale,
+                           restarted_at=restarted_at)
 
     def coefficients(self, iterate: str = "averaged") -> dict:
         """Intercept and coefficients in the features' own units (the warm-up scaling undone).

@@ -136,33 +136,29 @@ class MonitorConfig(_Section):
     #: raw iterate farther than this many constraint radii (or averaged norms) from the average -> rollback
     divergence_radii: float = Field(1.0, gt=0.0)
     drift: Literal["page_hinkley", "adwin", "off"] = "page_hinkley"
-    #: Page-Hinkley on the share of new held-out events above the window median (1/2 when stationary):
-    #: threshold (lambda), ...
-    drift_threshold: float = Field(0.75, gt=0.0)
-    #: ... tolerated rise of the share per check (delta), ...
-    drift_delta: float = Field(0.1, ge=0.0)
-    #: ... and checks before it may fire
-    drift_min_checks: int = Field(10, ge=1)
-    #: ADWIN reads one 0/1 per new held-out event (above the median or not); its confidence
-    #: parameter, river's default
+    #: the detector reads, per new held-out event, 1 if its averaged-iterate loss exceeds the median of
+    #: the older window events, else 0 (a fair coin while nothing changes). Page-Hinkley's threshold
+    #: (lambda), in those events ...
+    drift_threshold: float = Field(10.0, gt=0.0)
+    #: ... its tolerated rise of the mean (delta), ...
+    drift_delta: float = Field(0.05, ge=0.0)
+    #: ... and the events it reads before it may fire (replaces ``drift_min_checks``: the detector
+    #: now reads events, not one share per check)
+    drift_min_events: int = Field(30, ge=1)
+    #: ADWIN's confidence parameter (river's default), on the same 0/1 events
     adwin_delta: float = Field(0.002, gt=0.0, lt=1.0)
-    #: checks after an alarm before a restart is decided (a label burst shorter than
-    #: drift_confirm - confirm_recent checks ends before the decision looks)
-    drift_confirm: int = Field(12, ge=2)
-    #: the decision compares the events held out in this many last checks with the pre-alarm ones
-    confirm_recent: int = Field(4, ge=1)
-    #: level of the one-sided sign test that the averaged iterate got worse on the recent events
+    #: checks after an alarm within which fresh held-out events must confirm it, else it is dismissed
+    drift_confirm: int = Field(8, ge=1)
+    #: level of the one-sided sign test that the averaged iterate got worse on the fresh events
     drift_level: float = Field(0.001, gt=0.0, lt=0.5)
+    #: the boundary rule: the raw iterate on the constraint's boundary at this share of ...
+    boundary_share: float = Field(0.8, gt=0.0, le=1.0)
+    #: ... the last this many checks -> an incident and a warning that the radius may be too small
+    boundary_checks: int = Field(20, ge=1)
     serve: Literal["averaged", "raw", "better"] = "averaged"
     #: share of rejected events among the last `reject_window` events that is an incident
     reject_burst_share: float = Field(0.2, gt=0.0, le=1.0)
     reject_window: int = Field(500, ge=10)
-
-    @model_validator(mode="after")
-    def _confirm_window(self):
-        if self.confirm_recent >= self.drift_confirm:
-            raise ValueError("confirm_recent must be smaller than drift_confirm")
-        return self
 
 
 class ServiceConfig(_Section):

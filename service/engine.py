@@ -246,6 +246,10 @@ class Engine:
     def incidents(self) -> list[dict]:
         return list(self.monitor.incidents) if self.monitor is not None else []
 
+    def certificate(self) -> dict:
+        """The model's certificate, saying from which event it applies when the monitor restarted."""
+        return self.model.certificate(self.monitor.restarted_at if self.monitor is not None else None)
+
     def holdout_losses(self) -> dict:
         """Held-out loss of both iterates on the current window (``None`` without a monitor)."""
         if self.monitor is None:

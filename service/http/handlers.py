@@ -337,7 +337,7 @@ def _card(svc: Service, ing: Ingestor) -> dict:
         "name": svc.config.name, "config": svc.config.resolved(), "updates": m.n_updates,
         "updates_since_restart": m.updates_since_restart, "counters": eng.counters(), "serving": eng.serving,
         "norms": {"raw": m.norm("raw"), "averaged": m.norm("averaged")}, "distance": m.distance(),
-        "step_scale": m.step_scale, "grad_bound": m.grad_bound, "certificate": m.certificate(),
+        "step_scale": m.step_scale, "grad_bound": m.grad_bound, "certificate": eng.certificate(),
         "holdout_loss": eng.holdout_losses(), "baseline_loss": eng.baseline_loss, "warnings": eng.warnings,
         "state_digest": eng.state_digest,
         "journal": {"applied_seq": ing.applied_seq, "checkpoint_seq": ing.checkpoint_seq},

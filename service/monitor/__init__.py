@@ -1,6 +1,10 @@
-"""Monitor: the held-out window and its scoring, the rollback and restart rules, and change detection.
+"""Monitor: the held-out window and its scoring (``window.py``), the rules, one named function each
+(``rules.py``), river's change detectors with a state saved without pickle (``detectors.py``), and the
+monitor that runs them at every check (``monitor.py``).
 
-May import ``models`` and ``service.config``; nothing else in ``service``.
+May import ``models``, ``service.config`` and river; nothing else in ``service``.
 """
 
-__all__: list[str] = []
+from service.monitor.monitor import LAYOUT, Monitor
+
+__all__ = ["LAYOUT", "Monitor"]

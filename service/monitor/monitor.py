@@ -2,100 +2,57 @@
 
 The convergence guarantees of projected SGD hold in expectation on a stationary feed; live feeds
 change and labels are sometimes wrong. The monitor keeps the newest ``window`` held-out events
-(never learned) and every ``check_every`` learned events scores them with both iterates, and
-applies the rules below, in one compiled call (``rules.decide``; for the squared loss the window's
-losses come from running sums, ``window_sums.py``, equal to a full pass up to rounding). Losses over
-the window leave out the events whose loss under *both* iterates exceeds
-``absurd_factor`` times the window's median (a garbage target is far from both, so it says nothing
-about which is better; with Gaussian noise the default 50 drops about 2 clean events in a million).
+(``window.py``, never learned); every ``check_every`` learned events it scores them with both
+iterates and applies the rules of ``rules.py``, where each is documented, in this order:
 
-**Rollback** (the raw iterate went astray, the world did not change): go back to the newest
-*trusted copy* of the model (taken every ``snapshot_every`` healthy checks in a row), set its raw
-iterate to its averaged one and multiply every later step by ``rollback_shrink``. The copy matters
-because a uniform average absorbs each astray update at once (in the tests' feed, 250 updates of a
-Fahrenheit burst cost the average 20% of held-out loss, which raw := averaged would keep); the
-updates learned since the copy are given up. Right after a rollback by the loss rule one worse
-check is enough for the next, until ``rollback_patience`` healthy checks have passed (the fault has
-shown itself; a burst that goes on would otherwise re-enter the average for patience checks).
-Triggers:
+1. *non-finite update*, *distance*, *rollback*: roll back to the newest *trusted copy* of the model
+   (taken every ``snapshot_every`` healthy checks in a row; a uniform average absorbs each astray
+   update at once, so raw := averaged alone would keep the damage), set its raw iterate to its
+   averaged one and multiply every later step by ``rollback_shrink``;
+2. *change confirmed*: restart. The average starts again from the raw iterate, the step schedule
+   and ``G`` re-warm, the held-out events from before the change and the trusted copy are dropped;
+3. *boundary pinned*: an incident and a standing warning (:attr:`Monitor.warnings`).
 
-* an update was refused as non-finite (then only raw := averaged; nothing was learned);
-* the raw iterate is farther than ``divergence_radii`` constraint radii from the average;
-* ``rollback_patience`` checks in a row with
-  ``L_raw > (1 + rollback_margin) L_avg + noise_allowance * eta * G**2 / 4``. The last term is
-  the raw iterate's own noise: around the optimum, the covariance ``C`` of ``w - w*`` under steps
-  ``eta`` solves ``H C + C H = eta Cov(g)`` to first order, so the expected excess loss
-  ``tr(H C) / 2`` is ``eta E||g||^2 / 4`` whatever the curvature (a derivation, not a citation).
-  With the default radius it exceeds a 10% margin for the first few hundred thousand updates,
-  which is why a bare margin rolled back clean feeds. ``eta`` is the last step and ``G`` the
-  smallest gradient bound seen since the last restart (a burst inflates the running estimate, not
-  the clean noise). Judged once ``min_holdout`` usable events are kept. A check does not count
-  when the raw iterate beats the average on the events held out during those checks: it is then
-  following a change, not diverging.
-
-**Restart** (the world changed): restart the average from the raw iterate, re-warm the step
-schedule and ``G``, drop the held-out events from before the change, forget the trusted copy. A
-change detector (river's ``drift.PageHinkley`` or ``drift.ADWIN``) reads at each check the share
-of the newly held-out events whose averaged-iterate loss exceeds the median of (a fixed eighth of)
-the older window events: on a stationary feed that share is binomial around 1/2 whatever the loss
-or the noise (the events are exchangeable and none was learned), so one threshold fits every feed.
-An alarm opens ``drift_confirm`` checks; then the events held out in the last ``confirm_recent``
-checks are compared with those held out before the alarm: the averaged iterate must be worse on
-them by a one-sided sign test at level ``drift_level`` against its pre-alarm median, and by more
-than ``rollback_margin`` in median. A label burst that ended before that recent stretch restarts
-nothing; one that outlasts ``drift_confirm - confirm_recent`` checks cannot be told from a change.
-Only the averaged iterate must be worse: the raw one, not judged as diverging while it follows the
-newest events, typically fits the new world within a few hundred updates, and it is the average
-that a restart replaces (the incident's evidence has both).
-
-A rollback distrusts the raw iterate: it keeps the (trusted) average and the step schedule, only
-shrunk. A restart distrusts the average: it keeps the raw iterate and starts the schedule afresh
-(``step_scale`` back to 1). Rejected-input bursts (a share above ``reject_burst_share`` of the last
-``reject_window`` events) are incidents too, one per burst.
+Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
+times the median of the older window events (a garbage target is far from both iterates, so it
+says nothing about which is better). Rejected-input bursts (a share above ``reject_burst_share`` of
+the last ``reject_window`` events) are incidents too, one per burst.
 """
 
 from __future__ import annotations
 
 import copy
 import math
-import pickle
+from dataclasses import asdict
+
 import numpy as np
 
 from models import LinearModel, Rows
+from models.snapshot import pack, unpack
 
 from service.config import MonitorConfig
-from service.monitor import rules as R
-from service.monitor.rules import R_ALLOWANCE, R_AVG, R_DIST, R_EXCEEDANCE, R_HELD, R_KEPT, R_KEPT_NOW, R_RAW, R_RAW_SERVED
-from service.monitor.drift import ChangeDetector, sign_test_pvalue
-from service.monitor.holdout import (LOSS_CODES, N_PRM, N_STATS, N_WORK, P_ABSURD, P_CODE, P_CUT, P_DELTA, ST_AVG, ST_KEPT,
-                      ST_MEDIAN, ST_NEW, ST_RAW, HoldoutWindow)
+from service.monitor import rules
+from service.monitor.detectors import ChangeDetector
+from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
+from service.monitor.window import HeldOutWindow
 
-__all__ = ["Monitor"]
+__all__ = ["LAYOUT", "Monitor"]
+
+#: the version of :meth:`Monitor.to_bytes`' layout; a state of another one is refused
+LAYOUT = 2
+_MEDIAN_SAMPLE = 500
+_KEPT_CHECKS = 64  # event indices of the last checks kept (patience beyond this is out of reach anyway)
 
 
-def _copy_model(model: LinearModel, into: LinearModel | None = None) -> LinearModel:
-    """An independent copy of ``model``, in a few microseconds: the learned state of a model lives in
-    numpy arrays ("state lives in plain arrays so that a snapshot is a byte copy", models/kernels.py),
-    which are copied; the rest (frozen spec, the mapper's growing cache of categorical names, the
-    empty warm-up buffer of a frozen model) is shared. With ``into`` (an earlier copy) the arrays
-    are copied into its own where the shapes agree, which spares allocating them again (the trusted
-    copy is refreshed every few checks). The tests check it against ``to_bytes``."""
-    twin = copy.copy(model) if into is None else into
-    theirs = vars(twin)
-    for k, v in vars(model).items():
-        if isinstance(v, np.ndarray):
-            mine = theirs.get(k) if into is not None else None
-            if mine is not None and mine is not v and mine.shape == v.shape and mine.dtype == v.dtype:
-                np.copyto(mine, v)
-            else:
-                theirs[k] = v.copy()
-        elif into is not None:
-            theirs[k] = v
+def copy_model(model: LinearModel) -> LinearModel:
+    """An independent copy of ``model`` in a few microseconds: its learned state lives in numpy arrays,
+    which are copied; the rest (the frozen spec, the mapper's cache of categorical names) is shared."""
+    twin = copy.copy(model)
+    for name, value in vars(model).items():
+        if isinstance(value, np.ndarray):
+            setattr(twin, name, value.copy())
+    twin._warm = list(model._warm)
     return twin
-
-
-_NOTHING_HELD = (Rows(np.zeros(1, dtype=np.int64), np.zeros(0, dtype=np.int64), np.zeros(0)), np.zeros(0),
-                 np.zeros(0, dtype=np.int8), 0, 0, 0)
 
 
 class Monitor:
@@ -110,296 +67,270 @@ class Monitor:
 
     Notes
     -----
-    The engine feeds held-out events (:meth:`hold_out`, or :meth:`add_holdout` with rows of their
-    own), refused updates and rejected input, calls :meth:`check` every ``check_every`` learned
-    events and adopts the model :meth:`take_restored` returns after a rollback. ``incidents`` lists
-    ``{kind, event, ts, reason, evidence}``; the state round-trips through :meth:`to_bytes`.
+    The engine feeds held-out events (:meth:`hold_out`), refused updates and rejected input, calls
+    :meth:`check` every ``check_every`` learned events and adopts the model :meth:`take_restored`
+    returns after a rollback. ``incidents`` lists ``{kind, event, ts, reason, evidence}``; the state
+    round-trips through :meth:`to_bytes` (no pickle).
     """
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
         self.cfg = cfg
         spec = model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
-        self.window = HoldoutWindow(cfg.window, len(spec.numeric), sums=spec.loss == "squared")
-        self._mon = np.zeros(R.N_MONITOR)  # window scalars and figures, the rules' results and state
-        self._prm[P_CODE] = LOSS_CODES[spec.loss]
-        self._prm[P_DELTA] = spec.huber_delta
+        self._ball = spec.constraint_set.kind == "ball"
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
         self._absurd = math.inf if spec.loss == "logistic" else cfg.absurd_factor
-        self._prm[P_CUT] = math.inf
-        self._prm[P_ABSURD] = self._absurd
-        # the rules' settings and state, read and written by the compiled check (rules.py)
-        m = self._m
-        m[R.C_MARGIN], m[R.C_PATIENCE], m[R.C_MIN_HOLDOUT] = cfg.rollback_margin, cfg.rollback_patience, cfg.min_holdout
-        m[R.C_LIMIT] = cfg.divergence_radii * self._radius if self._radius else math.nan  # else set per check
-        m[R.C_NOISE], m[R.C_SNAPSHOT], m[R.C_ROLLBACK] = cfg.noise_allowance, cfg.snapshot_every, float(cfg.rollback)
-        m[R.C_ABSURD], m[R.C_BETTER] = self._absurd, float(cfg.serve == "better")
-        m[R.C_DRIFT] = R.DRIFT_CODES[cfg.drift]
-        m[R.C_CONFIRM], m[R.C_RECENT] = cfg.drift_confirm, cfg.confirm_recent
-        m[R.C_GFIX] = float(spec.grad_bound) if spec.grad_bound is not None else 0.0
-        # event indices of the last checks (bounded: a patience set out of reach must not grow it)
-        m[R.C_BOUNDS] = min(max(cfg.rollback_patience, cfg.confirm_recent), 64) + 1
-        m[R.B_LEN], m[R.B_POS], m[R.B_RING] = 1.0, 1.0, -1.0
-        m[R.S_G2], m[R.S_ALARM], m[R.S_RAW_SERVED] = math.inf, -1.0, float(cfg.serve == "raw")
-        # the detector cfg asks for: Page-Hinkley runs compiled in the check (its settings copied),
-        # ADWIN as river's object, fed by the check's caller
-        detector = ChangeDetector.for_monitor(cfg)
-        self._detector = detector if cfg.drift == "adwin" else None
+        self.window = HeldOutWindow(cfg.window)
+        self.state = RuleState(raw_served=cfg.serve == "raw")
+        self._detector = None
         if cfg.drift == "page_hinkley":
-            R.ph_load(m, detector.detector)
+            self._detector = ChangeDetector("page_hinkley", min_instances=cfg.drift_min_events,
+                                            delta=cfg.drift_delta, threshold=cfg.drift_threshold, mode="up")
+        elif cfg.drift == "adwin":
+            self._detector = ChangeDetector("adwin", delta=cfg.adwin_delta)
         self._trusted: LinearModel | None = None
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None
-        self._last: dict = {}
         self.incidents: list[dict] = []
-        self._rejects: list[tuple[int, int]] = []
+        self._rejects: list[list[int]] = []
         self._reject_open = False
 
-    # views of the one array the compiled check reads and writes (views are made on access, so that
-    # a pickled monitor is one array again when loaded)
-    @property
-    def _prm(self) -> np.ndarray:
-        return self._mon[R.O_PRM:R.O_PRM + N_PRM]
-
-    @property
-    def _stats(self) -> np.ndarray:
-        return self._mon[R.O_OUT:R.O_OUT + N_STATS]
-
-    @property
-    def _res(self) -> np.ndarray:
-        return self._mon[R.O_RES:R.O_RES + R.N_RES]
-
-    @property
-    def _m(self) -> np.ndarray:
-        return self._mon[R.O_STATE:]
-
-    # ---------------------------------------------------------------- inputs
     @property
     def serving(self) -> str:
         """The iterate the model serves now: ``"raw"`` or ``"averaged"``."""
-        return "raw" if self._m[R.S_RAW_SERVED] else "averaged"
+        return "raw" if self.state.raw_served else "averaged"
 
     @property
     def alarms_ignored(self) -> int:
-        """Rollback alarms raised while ``[monitor] rollback = false`` (reported, not acted on)."""
-        return int(self._m[R.S_IGNORED])
+        """Rollback triggers seen while ``[monitor] rollback = false`` (reported, not acted on)."""
+        return self.state.ignored
 
     @property
-    def last_check(self) -> dict:
-        return dict(self._last)
+    def restarted_at(self) -> int | None:
+        """The event of the last restart (``None``: never restarted)."""
+        return self.state.restarted_at if self.state.restarted_at >= 0 else None
 
-    def add_holdout(self, rows: Rows, y: np.ndarray, events: np.ndarray) -> None:
-        """Keep held-out events: row ``k`` of ``rows`` has target ``y[k]`` and event index ``events[k]``."""
-        n = len(rows)
-        self.window.add(rows, np.asarray(y, dtype=np.float64), np.full(n, 2, dtype=np.int8), 0, n, 0,
-                        np.asarray(events, dtype=np.int64))
+    @property
+    def warnings(self) -> list[str]:
+        """Standing warnings (today: the boundary rule's)."""
+        if not self.state.boundary_open:
+            return []
+        share = sum(self.state.on_boundary) / self.cfg.boundary_checks
+        return [f"the constraint is binding: radius {self._radius:g} may be too small (the raw iterate sat on "
+                f"its boundary at {share:.0%} of the last {self.cfg.boundary_checks} checks)"]
+
+    def holdout_losses(self, model: LinearModel) -> dict:
+        """Mean window loss of both iterates now, garbage left out (``None`` on an empty window)."""
+        fig = self._figures(model)
+        return {"raw": None, "averaged": None} if fig is None else {"raw": fig.raw, "averaged": fig.averaged}
 
     def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, start: int, stop: int, first: int) -> None:
-        """Keep the held-out events (``mode == 2``) among rows ``start..stop`` of a prepared batch
-        whose row 0 is event ``first`` (the engine's path: no per-segment index arrays)."""
-        self.window.add(rows, y, mode, start, stop, first)
+        """Keep the held-out events (``mode == 2``) among rows ``start..stop`` of a batch whose row 0 is
+        event ``first``."""
+        picked = start + np.flatnonzero(mode[start:stop] == 2)
+        self.window.add(rows, y, picked, first + picked)
 
     def note_refused(self, count: int) -> None:
-        self._m[R.S_REFUSED] += count
+        self.state.refused += count
 
     def note_rejected(self, rejected: int, total: int, event: int, ts: float | None = None) -> None:
         """Count rejected input; one incident per burst above ``reject_burst_share``."""
         if total <= 0:
             return
-        self._rejects.append((rejected, total))
-        n = bad = 0
-        keep = []
-        for r, t in reversed(self._rejects):
-            if n >= self.cfg.reject_window:
-                break
-            keep.append((r, t))
-            n += t
-            bad += r
-        self._rejects = keep[::-1]
+        self._rejects.append([rejected, total])
+        # keep the newest reports that cover ``reject_window`` events
+        while len(self._rejects) > 1 and sum(t for _, t in self._rejects[1:]) >= self.cfg.reject_window:
+            self._rejects.pop(0)
+        bad, n = (sum(col) for col in zip(*self._rejects))
         share = bad / n
         if share > self.cfg.reject_burst_share and n >= min(self.cfg.reject_window, 50) and not self._reject_open:
             self._reject_open = True
-            self._incident("rejected_burst", event, ts,
-                           f"{bad} of the last {n} events were rejected ({share:.0%})", {"share": share})
+            self._incident("rejected_burst", event, ts, f"{bad} of the last {n} events were rejected ({share:.0%})",
+                           {"share": share})
         elif share < self.cfg.reject_burst_share / 2:
             self._reject_open = False
 
-    # ---------------------------------------------------------------- the check
-    def holdout_losses(self, model: LinearModel) -> dict:
-        """Window losses of both iterates now, absurd events left out (``None`` on an empty window).
-
-        Safe to call between or during checks: it uses buffers of its own. Until the first check
-        after the warm-up scaling froze, the last check's figures are returned.
-        """
-        if not len(self.window) or self.window.unscaled:
-            return {"raw": self._last.get("holdout_raw"), "averaged": self._last.get("holdout_avg")}
-        st, prm = np.zeros(N_STATS), self._prm.copy()
-        self.window.stats(model, prm, st, np.zeros((N_WORK, self.window.size)))
-        kept = st[ST_KEPT]
-        return {"raw": st[ST_RAW] / kept, "averaged": st[ST_AVG] / kept} if kept else {"raw": None, "averaged": None}
+    def _figures(self, model: LinearModel) -> CheckFigures | None:
+        if not len(self.window):
+            return None
+        scored = self.window.losses(model)
+        losses = scored.losses
+        new = scored.events > (self.state.checks[-1] if self.state.checks else -1)
+        older = losses[1, :len(new) - int(np.count_nonzero(new))]  # the window is in order: new events last
+        if len(older) < MIN_EVENTS:
+            older = losses[1]
+        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events: the events are
+        # exchangeable, so a new event still lands above it with probability 1/2 (at a quarter of the cost)
+        sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
+        sample = sample[:len(sample) - 1 + len(sample) % 2]  # odd: its median is one element (np.median costs 40 us)
+        reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
+        usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference if reference > 0 else \
+            np.ones(len(new), dtype=bool)
+        kept = losses if usable.all() else losses[:, usable]
+        raw, avg = (kept.sum(axis=1) / kept.shape[1]).tolist() if kept.shape[1] else (math.nan, math.nan)
+        g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
+        allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
+        return CheckFigures(losses, scored.events, usable, new, reference, raw, avg, model.distance(), allowance)
 
     def check(self, model: LinearModel, event: int, ts: float | None = None, held: tuple | None = None) -> dict:
-        """Evaluate both iterates on the window, act if needed; return the check's record. ``held``:
-        ``(rows, y, mode, start, stop, first)`` as for :meth:`hold_out`, rows kept first (one call).
-
-        Most checks only build their record: the compiled rules return 0 then, and the Python that
-        acts (rollback, trusted copy, ADWIN, alarm, confirmation) runs only on the bits they return."""
-        window = self.window
-        if not window.ready:  # until the scaling froze and the rows kept before it were scaled
-            window.prepare_check(model, self._prm)
-        if self._radius is None:
-            self._m[R.C_LIMIT] = self.cfg.divergence_radii * max(model.norm("averaged"), 1.0)
-        lazy, state, sc = model.kernel_state()
-        rows, y, mode, lo, hi, first = held if held is not None else _NOTHING_HELD
-        args = (rows.indptr, rows.indices, rows.values, mode, y, lo, hi, first, lazy, state, sc, self._mon, event)
-        flags = R.decide(window._f, window._i, window._g, window._k, *args)
-        if flags & R.F_WIDEN:  # a wider row than any before: widen the window (rare), then again
-            window.widen(int(self._mon[R.O_RES + R.R_WIDEN]))
-            flags = R.decide(window._f, window._i, window._g, window._k, *args)
-        r = self._res.tolist()  # Python floats from here on
-        if not window.ready and r[R_KEPT_NOW]:
-            window.note_kept()
-        n = int(r[R_HELD])
-        record = {"event": int(event), "holdout_raw": r[R_RAW], "holdout_avg": r[R_AVG], "held_out": n,
-                  "excluded": n - int(r[R_KEPT]), "action": None, "distance": r[R_DIST], "allowance": r[R_ALLOWANCE]}
-        if flags & R.F_RULES:
-            self._act(model, event, ts, record, r)
-        if r[R_EXCEEDANCE] == r[R_EXCEEDANCE]:
-            record["exceedance"] = r[R_EXCEEDANCE]
-        if flags & R.F_DRIFT:
-            self._drift(model, event, ts, record, r)
-        record["serving"] = "raw" if r[R_RAW_SERVED] else "averaged"
-        self._last = record
+        """Score the window, apply the rules, act; return the check's record. ``held``: ``(rows, y,
+        mode, start, stop, first)`` as for :meth:`hold_out`, kept first."""
+        if held is not None:
+            self.hold_out(*held)
+        cfg, state = self.cfg, self.state
+        g = model.grad_bound  # the smallest since the restart: a burst inflates the estimate, not the noise
+        if g and 0.0 < g * g < state.g2_min:
+            state.g2_min = g * g
+        fig = self._figures(model)
+        record = {"event": int(event), "action": None, "holdout_raw": None, "holdout_avg": None, "held_out": 0,
+                  "excluded": 0, "distance": model.distance() if fig is None else fig.distance}
+        if fig is not None:
+            usable = int(np.count_nonzero(fig.usable))
+            record.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, held_out=len(fig.events),
+                          excluded=len(fig.events) - usable, allowance=fig.allowance)
+            if np.any(fig.new) and len(fig.events) - np.count_nonzero(fig.new) >= MIN_EVENTS:
+                record["exceedance"] = float(np.mean(fig.losses[1, fig.new] > fig.reference))
+        rolled = self._rollback_rules(model, fig, event, ts, record)
+        if fig is not None and self._detector is not None and not rolled:
+            self._change_rules(model, fig, event, ts, record)
+        if cfg.serve == "better" and fig is not None and math.isfinite(fig.raw):
+            state.raw_served = fig.raw < fig.averaged
+        self._boundary_rule(model, event, ts)
+        state.checks = (state.checks + [int(event)])[-_KEPT_CHECKS:]
+        record["serving"] = self.serving
         return record
 
-    def _act(self, model: LinearModel, event: int, ts, record: dict, r: list) -> None:
-        """What the rules ask of a check (``F_RULES``): note a raw iterate that follows the newest
-        events, roll back (or note the trigger when rollbacks are off), take a trusted copy."""
-        if r[R.R_FOLLOWING]:
-            record["following"] = True
-        if r[R.R_REASON]:
-            reason = self._reason(r)
-            if r[R.R_IGNORED]:
-                record["alarm"] = reason  # observed, not acted on: this config has rollbacks switched off
-            else:
-                raw, avg, distance, allowance = r[R_RAW], r[R_AVG], r[R_DIST], r[R_ALLOWANCE]
-                self._rollback(model, event, ts, reason, r[R.R_REASON] == R.REASON_LOSS, int(r[R.R_REFUSED]),
-                               {"holdout_raw": raw, "holdout_avg": avg, "distance": distance,
-                                "allowance": allowance, "held_out": int(r[R_KEPT])})
-                record["action"] = "rollback"
-        elif r[R.R_SNAPSHOT]:
-            self._trusted, self._trusted_event = _copy_model(model, self._trusted), int(event)
-
-    def _drift(self, model: LinearModel, event: int, ts, record: dict, r: list) -> None:
-        """What the change detector asks of a check (``F_DRIFT``): feed ADWIN, note an alarm, confirm
-        or dismiss one whose checks are up."""
-        if r[R.R_ADWIN]:
-            st = self._stats
-            if self._detector.update_many(self.window.new_above(int(st[ST_NEW]), float(st[ST_MEDIAN]))):
-                m = self._m
-                m[R.S_ALARM], m[R.S_ALARM_CHECKS] = r[R.R_LAST] + 1.0, 0.0
-                record["alarm"] = int(m[R.S_ALARM])
-        if r[R.R_ALARM] >= 0.0:
-            record["alarm"] = int(r[R.R_ALARM])
-        if r[R.R_CONFIRM]:
-            self._confirm(model, event, ts, record, r[R.R_CONFIRM_FROM])
-
-    def _reason(self, r: list) -> str:
-        cfg = self.cfg
-        if r[R.R_REASON] == R.REASON_REFUSED:
-            return f"{int(r[R.R_REFUSED])} update(s) refused as non-finite"
-        if r[R.R_REASON] == R.REASON_DISTANCE:
-            return f"raw iterate {r[R.R_DIST]:.3g} from the average (limit {r[R.R_LIMIT]:.3g})"
-        return (f"held-out loss of the raw iterate {r[R.R_RAW]:.4g} vs averaged {r[R.R_AVG]:.4g} (worse by more "
-                f"than {cfg.rollback_margin:.0%} plus its noise allowance {r[R.R_ALLOWANCE]:.3g} on "
-                f"{int(r[R.R_STREAK])} checks in a row)")
-
-    def _rollback(self, model: LinearModel, event: int, ts, reason: str, by_loss: bool, refused: int,
-                  evidence: dict) -> LinearModel:
-        """Go back to the last trusted copy (not after a refused update: nothing was learned then),
-        set raw := averaged and shrink the steps; return the model now in use. (The rules' state,
-        and after a rollback by the loss rule the one-check trigger, are set by ``rules.decide``.)"""
+    def _rollback_rules(self, model: LinearModel, fig: CheckFigures | None, event: int, ts, record: dict) -> bool:
+        """Non-finite update, distance, rollback (held-out loss); act on the first that fires."""
+        cfg, state = self.cfg, self.state
+        limit = cfg.divergence_radii * (self._radius if self._radius else max(model.norm("averaged"), 1.0))
+        reason = rules.non_finite_update(state)
+        refused, by_loss = state.refused, False
+        state.refused = 0
+        if reason is None and fig is not None:
+            reason = rules.too_far_from_average(fig, limit)
+            if reason is None:
+                patience = state.checks[-cfg.rollback_patience] if len(state.checks) >= cfg.rollback_patience else -1
+                reason = rules.raw_persistently_worse(fig, state, cfg, fig.events > patience)
+                by_loss = reason is not None
+        if reason is not None and not cfg.rollback:
+            state.ignored += 1
+            record["alarm"] = reason  # observed, not acted on: this config has rollbacks switched off
+            reason = None
+        if reason is None:
+            state.healthy = 0 if state.worse_streak else state.healthy + 1
+            state.alert = state.alert and state.healthy < cfg.rollback_patience
+            if state.healthy and state.healthy % cfg.snapshot_every == 0 and model.scaling_frozen:
+                self._trusted, self._trusted_event = copy_model(model), int(event)
+            return False
         restore = self._trusted is not None and not refused
-        if restore:
-            model = self._restored = _copy_model(self._trusted)
-        model.rollback(self.cfg.rollback_shrink)
-        self._incident("rollback", event, ts, reason, {**evidence, "step_scale": model.step_scale,
-                                                      "restored_from": self._trusted_event if restore else None})
-        return model
+        shrink = cfg.rollback_shrink
+        if restore:  # the shrink compounds: the copy's steps are scaled to the current ones times the shrink
+            shrink *= model.step_scale / self._trusted.step_scale
+            model = self._restored = copy_model(self._trusted)
+        model.rollback(shrink)
+        state.worse_streak = state.healthy = 0
+        state.alert = by_loss
+        evidence = {"step_scale": model.step_scale, "restored_from": self._trusted_event if restore else None}
+        if fig is not None:
+            evidence.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, distance=fig.distance,
+                            allowance=fig.allowance, held_out=int(np.count_nonzero(fig.usable)))
+        self._incident("rollback", event, ts, reason, evidence)
+        record["action"] = "rollback"
+        return True
+
+    def _change_rules(self, model: LinearModel, fig: CheckFigures, event: int, ts, record: dict) -> None:
+        """Feed the detector, open an alarm, confirm (restart) or dismiss an open one."""
+        state = self.state
+        if state.alarm_check < 0:
+            if len(fig.events) - np.count_nonzero(fig.new) >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
+                state.alarm_from = (state.checks[-1] + 1) if state.checks else 0
+                state.alarm_check, state.alarm_checks = int(event), 0
+                record["alarm"] = state.alarm_from
+            return
+        state.alarm_checks += 1
+        evidence = rules.change_confirmed(fig, state, self.cfg)
+        if evidence is not None:
+            self._restart(model, event, ts, evidence)
+            record["action"] = "restart"
+        elif state.alarm_checks < self.cfg.drift_confirm:
+            return
+        state.alarm_from = state.alarm_check = -1
+        if evidence is not None:
+            self._detector.reset()
+        else:  # dismissed: the mean it learned before the alarm still holds (see ChangeDetector.rearm)
+            self._detector.rearm()
+
+    def _restart(self, model: LinearModel, event: int, ts, evidence: dict) -> None:
+        model.restart()
+        self.window.drop_before(evidence["alarm_event"])
+        state = self.state
+        state.g2_min, state.worse_streak, state.healthy, state.alert = math.inf, 0, 0, False
+        state.restarted_at = int(event)
+        self._trusted = self._trusted_event = None  # a copy from the old world must not come back
+        self._incident("restart", event, ts,
+                       f"after event {evidence['alarm_event']:,} the averaged iterate's held-out loss rose from "
+                       f"{evidence['before_averaged']:.4g} to {evidence['recent_averaged']:.4g} ("
+                       + (f"medians; {evidence['above']} of {evidence['n']} fresh events above the old median"
+                          if evidence["test"] == "sign" else f"means of {evidence['n']} fresh events, Welch test")
+                       + f", p = {evidence['p']:.2g}): the feed changed", evidence)
+
+    def _boundary_rule(self, model: LinearModel, event: int, ts) -> None:
+        if not (self._ball and self._radius):
+            return
+        on = model.raw_norm() >= self._radius * (1.0 - 1e-3)  # within 0.1%: projected back there
+        if rules.boundary_pinned(self.state, on, self.cfg):
+            self._incident("boundary", event, ts, self.warnings[0],
+                           {"radius": self._radius, "norm_raw": model.raw_norm()})
 
     def take_restored(self) -> LinearModel | None:
-        """The model a rollback restored from the last trusted check, once (the engine adopts it)."""
+        """The model a rollback restored from the last trusted copy, once (the engine adopts it)."""
         model, self._restored = self._restored, None
         return model
 
-    def _confirm(self, model: LinearModel, event: int, ts, record: dict, recent_from: float) -> None:
-        """An alarm's ``drift_confirm`` checks are up: restart if the averaged iterate got worse."""
-        m = self._m
-        alarm = int(m[R.S_ALARM])
-        self.window.score_all(model, self._prm)  # the check may have scored only some events
-        ev = self.window.events()
-        recent = ev > recent_from
-        before = ev < alarm
-        verdicts = {name: self._worse(losses[: len(ev)], before, recent)
-                    for name, losses in (("raw", self.window.loss_raw), ("averaged", self.window.loss_avg))}
-        if verdicts["averaged"]["worse"]:
-            model.restart()
-            self.window.drop_before(alarm)
-            m[R.S_G2], m[R.S_STREAK], m[R.S_HEALTHY], m[R.S_ALERT] = math.inf, 0.0, 0.0, 0.0
-            self._trusted = self._trusted_event = None  # a copy from the old world must not come back
-            record["action"] = "restart"
-            v = verdicts["averaged"]
-            self._incident("restart", event, ts,
-                           f"after event {alarm} the averaged iterate's held-out loss rose from "
-                           f"{v['before']:.4g} to {v['recent']:.4g} (medians; {v['above']} of {v['n']} recent "
-                           f"events above the old median, p = {v['p']:.2g}): the feed changed",
-                           {"alarm_event": alarm, "checks": int(m[R.S_ALARM_CHECKS]), **{
-                               f"{k}_{name}": val for name, d in verdicts.items() for k, val in d.items()}})
-        m[R.S_ALARM] = -1.0
-        R.ph_reset(m)
-        if self._detector is not None:
-            self._detector.reset()
-
-    def _worse(self, losses: np.ndarray, before: np.ndarray, recent: np.ndarray) -> dict:
-        """Whether ``losses`` of the recent events exceed those of the pre-alarm events (sign test)."""
-        n = int(np.count_nonzero(recent))
-        if n < 10 or np.count_nonzero(before) < 10:
-            return {"worse": False, "n": n, "above": 0, "p": 1.0, "before": math.nan, "recent": math.nan}
-        ref = float(np.median(losses[before]))
-        now = float(np.median(losses[recent]))
-        above = int(np.count_nonzero(losses[recent] > ref))
-        p = sign_test_pvalue(above, n)
-        worse = p <= self.cfg.drift_level and now > (1.0 + self.cfg.rollback_margin) * ref
-        return {"worse": bool(worse), "n": n, "above": above, "p": p, "before": ref, "recent": now}
+    def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request") -> None:
+        model.rollback(self.cfg.rollback_shrink)
+        self.state.worse_streak = 0
+        self._incident("rollback", event, None, reason, {"step_scale": model.step_scale})
 
     def _incident(self, kind: str, event: int, ts, reason: str, evidence: dict) -> None:
         self.incidents.append({"kind": kind, "event": int(event), "ts": ts, "reason": reason,
                                "evidence": {k: (float(v) if isinstance(v, (float, np.floating)) else v)
                                             for k, v in evidence.items()}})
 
-    def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request") -> None:
-        model.rollback(self.cfg.rollback_shrink)
-        self._m[R.S_STREAK] = 0.0
-        self._incident("rollback", event, None, reason, {"step_scale": model.step_scale})
-
-    # ---------------------------------------------------------------- state
     def to_bytes(self) -> bytes:
-        state = {k: v for k, v in self.__dict__.items() if k not in ("cfg", "_trusted", "_restored")}
-        state["_trusted"] = self._trusted.to_bytes() if self._trusted is not None else None
-        return pickle.dumps(state, protocol=5)
+        """The monitor's state: a JSON header (layout version, rule state, detector fields, incidents)
+        and raw arrays (the window, ADWIN's input, the trusted copy's bytes), in ``models.snapshot``'s
+        checksummed container. No pickle."""
+        fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
+        trusted = self._trusted.to_bytes() if self._trusted is not None else b""
+        header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
+                  "trusted_event": self._trusted_event, "incidents": self.incidents,
+                  "rejects": self._rejects, "reject_open": self._reject_open}
+        arrays = {**self.window.to_arrays(), "detector_fed": fed,
+                  "trusted": np.frombuffer(trusted, dtype=np.uint8)}
+        return pack(header, arrays, {})[0]
 
     def load_bytes(self, blob: bytes) -> None:
         """Restore a state :meth:`to_bytes` wrote; a state of another layout (an older trimtab's) is
-        refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint
-        or replays the journal)."""
-        state = pickle.loads(blob)
-        mine = self._mon.shape, self.window._g.shape
-        theirs = (getattr(state.get("_mon"), "shape", None), getattr(getattr(state.get("window"), "_g", None), "shape",
-                                                                      None))
-        if theirs != mine:
-            raise ValueError(f"monitor state of another layout (arrays {theirs}, this version's {mine}): it was "
-                             "written by another trimtab version")
-        trusted = state.pop("_trusted")
-        self.__dict__.update(state)
-        self._trusted = LinearModel.from_bytes(trusted) if trusted is not None else None
+        refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint or
+        replays the journal)."""
+        try:
+            header, arrays, _, _ = unpack(blob)
+        except Exception as exc:
+            raise ValueError(f"monitor state of another layout (unreadable: {exc}); this version writes "
+                             f"layout {LAYOUT}: it was written by another trimtab version") from None
+        if header.get("format") != "monitor-state" or header.get("layout") != LAYOUT:
+            raise ValueError(f"monitor state of another layout ({header.get('format')!r}, layout "
+                             f"{header.get('layout')!r}; this version's is {LAYOUT}): it was written by another "
+                             "trimtab version")
+        if self._detector is not None:
+            self._detector.load_state(header["detector"], arrays["detector_fed"])
+        self.window.load_arrays(arrays)
+        self.state = RuleState(**header["rules"])
+        trusted = arrays["trusted"].tobytes()
+        self._trusted = LinearModel.from_bytes(trusted) if trusted else None
+        self._trusted_event = header["trusted_event"]
+        self.incidents = header["incidents"]
+        self._rejects, self._reject_open = header["rejects"], header["reject_open"]
         self._restored = None

@@ -81,10 +81,28 @@ def verdict(run: dict) -> str:
     if ignored:
         parts.insert(0, f"not stable: {ignored:,} rollback alarm{'s' if ignored > 1 else ''} that this config "
                         "does not act on (rollback = false)")
+    elif _doubts(run):
+        parts.insert(0, "not stable: " + "; ".join(_doubts(run)))
     elif not rb and not rs:
         parts.insert(0, "stable: no rollbacks or restarts")
     parts.append(f"serving the {run.get('serving', 'averaged')} iterate")
     return "; ".join(parts)
+
+
+def _doubts(run: dict) -> list[str]:
+    """What forbids the verdict "stable": the run's standing warnings (a binding constraint, a model no
+    better than the baseline) and a progressive loss above the baseline's (``baseline_loss``, on the
+    same events).
+
+    >>> _doubts({"progressive_loss": 2.0, "baseline_loss": {"progressive": 1.5, "holdout": None}, "warnings": []})
+    ["the model's loss 2 is above the baseline's 1.5"]
+    """
+    doubts = list(run.get("warnings") or [])
+    loss, base = run.get("progressive_loss"), (run.get("baseline_loss") or {}).get("progressive")
+    if isinstance(loss, (int, float)) and isinstance(base, (int, float)) and loss > base and not any(
+            "baseline" in d for d in doubts):
+        doubts.append(f"the model's loss {loss:.4g} is above the baseline's {base:.4g}")
+    return doubts
 
 
 def _num(x, digits: int = 4) -> str:

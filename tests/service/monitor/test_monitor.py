@@ -14,8 +14,6 @@ import hashlib
 import math
 import pickle
 import random
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -26,9 +24,9 @@ from models import Outcome
 from models.losses import loss_value
 from service.config import ConfigError, config_from_dict
 from service.engine import Engine
-from service.monitor import rules
-from service.monitor.drift import ChangeDetector, sign_test_pvalue
-from service.monitor.monitor import _copy_model
+from models.snapshot import pack, unpack
+from service.monitor.detectors import ChangeDetector, sign_test_pvalue
+from service.monitor.monitor import LAYOUT, copy_model
 
 from . import monitor_feeds as feeds
 
@@ -145,10 +143,6 @@ def test_detector_reproduces_river_documentation(kind, index):
     detector = ChangeDetector(kind)
     fired = [i for i, x in enumerate(stream) if detector.update(x)]
     assert fired[0] == index
-    if kind == "page_hinkley":  # and the compiled update the monitor's check runs (river's defaults)
-        m = np.zeros(rules.N_STATE)
-        rules.ph_load(m, detector.detector)
-        assert list(rules.ph_feed(m, np.asarray(stream, dtype=np.float64)))[0] == index
 
 
 def test_noise_allowance_is_the_raw_iterates_stationary_excess():
@@ -309,17 +303,18 @@ def test_rollback_leaves_a_usable_model_and_checkpoints_replay_it():
 
 
 def test_monitor_state_of_another_layout_is_refused():
-    """A checkpoint's monitor state written by a trimtab with another layout (here: the previous
-    one, without the packed arrays) is refused with a clear error, and the monitor is unchanged."""
+    """A checkpoint's monitor state written by a trimtab with another layout is refused with a clear
+    error, and the monitor is unchanged: a state of the previous layout number, and a pickled state
+    (the format before this one)."""
     eng = engine()
     apply(eng, feeds.stream(3000, 8), 0, 3000)
     before = eng.monitor.to_bytes()
-    old = pickle.loads(before)
-    del old["_mon"]
-    old["_bounds"], old["_worse_streak"] = [-1], 0
-    with pytest.raises(ValueError, match="another layout"):
-        eng.monitor.load_bytes(pickle.dumps(old))
-    assert eng.monitor.to_bytes() == before
+    header, arrays, extra, _ = unpack(before)
+    older = pack({**header, "layout": LAYOUT - 1}, arrays, extra)[0]
+    for blob in (older, pickle.dumps({"_mon": np.zeros(3)})):
+        with pytest.raises(ValueError, match="another layout"):
+            eng.monitor.load_bytes(blob)
+        assert eng.monitor.to_bytes() == before
 
 
 def test_trusted_copy_is_an_independent_model():
@@ -328,7 +323,7 @@ def test_trusted_copy_is_an_independent_model():
     eng = engine()
     s = feeds.stream(6000, 8)
     apply(eng, s, 0, 3000)
-    twin, snap = _copy_model(eng.model), eng.model.copy()
+    twin, snap = copy_model(eng.model), eng.model.copy()
     assert twin.digest == snap.digest == eng.model.digest
     apply(eng, s, 3000, 6000)
     assert twin.digest == snap.digest != eng.model.digest
@@ -336,11 +331,6 @@ def test_trusted_copy_is_an_independent_model():
     for m in (twin, snap):
         m.process(rest.rows, rest.y, rest.mode, Outcome.empty(len(rest)))
     assert twin.digest == snap.digest
-    # refreshed in place (the monitor's way every few checks): the original's state, still independent
-    again = _copy_model(eng.model, twin)
-    assert again is twin and twin.digest == eng.model.digest and twin._st is not eng.model._st
-    apply(eng, s, 0, 500)
-    assert twin.digest != eng.model.digest
 
 
 def test_serve_better_follows_the_lower_window_loss():
@@ -362,7 +352,8 @@ def test_restart_drops_the_old_window_and_keeps_the_raw_iterate():
     (restart,) = kinds(eng, "restart")
     assert eng.monitor.window.events().min() >= restart["evidence"]["alarm_event"]
     assert eng.model.updates_since_restart < len(s) - CHANGE_AT
-    assert restart["evidence"]["worse_averaged"] and restart["evidence"]["p_averaged"] <= 1e-3
+    ev = restart["evidence"]
+    assert ev["p"] <= 1e-3 and ev["recent_averaged"] > 1.1 * ev["before_averaged"]
 
 
 def test_rejected_bursts_are_incidents():
@@ -376,24 +367,8 @@ def test_rejected_bursts_are_incidents():
 
 def test_monitor_settings_are_validated():
     with pytest.raises(ConfigError) as err:
-        config_from_dict(feeds.config_dict(confirm_recent=12, drift_confirm=12))
-    assert err.value.where == "monitor"
+        config_from_dict(feeds.config_dict(boundary_share=0.0))
+    assert err.value.where == "monitor.boundary_share"
     with pytest.raises(ConfigError) as err:
         config_from_dict(feeds.config_dict(drift="cusum"))
     assert err.value.where == "monitor.drift"
-
-
-def test_overhead_benchmark_reports_its_ratio():
-    """``benchmarks/monitor_overhead.py`` (called by ``benchmarks/core.py``) returns the ratio; the
-    timing itself is left to the benchmark run (a loaded CI machine is no place for timing)."""
-    sys.path.insert(0, str(Path(__file__).resolve().parents[3] / "benchmarks"))
-    from monitor_overhead import measure_monitor_overhead
-
-    result = measure_monitor_overhead(n_events=24_000, repeats=1, prepare_events=4_000, prepare_repeats=1)
-    assert result["monitor_overhead"] > 0 and math.isfinite(result["monitor_overhead"])
-    assert result["monitor_overhead_q1"] <= result["monitor_overhead"] <= result["monitor_overhead_q3"]
-    assert result["pairs"] == 3  # 5 batches of 5,000, the first 2 not paired (the window still filling)
-    assert sorted(result["settings"]) == ["window=1000,check_every=250", "window=2000,check_every=500",
-                                          "window=500,check_every=250"]
-    assert all(r > 0 and math.isfinite(r) for r in result["settings"].values())
-    assert result["checks"] == pytest.approx(24_000 * 0.95 / 250, abs=3)

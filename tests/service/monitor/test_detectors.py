@@ -1,0 +1,90 @@
+"""The monitor's change detectors against river's ``drift.PageHinkley`` and ``drift.ADWIN`` (the references).
+
+E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41; A. Bifet and R. Gavaldà, 2007,
+"Learning from time-changing data with adaptive windowing". The monitor runs river's own classes
+(loaded without ``river.drift``'s package import) behind a small wrapper that can save its state
+without pickle: the wrapper must fire where river's package classes fire, on river's documented
+example and on random streams, and a detector saved and restored at any point must go on firing at
+the same indices as one that was never interrupted.
+"""
+
+from __future__ import annotations
+
+import json
+import random
+
+import numpy as np
+import pytest
+from river import drift
+
+from service.monitor.detectors import ChangeDetector
+
+
+def _fires(detector, stream):
+    out = []
+    for i, x in enumerate(stream):
+        detector.update(x)
+        if detector.drift_detected:
+            out.append(i)
+    return out
+
+
+def _steps(seed: int) -> list:
+    rng = random.Random(seed)
+    stream, level = [], 0.0
+    for _ in range(8):
+        level += rng.choice([-3.0, -1.0, 1.0, 3.0])
+        stream += [level + rng.gauss(0, 1) for _ in range(rng.randint(50, 400))]
+    return stream
+
+
+@pytest.mark.parametrize("kind,index", [("page_hinkley", 1006), ("adwin", 1023)])
+def test_river_documented_example(kind, index):
+    """river's documentation (``drift/page_hinkley.py`` and ``drift/adwin.py`` docstrings):
+    ``random.Random(12345)``, 1,000 draws of {0, 1} then 1,000 of 4..7: Page-Hinkley fires first at
+    index 1006, ADWIN at 1023."""
+    rng = random.Random(12345)
+    stream = rng.choices([0, 1], k=1000) + rng.choices(range(4, 8), k=1000)
+    det = ChangeDetector(kind)
+    assert [i for i, x in enumerate(stream) if det.update(x)][0] == index
+
+
+@pytest.mark.parametrize("mode", ["up", "down", "both"])
+@pytest.mark.parametrize("params", [{}, {"min_instances": 5, "delta": 0.1, "threshold": 3.0},
+                                    {"alpha": 0.99, "threshold": 1.0, "delta": 0.0}],
+                         ids=["defaults", "sensitive", "forgetful"])
+def test_same_detections_as_river_on_random_streams(mode, params):
+    """Random piecewise streams (level shifts up and down, Gaussian noise): identical detection indices
+    to ``river.drift.PageHinkley``, including the fresh start after each detection."""
+    for seed in range(5):
+        stream = _steps(seed)
+        det = ChangeDetector("page_hinkley", mode=mode, **params)
+        ours = [i for i, x in enumerate(stream) if det.update(x)]
+        assert ours == _fires(drift.PageHinkley(mode=mode, **params), stream)
+        if params:
+            assert ours, "the stream should trigger the sensitive settings at least once"
+
+
+@pytest.mark.parametrize("kind,params", [("page_hinkley", {"min_instances": 5, "delta": 0.1, "threshold": 3.0}),
+                                         ("adwin", {})])
+def test_saved_state_continues_identically(kind, params):
+    """Saved (through JSON and an array, as the monitor's checkpoint does) and restored at random
+    points, a detector fires at the same indices as river's, never interrupted."""
+    reference = drift.PageHinkley(**params) if kind == "page_hinkley" else drift.ADWIN(**params)
+    stream = _steps(7) + _steps(8)
+    want = _fires(reference, stream)
+    assert want
+    cuts = sorted(random.Random(3).sample(range(1, len(stream)), 6))
+    det, got, start = ChangeDetector(kind, **params), [], 0
+    for cut in cuts + [len(stream)]:
+        got += [start + i for i, x in enumerate(stream[start:cut]) if det.update(x)]
+        fields, values = det.state()
+        det = ChangeDetector(kind, **params)
+        det.load_state(json.loads(json.dumps(fields)), np.frombuffer(values.tobytes()))
+        start = cut
+    assert got == want
+
+
+def test_invalid_kind_names_the_valid_values():
+    with pytest.raises(ValueError, match="Valid values are: adwin, page_hinkley"):
+        ChangeDetector("cusum")
