@@ -206,7 +206,7 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],
         "rejected_bursts": [{"event": i["event"], "reason": i["reason"]} for i in incidents
                             if i["kind"] == "rejected_burst"],
-        "certificate": engine.certificate(), "warnings": engine.warnings, "state_digest": engine.state_digest,
+        "certificate": engine.certificate(), "state_digest": engine.state_digest,
         "updates": engine.model.n_updates, "seconds": seconds,
         "events_per_second": engine.events / seconds if seconds > 0 else None,
     }
