@@ -134,7 +134,7 @@ async def test_live_replay_of_csv_and_parquet_matches_the_offline_digest(tmp_pat
     proc = _serve(GUARDED, tmp_path / "data", port)
     try:
         _wait_ready(proc, port)
-        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=500)
+        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=500, token=TOKEN)
     finally:
         proc.send_signal(signal.SIGTERM)
         try:
