@@ -1,8 +1,8 @@
 """The sweep's page, ``sweep.html``: the ranking and the best runs' curves, plots embedded.
 
 The best runs (by the ranking of :func:`service.replay.sweep.rank`) are drawn by the replay
-report itself (:func:`service.replay.report.write_report` into a scratch folder), so a sweep's
-curves read exactly like a replay's; their PNGs are embedded in the page as data URIs, so
+report's own figure functions (:mod:`service.replay.figures`), so a sweep's curves read exactly
+like a replay's; their PNGs are embedded in the page as data URIs, so
 ``sweep.html`` is one file that can be mailed and opened from disk.
 """
 
@@ -11,7 +11,6 @@ from __future__ import annotations
 import base64
 import html
 import json
-import tempfile
 from pathlib import Path
 
 __all__ = ["BEST_DRAWN", "write_sweep_report"]
@@ -35,8 +34,8 @@ def _num(x) -> str:
     return f"{x:.5g}"
 
 
-def _img(path: Path, alt: str) -> str:
-    data = base64.b64encode(path.read_bytes()).decode("ascii")
+def _img(png: bytes, alt: str) -> str:
+    data = base64.b64encode(png).decode("ascii")
     return f"<img src='data:image/png;base64,{data}' alt='{html.escape(alt)}'>"
 
 
@@ -62,26 +61,26 @@ def _ranking_table(sweep: dict) -> str:
 
 
 def _curves(sweep: dict, results: dict) -> str:
-    """The replay report's figures for the best runs, drawn in a scratch folder and embedded."""
-    from service.replay.report import write_report
+    """The replay report's figures for the best runs, drawn by the same functions and embedded."""
+    from service.replay.figures import compare_figure, run_figure
+    from service.replay.plotdata import thin_trace
+    from service.replay.report import _LOSS_UNITS
 
     best = [r["name"] for r in sweep["ranking"][:BEST_DRAWN]]
     runs = [results[name]["summary"] for name in best]
-    with tempfile.TemporaryDirectory(prefix="trimtab-sweep-plots-") as scratch:
-        summary = {"feed": sweep["feeds"][0], "feeds": sweep["feeds"], "runs": runs}
-        write_report(scratch, summary, [results[name] for name in best])
-        plots = Path(scratch) / "plots"
-        parts = []
-        compare = plots / "compare.png"
-        if compare.exists():
-            parts.append("<h2>The best runs side by side</h2>" + _img(compare, "loss of the best runs"))
-        for name in best:
-            figure = plots / f"run-{name}.png"
-            verdict = results[name]["summary"].get("verdict", "")
-            parts.append(f"<h3>{html.escape(name)}</h3><p>{html.escape(verdict)}</p>")
-            if figure.exists():
-                parts.append(_img(figure, f"held-out loss, step size and distance of run {name}"))
-        return "".join(parts)
+    plots = [results[name]["plot"] if "plot" in results[name] else thin_trace(results[name]["trace"])
+             for name in best]
+    parts = []
+    if not best:
+        return ""
+    unit = _LOSS_UNITS.get(results[best[0]].get("loss", "squared"), "loss")
+    if len(best) > 1:
+        parts.append("<h2>The best runs side by side</h2>"
+                     + _img(compare_figure(runs, plots, unit, []), "loss of the best runs"))
+    for name, run, plot in zip(best, runs, plots):
+        parts.append(f"<h3>{html.escape(name)}</h3><p>{html.escape(run.get('verdict', ''))}</p>")
+        parts.append(_img(run_figure(run, plot, unit, []), f"loss, step size and distance of run {name}"))
+    return "".join(parts)
 
 
 def write_sweep_report(out: str | Path, sweep: dict, results: dict) -> Path:

@@ -43,7 +43,8 @@ BAD = [
     ("strongly-convex-unbounded", '[steps]\nrule = "strongly_convex"\n[model]\nl2 = 0.01\n[constraint]\nset = "none"',
      "steps.rule", "bounded"),
     ("anytime-unbounded", '[constraint]\nset = "none"', "steps.rule", "radius"),
-    ("confirm-window", "[monitor]\ndrift_confirm = 4\nconfirm_recent = 4", "monitor", "confirm_recent"),
+    ("boundary-share", "[monitor]\nboundary_share = 1.5", "monitor.boundary_share", "less than or equal to 1"),
+    ("removed-key", "[monitor]\nconfirm_recent = 4", "monitor.confirm_recent", "unknown key"),
     ("bad-name", 'name = "my model!"', "name", "pattern"),
     ("feed-url", '[feed]\nsource = "http://127.0.0.1:6379"', "feed.source", "redis://"),
 ]

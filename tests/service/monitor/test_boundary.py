@@ -68,9 +68,10 @@ def test_boundary_warning_stays_silent_on_a_well_sized_radius():
 
 def test_verdict_is_never_stable_while_worse_than_the_baseline():
     """A model whose loss is above the baseline's (``baseline_loss``) is not "stable"."""
-    run = {"rollbacks": [], "restarts": [], "serving": "averaged", "progressive_loss": 3.0, "baseline_loss": 2.0}
+    run = {"rollbacks": [], "restarts": [], "serving": "averaged", "progressive_loss": 3.0,
+           "baseline_loss": {"progressive": 2.0, "holdout": None}}
     assert verdict(run).startswith("not stable: the model's loss 3 is above the baseline's 2")
-    assert verdict({**run, "baseline_loss": 4.0}).startswith("stable")
+    assert verdict({**run, "baseline_loss": {"progressive": 4.0, "holdout": None}}).startswith("stable")
 
 
 @pytest.mark.slow
