@@ -150,6 +150,16 @@ def resolve_token(config: Config, token: str | None = None) -> str | None:
     return token
 
 
+#: the API's routes (README "HTTP API"): method, path, handler in :mod:`service.http.handlers`
+_ROUTES = (
+    ("POST", "/v1/score", "score"), ("POST", "/v1/events", "post_events"), ("POST", "/v1/labels", "post_labels"),
+    ("GET", "/v1/model", "model_card"), ("POST", "/v1/model/rollback", "rollback"),
+    ("GET", "/v1/checkpoints", "get_checkpoints"), ("POST", "/v1/checkpoints", "post_checkpoint"),
+    ("GET", "/v1/incidents", "incidents"), ("GET", "/v1/openapi.json", "openapi"), ("GET", "/metrics", "metrics"),
+    ("GET", "/healthz", "healthz"), ("GET", "/readyz", "readyz"),
+)
+
+
 def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
     """The service app for ``config``; ``token`` overrides the environment variable (tests).
 
@@ -166,18 +176,9 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
                           handler_args=handler_options(config.service))
     app[SERVICE] = svc
     expect = svc.bodies.expect  # size and encoding checked before "100 Continue" asks for the body
-    app.router.add_post("/v1/score", h.score, expect_handler=expect)
-    app.router.add_post("/v1/events", h.post_events, expect_handler=expect)
-    app.router.add_post("/v1/labels", h.post_labels, expect_handler=expect)
-    app.router.add_get("/v1/model", h.model_card, expect_handler=expect)
-    app.router.add_post("/v1/model/rollback", h.rollback, expect_handler=expect)
-    app.router.add_get("/v1/checkpoints", h.get_checkpoints, expect_handler=expect)
-    app.router.add_post("/v1/checkpoints", h.post_checkpoint, expect_handler=expect)
-    app.router.add_get("/v1/incidents", h.incidents, expect_handler=expect)
-    app.router.add_get("/v1/openapi.json", h.openapi, expect_handler=expect)
-    app.router.add_get("/metrics", h.metrics, expect_handler=expect)
-    app.router.add_get("/healthz", h.healthz, expect_handler=expect)
-    app.router.add_get("/readyz", h.readyz, expect_handler=expect)
+    for method, path, handler in _ROUTES:  # add_get answers HEAD too, as a GET route should
+        add = app.router.add_get if method == "GET" else app.router.add_post
+        add(path, getattr(h, handler), expect_handler=expect)
     app.cleanup_ctx.append(_lifecycle)
     return app
 

@@ -56,18 +56,13 @@ def _wait_ready(proc: subprocess.Popen, port: int, timeout: float = 90.0) -> Non
     raise AssertionError("trimtab serve did not become ready")
 
 
-async def test_live_replay_into_trimtab_serve_matches_the_offline_digest(tmp_path):
-    """Must-show 2: a seeded feed with malformed lines, posted to a ``trimtab serve`` subprocess,
-    leaves the service at the state_digest of the offline replay of the same file."""
-    import service.http.app  # noqa: F401  (the service must exist: fail loudly, never skip)
-
-    feed = tmp_path / "feed.ndjson.gz"
-    write_ndjson(feed, 20_000, seed=21)
+async def _replay_into_serve(feed: Path, tmp_path: Path, batch: int) -> dict:
+    """``replay_live`` of ``feed`` into a fresh ``trimtab serve`` subprocess (stopped afterwards)."""
     port = free_port()
     proc = _serve(GUARDED, tmp_path / "data", port)
     try:
         _wait_ready(proc, port)
-        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=700, token=TOKEN)
+        return await replay_live([feed], f"http://127.0.0.1:{port}", batch=batch, token=TOKEN)
     finally:
         proc.send_signal(signal.SIGTERM)
         try:
@@ -76,6 +71,16 @@ async def test_live_replay_into_trimtab_serve_matches_the_offline_digest(tmp_pat
             proc.kill()
             proc.wait()
         proc.stdout.close()
+
+
+async def test_live_replay_into_trimtab_serve_matches_the_offline_digest(tmp_path):
+    """Must-show 2: a seeded feed with malformed lines, posted to a ``trimtab serve`` subprocess,
+    leaves the service at the state_digest of the offline replay of the same file."""
+    import service.http.app  # noqa: F401  (the service must exist: fail loudly, never skip)
+
+    feed = tmp_path / "feed.ndjson.gz"
+    write_ndjson(feed, 20_000, seed=21)
+    live = await _replay_into_serve(feed, tmp_path, batch=700)
     offline = run_replay([feed], load_config(GUARDED))["summary"]
     print("live", live["acks"], live["latency_ms"], live["state_digest"][:16], "offline", offline["state_digest"][:16])
     assert live["acks"]["accepted"] == offline["events"] == 20_000
@@ -130,19 +135,7 @@ async def test_live_replay_of_csv_and_parquet_matches_the_offline_digest(tmp_pat
 
         feed = tmp_path / "feed.parquet"
         pq.write_table(pacsv.read_csv(source), feed)
-    port = free_port()
-    proc = _serve(GUARDED, tmp_path / "data", port)
-    try:
-        _wait_ready(proc, port)
-        live = await replay_live([feed], f"http://127.0.0.1:{port}", batch=500, token=TOKEN)
-    finally:
-        proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=60)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
-        proc.stdout.close()
+    live = await _replay_into_serve(feed, tmp_path, batch=500)
     offline = run_replay([feed], load_config(GUARDED))["summary"]
     assert live["acks"]["accepted"] == offline["events"] > 5_000
     assert live["acks"]["rejected"] + live["acks"]["skipped_malformed"] == offline["rejected"]
