@@ -1,6 +1,6 @@
 """The config file is strict: every bad value is an error naming its key, and every error is shown.
 
-The keys and their valid values are the config contract documented in ``docs/config.md``; each case
+The keys and their valid values are the config contract (README "Config", ``trimtab check-config``); each case
 below is one mistake a user can make, with the key the error must name.
 """
 
@@ -73,7 +73,7 @@ def test_features_are_declared_under_free_names(text, fragment):
     assert fragment in err.value.message
 
 
-def test_every_error_of_a_file_is_reported():
+def test_every_problem_of_a_file_is_reported():
     text = BASE + '[monitor]\nwindow = "500"\n[steps]\nbase = true\n[constraint]\nradius = "20"\n'
     with pytest.raises(ConfigError) as err:
         parse_config(text)
@@ -89,7 +89,7 @@ def test_an_integer_is_a_valid_number():
     assert cfg.constraint.radius == 20.0 and isinstance(cfg.steps.base, float | int)
 
 
-def test_check_config_prints_every_error_and_exits_2(tmp_path):
+def test_check_config_lists_every_problem_and_exits_2(tmp_path):
     path = tmp_path / "bad.toml"
     path.write_text(BASE + '[monitor]\nwindow = "500"\n[steps]\nbase = true\nrule = "nope"\n')
     proc = subprocess.run([sys.executable, "-m", "service.cli", "check-config", str(path)],
