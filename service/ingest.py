@@ -148,13 +148,9 @@ class Ingestor:
         """Run an engine-changing call on the learner's thread."""
         return await asyncio.get_running_loop().run_in_executor(self._learn_thread, fn, *args)
 
-    async def journaled(self, ident: str) -> bool:
-        """Whether an event with this id was ever journaled (the deduplication index, on its thread)."""
-        key = id_key(ident)
-        return key in await self.db(self.journal.known, [key])
-
-    def journaled_blocking(self, ident: str) -> bool:
-        """:meth:`journaled` for a worker thread (never the event loop): waits for the journal's thread."""
+    def journaled(self, ident: str) -> bool:
+        """Whether an event with this id was ever journaled (the deduplication index). The lookup runs
+        on the journal's thread and this waits for it: call it from a worker thread, never the loop."""
         key = id_key(ident)
         return key in self._thread.submit(self.journal.known, [key]).result()
 

@@ -157,16 +157,14 @@ class _Pacer:
     def __init__(self, speed: float | None) -> None:
         self.speed, self.first, self.start = speed, None, time.perf_counter()
 
-    def wait(self, line: bytes) -> float:
-        """Seconds until ``line`` is due (0 when unpaced, past due, or without a timestamp)."""
-        if not self.speed:
-            return 0.0
-        ts = _ts(line)
+    def due(self, line: bytes) -> float:
+        """The ``perf_counter`` time ``line`` is due (the start when unpaced or without a timestamp)."""
+        ts = _ts(line) if self.speed else None
         if ts is None:
-            return 0.0
+            return self.start
         if self.first is None:
             self.first = ts
-        return (ts - self.first) / self.speed - (time.perf_counter() - self.start)
+        return self.start + (ts - self.first) / self.speed
 
 
 async def replay_live(feeds, url: str, *, speed: float | None = None, token: str | None = None,
@@ -206,10 +204,10 @@ async def replay_live(feeds, url: str, *, speed: float | None = None, token: str
             if isinstance(record, _Skipped):
                 acks["skipped_oversize" if record.reason.startswith("line over") else "skipped_malformed"] += 1
                 continue
-            wait = pacer.wait(record)
-            if lines and (wait > 0 or len(lines) >= batch or size + len(record) > _MAX_BODY):
+            due = pacer.due(record)
+            if lines and (due > time.perf_counter() or len(lines) >= batch or size + len(record) > _MAX_BODY):
                 await send()
-                wait = pacer.wait(record)
+            wait = due - time.perf_counter()
             if wait > 0:
                 await asyncio.sleep(wait)
             lines.append(record)

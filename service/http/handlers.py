@@ -288,7 +288,7 @@ def _labels(svc: Service, body: bytes) -> tuple:
             payloads.append(encode_event(e))
             where.append(i)
             continue
-        if state == "unknown" and svc.ingestor.journaled_blocking(lab.id):
+        if state == "unknown" and svc.ingestor.journaled(lab.id):
             known.append(i)  # learned before (its entry was forgotten then): a retry, not an error
             continue
         (expired if state == "expired" else unknown).append(lab.id)
