@@ -89,6 +89,15 @@ def _events_axis(ax) -> None:
     ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x:,.0f}"))
 
 
+def _panel(ax, run: dict, notes: list[dict], series, *, color: str, label: str, empty: str, ylabel: str) -> None:
+    """One series of a run on its own axis, with the feed's notes and the run's rollbacks and restarts."""
+    drawn = _line(ax, series, color=color, linewidth=1.2, label=label)
+    _notes(ax, notes, label=False)
+    _marks(ax, run, label=False)
+    _axis(ax, drawn, empty)
+    ax.set_ylabel(ylabel)
+
+
 def run_figure(run: dict, plot: dict, loss_unit: str, notes: list[dict]) -> bytes:
     """Loss (model and baseline), step size and iterate distance of one run, as PNG bytes."""
     get = lambda key: plot.get(key, _EMPTY)  # noqa: E731
@@ -113,18 +122,12 @@ def run_figure(run: dict, plot: dict, loss_unit: str, notes: list[dict]) -> byte
     if not any(drawn[2:]):
         ax.text(0.01, 0.02, "no held-out loss: this run held no events out (monitor off or holdout_share = 0)",
                 transform=ax.transAxes, fontsize=8, color="#555555")
-    ax = axes[1]
-    drawn = _line(ax, get("step"), color="#1f78b4", linewidth=1.2, label="step size of the last update")
-    _notes(ax, notes, label=False)
-    _marks(ax, run, label=False)
-    _axis(ax, drawn, "no step recorded")
-    ax.set_ylabel("step size \u03b7\n(model coordinates)")
+    _panel(axes[1], run, notes, get("step"), color="#1f78b4", label="step size of the last update",
+           empty="no step recorded", ylabel="step size \u03b7\n(model coordinates)")
     ax = axes[2]
-    drawn = _line(ax, get("distance"), color="#333333", linewidth=1.2, label="\u2016raw \u2212 averaged\u2016")
-    _notes(ax, notes, label=False)
-    _marks(ax, run, label=False)
-    _axis(ax, drawn, "the raw and averaged iterates never differed")
-    ax.set_ylabel("\u2016w_raw \u2212 w_avg\u2016\u2082\n(model coordinates)")
+    _panel(ax, run, notes, get("distance"), color="#333333", label="\u2016raw \u2212 averaged\u2016",
+           empty="the raw and averaged iterates never differed",
+           ylabel="\u2016w_raw \u2212 w_avg\u2016\u2082\n(model coordinates)")
     _events_axis(ax)
     return _png(fig)
 
