@@ -26,6 +26,9 @@ import orjson
 from aiohttp import web
 
 from service.http import handlers as h
+from service.http import page
+from service.http.modelmetrics import ModelHealthCollector
+from service.http.pulse import PULSE, Pulse, pulse_context
 from service.http.bodies import BodyReader
 from service.http.looplag import LoopLag
 from service.http.transport import GuardedRunner, handler_options
@@ -156,8 +159,10 @@ _ROUTES = (
     ("GET", "/v1/model", "model_card"), ("POST", "/v1/model/rollback", "rollback"),
     ("GET", "/v1/checkpoints", "get_checkpoints"), ("POST", "/v1/checkpoints", "post_checkpoint"),
     ("GET", "/v1/incidents", "incidents"), ("GET", "/v1/openapi.json", "openapi"), ("GET", "/metrics", "metrics"),
-    ("GET", "/healthz", "healthz"), ("GET", "/readyz", "readyz"),
+    ("GET", "/healthz", "healthz"), ("GET", "/readyz", "readyz"), ("GET", "/v1/health", "health"),
 )
+#: the live page (:mod:`service.http.page`): no token, no data of its own
+_PAGE_ROUTES = (("/", page.page), ("/page/{name}", page.page_asset))
 
 
 def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
@@ -179,7 +184,12 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     for method, path, handler in _ROUTES:  # add_get answers HEAD too, as a GET route should
         add = app.router.add_get if method == "GET" else app.router.add_post
         add(path, getattr(h, handler), expect_handler=expect)
+    for path, handler in _PAGE_ROUTES:
+        app.router.add_get(path, handler)
+    app[PULSE] = Pulse()
+    svc.metrics.registry.register(ModelHealthCollector(svc, app[PULSE]))
     app.cleanup_ctx.append(_lifecycle)
+    app.cleanup_ctx.append(pulse_context)
     return app
 
 

@@ -54,6 +54,10 @@ class HeldOutWindow:
         """Event indices of the kept events, oldest first."""
         return self._events[self._lo:self._hi].copy()
 
+    def targets(self) -> np.ndarray:
+        """Targets of the kept events, oldest first (a copy)."""
+        return self._y[self._lo:self._hi].copy()
+
     def add(self, rows: Rows, y: np.ndarray, picked: np.ndarray, events: np.ndarray) -> None:
         """Keep rows ``picked`` of ``rows`` (targets ``y[picked]``, event indices ``events``)."""
         n = len(picked)
