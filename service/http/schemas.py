@@ -234,11 +234,25 @@ def openapi_document(config, version: str) -> dict:
                             "post": _op("write a checkpoint now", None, "Object", True, (401, 429, 503))},
         "/v1/incidents": {"get": _op("rollbacks, restarts, rejected bursts, service incidents", None, "Object",
                                      reads, (401,))},
+        "/v1/health": {"get": _op("the model's health and its series (what the page at / draws)", None, "Object",
+                                  reads, (401, 503))},
+        "/": {"get": {"summary": "the live page (HTML; its data comes from /v1/health)",
+                      "responses": {"200": {"description": "ok", "content": {"text/html": {}}}}}},
+        "/page/{name}": {"get": {"summary": "the page's script and style sheet", "parameters": [
+            {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}}],
+            "responses": {"200": {"description": "ok"}, "404": {"description": "no such file"}}}},
         "/metrics": {"get": dict(plain, summary="Prometheus text exposition")},
         "/healthz": {"get": dict(plain, summary="liveness")},
         "/readyz": {"get": dict(plain, summary="readiness: 200 once recovery has finished")},
         "/v1/openapi.json": {"get": dict(plain, summary="this document")},
     }
+    paths["/v1/incidents"]["get"]["parameters"] = [
+        {"name": "limit", "in": "query", "required": False, "description": "keep the newest N (after since)",
+         "schema": {"type": "integer", "minimum": 1, "maximum": 100_000}},
+        {"name": "since", "in": "query", "required": False,
+         "description": "Unix seconds: keep incidents with ts >= since (those without a time are left out)",
+         "schema": {"type": "number", "minimum": 0}}]
+    paths["/v1/incidents"]["get"]["responses"]["422"] = paths["/v1/incidents"]["get"]["responses"]["401"]
     if not reads:  # the token is optional for scoring, and required with "remember": true
         paths["/v1/score"]["post"]["security"] = [{}, *_BEARER]
     return {"openapi": "3.1.0", "info": {"title": f"trimtab service ({config.name})", "version": version},

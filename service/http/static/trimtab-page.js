@@ -4,6 +4,7 @@
 "use strict";
 
 const POLL_MS = 2000;
+const RETRY_MS = 1000;    // while the service cannot be reached
 const TIMEOUT_MS = 4000;
 const SVG = "http://www.w3.org/2000/svg";
 const STYLE = {  // colour and dash: every pair of series differs in both
@@ -115,7 +116,7 @@ function buildCharts() {
     for (const [, legend, style] of series) {
       const key = document.createElement("span");
       key.className = "key";
-      const sample = el("svg", { width: 22, height: 8, "aria-hidden": "true" });
+      const sample = el("svg", { class: "swatch", viewBox: "0 0 22 8", "aria-hidden": "true" });
       el("line", { x1: 1, y1: 4, x2: 21, y2: 4, stroke: STYLE[style].color, "stroke-width": 2,
                    "stroke-dasharray": STYLE[style].dash }, sample);
       key.appendChild(sample);
@@ -135,7 +136,7 @@ function buildCharts() {
       }
     }
     fig.appendChild(cap);
-    const svg = el("svg", { role: "img", "aria-label": title });
+    const svg = el("svg", { class: "plot", role: "img", "aria-label": title });
     fig.appendChild(svg);
     host.appendChild(fig);
   }
@@ -152,7 +153,7 @@ function seriesData(h, source, key) {
 
 function drawChart(fig, h, spec) {
   const [id, title, source, yTitle, series] = spec;
-  const svg = fig.querySelector("svg");
+  const svg = fig.querySelector("svg.plot");
   const W = Math.max(200, Math.round(svg.clientWidth || fig.clientWidth - 16));
   const H = Math.max(120, Math.round(svg.clientHeight || 170));
   svg.setAttribute("viewBox", `0 0 ${W} ${H}`);
@@ -171,7 +172,7 @@ function drawChart(fig, h, spec) {
     return;
   }
   let xlo = Math.min(...xs), xhi = Math.max(...xs);
-  if (source === "pulse") { xlo = Math.min(xlo, -60); xhi = 0; }
+  if (source === "pulse") { xlo = Math.min(xlo, -60); xhi = 0; } else { xlo = Math.min(xlo, 0); }
   if (xhi === xlo) xhi = xlo + 1;
   const positive = ys.every((y) => y > 0);
   let ylo = Math.min(...ys), yhi = Math.max(...ys);
@@ -198,7 +199,7 @@ function drawChart(fig, h, spec) {
     el("line", { x1: L, x2: L + pw, y1: y, y2: y, class: "grid" }, svg);
     el("text", { x: L - 4, y: y + 3.5, "text-anchor": "end", class: "axis" }, svg).textContent = fmt(v, 2);
   }
-  for (const v of niceTicks(xlo, xhi, Math.max(2, Math.floor(pw / 90)))) {
+  for (const v of niceTicks(xlo, xhi, Math.max(4, Math.floor(pw / 80)))) {
     const x = tx(v);
     el("line", { x1: x, x2: x, y1: T + ph, y2: T + ph + 4, class: "frame" }, svg);
     el("text", { x, y: T + ph + 14, "text-anchor": "middle", class: "axis" }, svg).textContent = fmt(v, 3);
@@ -256,7 +257,7 @@ function showHealth(h) {
   $("version").textContent = v ? `position ${count(v.seq)}` : "–";
   $("version-age").textContent = v ? `${count(v.updates)} updates · published ${ago(v.age_s)} ago` : "";
   const served = m.holdout_loss[m.serving === "raw" ? "raw" : "averaged"];
-  $("loss-now").textContent = fmt(served);
+  $("loss-now").textContent = `${fmt(served)} (${m.serving})`;
   $("loss-base").textContent = `baseline ${fmt(m.holdout_loss.baseline)} · raw ${fmt(m.holdout_loss.raw)} · ` +
     `averaged ${fmt(m.holdout_loss.averaged)}` + (m.binary ? binaryWords(m.binary[m.serving]) : "");
   $("events").textContent = count(m.events);
@@ -268,6 +269,7 @@ function showHealth(h) {
   $("actions-more").textContent = Object.entries(m.rollbacks).filter(([, n]) => n)
     .map(([k, n]) => `${n}× ${k.replaceAll("_", " ")}`).join(" · ") || "no rollback";
   $("certificate").textContent = m.certificate.words;
+  $("cert-source").textContent = m.certificate.source ? "Source: " + m.certificate.source : "";
   const warn = $("warnings");
   warn.replaceChildren();
   for (const w of m.warnings) {
@@ -303,7 +305,9 @@ function showIncidents(list) {
     const what = document.createElement("span");
     what.className = "what";
     const where = inc.event !== undefined && inc.event !== null ? `at event ${count(inc.event)}` : "";
-    const when = inc.ts ? new Date(inc.ts * 1000).toISOString().replace("T", " ").slice(0, 19) + " UTC" : "";
+    const stamp = inc.ts ? new Date(inc.ts * 1000).toISOString().replace("T", " ").slice(0, 16) + " UTC" : "";
+    // the model's incidents carry their event's own time; the service's, the clock's
+    const when = stamp && (inc.source === "engine" ? `event time ${stamp}` : stamp);
     what.textContent = [inc.kind.replaceAll("_", " "), where, when].filter(Boolean).join(" · ");
     const reason = document.createElement("span");
     reason.className = "reason";
@@ -348,15 +352,15 @@ async function poll() {
     if (err.status === 401) {
       setConn("lost", "This service needs its token to read: enter it under Operator actions.");
     } else if (err.status === 503) {
-      setConn("lost", `The service is starting or recovering (${err.message}); retrying every ${POLL_MS / 1000} s.`);
+      setConn("lost", `The service is starting or recovering (${err.message}); retrying every ${RETRY_MS / 1000} s.`);
     } else {
       if (!lostSince) lostSince = Date.now();
       const since = new Date(lostSince).toLocaleTimeString("en-GB");
-      setConn("lost", `Cannot reach the service since ${since}; retrying every ${POLL_MS / 1000} s. ` +
+      setConn("lost", `Cannot reach the service since ${since}; retrying every ${RETRY_MS / 1000} s. ` +
         (lastOk ? "The charts show the last data received." : ""));
     }
   } finally {
-    setTimeout(poll, POLL_MS);
+    setTimeout(poll, document.body.dataset.conn === "live" ? POLL_MS : RETRY_MS);
   }
 }
 
