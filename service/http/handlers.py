@@ -443,7 +443,7 @@ async def health(request: web.Request) -> web.Response:
     model = await asyncio.to_thread(model_health, ing, series=True)
     cfg = svc.config.service
     return _json({"name": svc.config.name, "now": time.time(), "started": svc.started, "model": model,
-                  "version": pulse.version(), "pulse": dict(pulse.series(), period_s=pulse.period),
+                  "version": pulse.version(ing), "pulse": dict(pulse.series(), period_s=pulse.period),
                   "queue_limit": cfg.queue_limit, "service_incidents": len(ing.incidents),
                   "open_writes": svc.token is None, "caution": CAUTION})
 

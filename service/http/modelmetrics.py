@@ -112,7 +112,7 @@ class ModelHealthCollector:
                      float(bool(cert["applicable"])))
         yield _gauge("trimtab_constraint_binding", "1 while the raw iterate sits on the constraint's boundary",
                      float(h["constraint_binding"]))
-        version = self._pulse.version()
+        version = self._pulse.version(self._service.ingestor)
         yield _gauge("trimtab_model_version", "Journal position of the model this process scores with",
                      version["seq"] if version else h["applied_seq"])
         yield _gauge("trimtab_model_age_seconds", "Seconds since the model this process scores with was published "

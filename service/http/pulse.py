@@ -7,8 +7,8 @@ samples them every ``period`` seconds into a ring of ``size`` samples (10 minute
 task of the app (:func:`pulse_context`). It reads plain counters without taking the learner's lock.
 
 The published version is the journal position of the copy that ``/v1/score`` scores
-(:func:`service.storage.recovery.serving_view`); its *age* is the time since that copy was first
-seen by a sample, so it is exact to within one sampling period.
+(:func:`service.storage.recovery.serving_view`), read when asked; its *age* is the time since that
+copy was first seen (by a sample or a read), so it is exact to within one sampling period.
 """
 
 from __future__ import annotations
@@ -40,23 +40,29 @@ class Pulse:
         self._view = None
         self.published_at: float | None = None
 
+    def _see(self, ing, now: float):
+        """Note the published view of ``ing``; a view not seen before was published by ``now``."""
+        view = ing.view
+        if view is not self._view:
+            self._view, self.published_at = view, now
+        return view
+
     def sample(self, ing, now: float | None = None) -> None:
         """Take one sample of ``ing`` (an :class:`service.ingest.Ingestor`) if it has an engine."""
         now = time.time() if now is None else now
         eng = ing.engine if ing is not None else None
         if eng is None:
             return
-        view = ing.view
-        if view is not self._view:
-            self._view, self.published_at = view, now
+        view = self._see(ing, now)
         seq = view[2] if view is not None else None
         self._samples.append((now, eng.events, ing.queued_events, eng.rejected, seq))
 
-    def version(self, now: float | None = None) -> dict | None:
-        """The published model's journal position, updates and age in seconds (``None`` before any)."""
-        if self._view is None:
-            return None
+    def version(self, ing, now: float | None = None) -> dict | None:
+        """The published model's journal position, updates, serving iterate and age in seconds
+        (``None`` before there is one)."""
         now = time.time() if now is None else now
+        if ing is None or self._see(ing, now) is None:
+            return None
         return {"seq": self._view[2], "updates": self._view[3], "serving": self._view[1],
                 "age_s": max(0.0, now - self.published_at)}
 
