@@ -172,7 +172,12 @@ function drawChart(fig, h, spec) {
     return;
   }
   let xlo = Math.min(...xs), xhi = Math.max(...xs);
-  if (source === "pulse") { xlo = Math.min(xlo, -60); xhi = 0; } else { xlo = Math.min(xlo, 0); }
+  if (source === "pulse") {
+    xlo = Math.min(xlo, -60); xhi = 0;
+  } else {  // from event 0, and far enough to show a rollback after the last check (an operator's)
+    xlo = Math.min(xlo, 0);
+    for (const m of h.model.marks) xhi = Math.max(xhi, m.event);
+  }
   if (xhi === xlo) xhi = xlo + 1;
   const positive = ys.every((y) => y > 0);
   let ylo = Math.min(...ys), yhi = Math.max(...ys);

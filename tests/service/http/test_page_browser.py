@@ -272,6 +272,9 @@ def test_operator_actions_need_the_token_which_stays_in_memory(site):
     _wait_until(page, "document.getElementById('ops-result').textContent.startsWith('Rolled back')")
     _wait_until(page, "[...document.querySelectorAll('#incidents li')].some("
                            "li => li.textContent.includes('page test: operator rollback'))", timeout=15)
+    # marked on the event axis too, after the last check
+    _wait_until(page, "document.querySelectorAll(\"figure[data-chart='holdout'] g.mark\").length === "
+                f"{len(orjson.loads(serve.get('/v1/health'))['model']['marks'])}", timeout=15)
     metrics = serve.get("/metrics").decode()
     assert 'trimtab_rollbacks_total{reason="operator"} 1.0' in metrics
     kept = page.evaluate("[localStorage.length, sessionStorage.length, document.cookie, location.href]")
