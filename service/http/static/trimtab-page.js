@@ -138,7 +138,7 @@ function buildCharts() {
     fig.appendChild(cap);
     const svg = el("svg", { class: "plot", role: "img", "aria-label": title });
     fig.appendChild(svg);
-    host.appendChild(fig);
+    host.insertBefore(fig, $("reading"));
   }
 }
 
