@@ -40,7 +40,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
 from service.http.health import model_health
 
-__all__ = ["FAMILIES", "BINARY_FAMILIES", "ModelHealthCollector"]
+__all__ = ["BINARY_FAMILIES", "FAMILIES", "ModelHealthCollector"]
 
 #: every family exported once the model is loaded (name as written before a counter's ``_total``)
 FAMILIES = ("trimtab_holdout_loss", "trimtab_baseline_loss", "trimtab_progressive_loss", "trimtab_serving_iterate",

@@ -167,7 +167,9 @@ function drawChart(fig, h, spec) {
   const pw = W - L - R, ph = H - T - B;
   el("rect", { x: L, y: T, width: pw, height: ph, class: "frame" }, svg);
   if (ys.length < 2) {
-    el("text", { x: L + 8, y: T + ph / 2, class: "empty" }, svg).textContent = "waiting for data…";
+    const why = source === "checks" && id === "holdout" && !h.model.held_out
+      ? "no held-out events: the monitor is off or holdout_share is 0" : "waiting for data…";
+    el("text", { x: L + 8, y: T + ph / 2, class: "empty" }, svg).textContent = why;
     fig.dataset.points = "0";
     return;
   }
