@@ -23,15 +23,19 @@ import numpy as np
 from models.binary_metrics import binary_metrics
 from service.replay.plotdata import NUMERIC_KEYS, thin_trace
 
-__all__ = ["RESTART_REASONS", "ROLLBACK_REASONS", "certificate_words", "incident_reason", "model_health"]
+__all__ = ["PAGE_KEYS", "RESTART_REASONS", "ROLLBACK_REASONS", "certificate_words", "incident_reason", "model_health"]
 
 #: label values of the rollback counter: the monitor's rules (``service/monitor/rules.py``) and operators
 ROLLBACK_REASONS = ("non_finite_update", "too_far_from_average", "raw_persistently_worse", "operator")
 #: label values of the restart counter (one rule restarts: a change confirmed on held-out loss)
 RESTART_REASONS = ("change_confirmed",)
 
-#: points per series sent to the page: two per stretch (its low and its high), 320 stretches
-PAGE_BUCKETS = 320
+#: points per series sent to the page: two per stretch (its low and its high), 240 stretches (a chart
+#: is at most about 900 pixels wide)
+PAGE_BUCKETS = 240
+#: the check-record columns the page draws
+PAGE_KEYS = ("holdout_raw", "holdout_avg", "baseline_holdout", "progressive_loss", "baseline_progressive", "step",
+             "distance")
 _MARKS = 500  # rollbacks and restarts marked on the page's event axis (the newest)
 
 # the start of each rule's reason text in service/monitor/rules.py, for the counters' reason label
@@ -142,7 +146,8 @@ def model_health(ing, *, series: bool = False) -> dict | None:
     out["rollbacks"], out["restarts"] = reasons["rollback"], reasons["restart"]
     if series:
         thinned = thin_trace(_columns(trace), PAGE_BUCKETS)
-        out["checks"] = {key: {"event": x.tolist(), "value": v.tolist()} for key, (x, v) in thinned.items()}
+        out["checks"] = {key: {"event": thinned[key][0].tolist(), "value": thinned[key][1].tolist()}
+                         for key in PAGE_KEYS}
         out["marks"] = [{"kind": i["kind"], "event": i["event"], "reason": i["reason"],
                          "label": incident_reason(i)} for i in incidents if i["kind"] in reasons][-_MARKS:]
     return out
