@@ -6,11 +6,16 @@ incident (a burst of rejected lines carries the time it was noted)."""
 from __future__ import annotations
 
 import time
+from urllib.parse import urlencode
 
 import pytest
+from aiohttp.test_utils import make_mocked_request
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
+from models import InvalidInput
 from service.http.app import create_app
-from service.http.handlers import merge_incidents
+from service.http.handlers import _query_number, merge_incidents
 from tests.service.servicekit import AUTH, TOKEN, demo_events, make_config, wait_ready
 
 
@@ -70,3 +75,21 @@ def test_merge_orders_by_time_and_keeps_the_engine_order_for_incidents_without_o
     assert [(i["source"], i["kind"]) for i in merged] == [
         ("engine", "rollback"), ("engine", "rollback"), ("service", "disk_full"), ("engine", "restart"),
         ("service", "recovered")]
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.one_of(st.text(max_size=12), st.integers(-10, 10**6).map(str), st.floats(allow_nan=True).map(repr)))
+def test_limit_parses_exactly_the_integers_in_range_and_names_itself_otherwise(text):
+    """Property: ``limit`` is accepted exactly when Python reads it as an integer from 1 to 100,000
+    (the reference is ``int()`` itself); anything else is refused naming ``query.limit``."""
+    request = make_mocked_request("GET", "/v1/incidents?" + urlencode({"limit": text}))
+    try:
+        expected = int(text)
+    except ValueError:
+        expected = None
+    if expected is not None and 1 <= expected <= 100_000:
+        assert _query_number(request, "limit", int, 1, 100_000) == expected
+    else:
+        with pytest.raises(InvalidInput) as err:
+            _query_number(request, "limit", int, 1, 100_000)
+        assert err.value.where == "query.limit"
