@@ -5,8 +5,8 @@ true``, ``/v1/model/rollback``, ``POST /v1/checkpoints``) needs ``Authorization:
 a missing or a wrong token is answered 401 (RFC 6750: both are an authentication failure, the
 message says which). The app factory refuses to build an app without a token unless
 ``service.auth = "none"``, which opens writes and says so on the model card. Reads need the token
-too when ``service.token_for_reads`` is true; ``/healthz``, ``/readyz`` and ``/v1/openapi.json``
-never do. Bodies are read through :class:`service.http.bodies.BodyReader` (size limit per route,
+too when ``service.token_for_reads`` is true (``/v1/health``, what the page at ``/`` draws, is a
+read); ``/healthz``, ``/readyz``, ``/v1/openapi.json`` and the page's files never do. Bodies are read through :class:`service.http.bodies.BodyReader` (size limit per route,
 in-flight budget, deadline, ``Content-Encoding``); those over 16 KiB are parsed on a worker thread, so
 ``/v1/score`` keeps answering while a large batch is validated. Scoring never adds to the model's
 categorical values.

@@ -17,8 +17,9 @@ TOKEN = "s3cret-token-for-tests"
 GOOD = {"Authorization": f"Bearer {TOKEN}"}
 WRITES = [("POST", "/v1/events"), ("POST", "/v1/labels"), ("POST", "/v1/model/rollback"), ("POST", "/v1/checkpoints")]
 READS = [("POST", "/v1/score"), ("GET", "/v1/model"), ("GET", "/v1/checkpoints"), ("GET", "/v1/incidents"),
-         ("GET", "/metrics")]
-OPEN = [("GET", "/healthz"), ("GET", "/readyz"), ("GET", "/v1/openapi.json")]
+         ("GET", "/metrics"), ("GET", "/v1/health")]
+OPEN = [("GET", "/healthz"), ("GET", "/readyz"), ("GET", "/v1/openapi.json"), ("GET", "/"),
+        ("GET", "/page/trimtab-page.js")]
 
 
 def _body(path: str):
