@@ -64,8 +64,8 @@ def _where_to_document(key: str) -> str:
     section = key.rsplit(".", 1)[0] if "." in key else None
     if section is None:
         return f"`{key}`: add a row `| `{key}` | type, allowed | default | ... |` under its own heading"
-    return (f"`{key}`: add a row `| `{key}` | type, allowed | default | unit | meaning |` to the table of the "
-            f"`## [{section}]` section (create that section if it is new)")
+    return (f"`{key}`: add a row `| `{key}` | type, allowed | default | unit | meaning |` to the table under "
+            f"the heading `## `[{section}]`` (create that section if it is new)")
 
 
 def test_every_config_key_is_in_the_config_reference():
@@ -97,7 +97,7 @@ def test_config_reference_states_the_code_defaults_and_allowed_values():
     wrong = []
     for key, field in keys.items():
         cells = rows[key]
-        stated, actual = _default_in_cell(cells[2]), field.default
+        stated, actual = _default_in_cell(cells[2]), field.get_default(call_default_factory=True)
         if stated != actual or type(stated) is bool and type(actual) is not bool:
             wrong.append(f"{key}: docs say {stated!r}, code has {actual!r}")
         for arg in (field.annotation, *typing.get_args(field.annotation)):
