@@ -212,3 +212,49 @@ def test_every_replay_output_is_in_the_replay_outputs_reference(tmp_path):
     missing += [f"model.json field {k}" for k in sorted(model_fields) if f"`{k}`" not in text]
     assert not missing, ("replay outputs missing from docs/replay-outputs.md (name each in backticks, with "
                          "its meaning):\n" + "\n".join("  " + m for m in missing))
+
+
+# ------------------------------------------------------------------------------------------------ coordinates
+def _fitted(constraint: str, **bounds):
+    """A model on one numeric feature with a small deviation (0.01) and a steep target, so that its
+    coefficient in the feature's own units is far above 1 while the scaled one is about 5."""
+    import numpy as np
+
+    from models import LinearModel
+
+    rng = np.random.default_rng(7)
+    model = LinearModel(numeric=["x"], categorical=["van"], hash_bits=4, scaling="warmup", warmup_events=50,
+                        constraint=constraint, rule="constant", base=0.05, **bounds)
+    for _ in range(3000):
+        x = 2.0 + 0.01 * rng.standard_normal()
+        van = f"V{rng.integers(1, 4):02d}"
+        model.learn_one({"x": x, "van": van}, 50.0 + 500.0 * (x - 2.0) + rng.normal(0, 0.1))
+    return model
+
+
+def test_penalty_ball_and_box_act_on_the_scaled_coordinates_as_documented():
+    """docs/config.md, "In which coordinates the model learns": the ball bounds ``||(w_scaled, b)||`` and the
+    box clips every scaled coefficient and the intercept, while the coefficient in the feature's own units
+    (``w_scaled / std``, the model card's) goes far past the bound; the documented meaning of both
+    intercepts holds to 1e-12. Outside reference: the sets' definitions (ball ``{x : ||x|| <= R}``, box
+    ``{x : lower <= x_i <= upper}``) and the change of units ``x -> (x - mean) / std``."""
+    import numpy as np
+
+    ball = _fitted("ball", radius=1.0)
+    w, b = ball.weights("raw")
+    assert np.sqrt(w @ w + b * b) <= 1.0 + 1e-9
+    assert abs(ball.coefficients("raw")["numeric"]["x"]) > 5.0  # |w_x| <= 1 scaled, / std 0.01 in own units
+
+    box = _fitted("box", lower=-1.0, upper=1.0)
+    w, b = box.weights("raw")
+    assert np.all(np.abs(w) <= 1.0 + 1e-12) and abs(b) <= 1.0 + 1e-12
+    assert np.sum(np.abs(w) > 0.999) >= 1 and abs(b) > 0.999  # the box binds: the target needs ~50
+    coef = box.coefficients("raw")
+    assert abs(coef["numeric"]["x"]) > 5.0
+
+    mean, std = box.scaling
+    assert abs(std[0] - 0.01) < 0.003
+    # internal intercept b: the margin of an event with x at its warm-up mean (missing) and no category;
+    # the card's intercept: the margin at x = 0 in the feature's own units and no category
+    assert abs(box.score_one({}, "raw") - b) <= 1e-12
+    assert abs(box.score_one({"x": 0.0}, "raw") - coef["intercept"]) <= 1e-12 * max(1.0, abs(coef["intercept"]))
