@@ -258,3 +258,33 @@ def test_penalty_ball_and_box_act_on_the_scaled_coordinates_as_documented():
     # the card's intercept: the margin at x = 0 in the feature's own units and no category
     assert abs(box.score_one({}, "raw") - b) <= 1e-12
     assert abs(box.score_one({"x": 0.0}, "raw") - coef["intercept"]) <= 1e-12 * max(1.0, abs(coef["intercept"]))
+
+
+def test_l2_penalty_acts_on_the_scaled_coefficients_and_the_intercept_as_documented():
+    """docs/config.md: the l2 penalty ``l2/2 (||w_scaled||^2 + b^2)`` includes the intercept and acts on scaled
+    coordinates. Outside reference: the closed-form ridge minimizer of ``E[(w z + b - y)^2]/2 + l2/2 (w^2 + b^2)``
+    for a standardized ``z`` independent of the noise, ``w = a / (1 + l2)``, ``b = c / (1 + l2)`` when
+    ``y = a z + c`` (solved exactly below for the scaling the warm-up froze). With l2 = 1 both roughly halve;
+    were the intercept unpenalized ``b`` would stay near ``E[y]``, and were the penalty on the feature's own
+    units (std 0.01) the coefficient would be crushed towards 0."""
+    import numpy as np
+
+    from models import LinearModel
+
+    rng = np.random.default_rng(11)
+    model = LinearModel(numeric=["x"], scaling="warmup", warmup_events=200, constraint="none", rule="sqrt_decay",
+                        base=0.2, l2=1.0)
+    for _ in range(40_000):
+        x = 2.0 + 0.01 * rng.standard_normal()
+        model.learn_one({"x": x}, 50.0 + 500.0 * (x - 2.0) + rng.normal(0, 0.1))  # y = 5 z + 50
+    # the exact minimizer for the frozen scaling: z = (x - m)/s has mean mu = (2 - m)/s, variance v = (0.01/s)^2
+    (m,), (s,) = model.scaling
+    mu, v = (2.0 - m) / s, (0.01 / s) ** 2
+    ez2, a = v + mu * mu, 500.0 * s  # y = a z + 50 + 500 (m - 2)
+    ey = 50.0 + 500.0 * (m - 2.0) + a * mu
+    want = np.linalg.solve([[ez2 + 1.0, mu], [mu, 2.0]], [a * ez2 + (ey - a * mu) * mu, ey])
+    w, b = model.weights("averaged")
+    print("averaged iterate", w, b, "ridge minimizer", want)
+    assert abs(b - want[1]) < 0.05 * abs(want[1]) and abs(w[0] - want[0]) < 0.05 * abs(want[0])
+    assert b < 0.6 * ey  # an unpenalized intercept would sit near E[y], about 50
+    assert w[0] > 1.0  # a penalty on the own units (std 0.01) would crush the scaled coefficient to ~0
