@@ -293,3 +293,34 @@ def test_l2_penalty_acts_on_the_scaled_coefficients_and_the_intercept_as_documen
     assert abs(b - want[1]) < 0.05 * abs(want[1]) and abs(w[0] - want[0]) < 0.05 * abs(want[0])
     assert b < 0.6 * ey  # an unpenalized intercept would sit near E[y], about 50
     assert w[0] > 1.0  # a penalty on the own units (std 0.01) would crush the scaled coefficient to ~0
+
+
+def test_every_request_and_response_field_is_in_the_http_reference():
+    """Every field of the request and response models (``service/http/schemas.py``) and of the model card
+    (``service/http/handlers.py``, ``_card``, built here from a real engine that learned a few events, with
+    writes open so that ``warning`` is there too) is named in docs/http.md."""
+    import threading
+    from types import SimpleNamespace
+
+    from service.config import parse_config
+    from service.engine import Engine
+    from service.events import Event
+    from service.http import handlers, schemas
+
+    text = HTTP_DOC.read_text(encoding="utf-8")
+    missing = []
+    for model in (schemas.ScoreRequest, schemas.ScoreResponse, schemas.IngestResponse, schemas.LabelIn,
+                  schemas.RollbackRequest, schemas.Version, schemas.Rejection, schemas.ErrorDetail):
+        missing += [f"{model.__name__}.{k}" for k in model.model_fields if f"`{k}`" not in text]
+    config = parse_config('name = "vans"\n[features]\nnumeric = ["ambient_c"]\ncategorical = ["van"]\n'
+                          '[service]\nauth = "none"\n')
+    engine = Engine(config)
+    engine.apply_events([Event(f"V0{i % 3}-{i:07d}", None, {"ambient_c": 10.0 + i % 7, "van": f"V0{i % 3}"},
+                               4.0 + 0.1 * (i % 7)) for i in range(600)])
+    ing = SimpleNamespace(engine=engine, applied_seq=600, checkpoint_seq=0, lock=threading.Lock())
+    card = handlers._card(SimpleNamespace(config=config, token=None), ing)
+    fields = set(card) | {f"{k}" for part in ("counters", "journal", "norms") for k in card[part]}
+    fields |= set(card["coefficients"]["averaged"])
+    missing += [f"model card field {k}" for k in sorted(fields) if f"`{k}`" not in text]
+    assert not missing, "fields missing from docs/http.md (name each in backticks with its meaning):\n" + \
+        "\n".join("  " + m for m in missing)
