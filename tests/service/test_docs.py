@@ -191,6 +191,35 @@ def test_every_document_a_text_points_to_exists():
     assert not broken, "references to files that do not exist:\n" + "\n".join(broken)
 
 
+_DOTTED = re.compile(r"`((features|model|constraint|steps|averaging|monitor|service|feed)\.([a-z_]+))`")
+
+
+def test_every_config_key_a_document_names_exists():
+    """A backticked ``section.key`` in README.md, DEVELOPERS.md, replay_data/README.md, benchmarks/README.md or
+    docs/*.md is a key of the config models, unless it is a file (``model.json``), a module
+    (``service.config``) or the path of a demo feed's feature in a rejection (``features.ambient_c``)."""
+    import importlib.util
+
+    from service.replay.scenario import CATEGORICAL, NUMERIC
+
+    keys = config_keys()
+    examples = {f"features.{n}" for n in (*NUMERIC, *CATEGORICAL, "probe_volts")}
+    stale, seen = [], 0
+    for doc in _documents():
+        for token, _, key in _DOTTED.findall(doc.read_text(encoding="utf-8")):
+            seen += 1
+            if token in keys or token in examples or key in ("json", "py", "md", "toml", "html"):
+                continue
+            try:
+                if importlib.util.find_spec(token) is not None:
+                    continue
+            except ModuleNotFoundError:  # its parent (``monitor``, ``steps``, ...) is no package
+                pass
+            stale.append(f"{doc.relative_to(ROOT)}: {token}")
+    assert seen > 50, f"only {seen} dotted keys found: the pattern no longer matches the documents"
+    assert not stale, "documents name config keys that do not exist:\n" + "\n".join(sorted(set(stale)))
+
+
 # ------------------------------------------------------------------------------------------------ replay
 def test_every_replay_output_is_in_the_replay_outputs_reference(tmp_path):
     """A real ``trimtab demo --events 1000`` (two replay runs and the report): every file it writes, every
