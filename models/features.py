@@ -7,7 +7,7 @@ values (the hashing trick with a sign bit: Weinberger, Dasgupta, Langford, Smola
 ``"<name>\\x1f<value>"``: stable across processes, platforms and Python versions (Python's own
 ``hash()`` is salted per process).
 
-Rules, also in the README:
+Rules, also in docs/events.md and docs/config.md:
 
 * a numeric feature that is absent or ``None`` is *missing*: it contributes nothing, which with
   warm-up scaling means it is imputed at its warm-up mean;

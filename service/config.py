@@ -1,5 +1,7 @@
 """The TOML config file, validated by pydantic; unknown keys are an error that names the key.
 
+Every key is described in docs/config.md (``tests/service/test_docs.py`` fails on a key without its row).
+
 ``load_config(path)`` reads a file, ``parse_config(text)`` a string; both raise
 :class:`ConfigError` whose ``where`` is the dotted key (``steps.rule``) and whose message names the
 valid values. ``Config.model_spec()`` turns the learning sections into a :class:`models.ModelSpec`.

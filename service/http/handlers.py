@@ -1,4 +1,4 @@
-"""The route handlers of the HTTP API (README "HTTP API") (the app factory is in :mod:`service.http.app`).
+"""The route handlers of the HTTP API (docs/http.md) (the app factory is in :mod:`service.http.app`).
 
 Every route that changes state (``/v1/events``, ``/v1/labels``, ``/v1/score`` with ``"remember":
 true``, ``/v1/model/rollback``, ``POST /v1/checkpoints``) needs ``Authorization: Bearer <token>``;
