@@ -26,7 +26,6 @@ import orjson
 from aiohttp import web
 
 from service.http import handlers as h
-from service.http import page
 from service.http.modelmetrics import ModelHealthCollector
 from service.http.pulse import PULSE, Pulse, pulse_context
 from service.http.bodies import BodyReader
@@ -160,9 +159,8 @@ _ROUTES = (
     ("GET", "/v1/checkpoints", "get_checkpoints"), ("POST", "/v1/checkpoints", "post_checkpoint"),
     ("GET", "/v1/incidents", "incidents"), ("GET", "/v1/openapi.json", "openapi"), ("GET", "/metrics", "metrics"),
     ("GET", "/healthz", "healthz"), ("GET", "/readyz", "readyz"), ("GET", "/v1/health", "health"),
+    ("GET", "/", "page"), ("GET", "/page/{name}", "page_asset"),
 )
-#: the live page (:mod:`service.http.page`): no token, no data of its own
-_PAGE_ROUTES = (("/", page.page), ("/page/{name}", page.page_asset))
 
 
 def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
@@ -184,8 +182,6 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     for method, path, handler in _ROUTES:  # add_get answers HEAD too, as a GET route should
         add = app.router.add_get if method == "GET" else app.router.add_post
         add(path, getattr(h, handler), expect_handler=expect)
-    for path, handler in _PAGE_ROUTES:
-        app.router.add_get(path, handler)
     app[PULSE] = Pulse()
     svc.metrics.registry.register(ModelHealthCollector(svc, app[PULSE]))
     app.cleanup_ctx.append(_lifecycle)

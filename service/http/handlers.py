@@ -34,12 +34,14 @@ from service.ingest import Ingestor, encode_event
 from service.storage.labels import LabelStore
 from service.http.health import model_health
 from service.http.metrics import CONTENT_TYPE, Metrics
+from service.http.page import page, page_asset
 from service.http.pulse import PULSE
 from service.http.schemas import EventIn, EventsBody, LabelIn, LabelsBody, RollbackRequest, ScoreRequest, envelope, parse_json
 
 __all__ = [
     "OPEN_WRITES", "SERVICE", "Service", "get_checkpoints", "health", "healthz", "incidents", "merge_incidents",
-    "metrics", "model_card", "openapi", "post_checkpoint", "post_events", "post_labels", "readyz", "rollback", "score",
+    "metrics", "model_card", "openapi", "page", "page_asset", "post_checkpoint", "post_events", "post_labels",
+    "readyz", "rollback", "score",
 ]
 
 _INLINE_BYTES = 16 * 1024  # bodies parsed on the loop itself (~100 events, < 1 ms); larger ones on a thread
