@@ -7,8 +7,9 @@ with the system browser (it never downloads one). The checks read the DOM: every
 data, the incident list names the scenario's rollback, the serving iterate is named and agrees with
 ``GET /v1/model``; the browser's request log shows no host but the service; after the service is
 stopped and started again the page recovers without a reload. Page weight and render time are
-printed. Screenshots at 1280x800 and at phone width go to the test's tmp dir (and, when
-``TRIMTAB_PAGE_SHOTS`` names a folder, there too: that is how ``docs/page-*.png`` were made).
+printed. Screenshots at 1280x800 and at phone width, live and while the service is away, go to the
+test's tmp dir; when ``TRIMTAB_PAGE_SHOTS`` names a folder the live pair goes there too (that is how
+``docs/page-1280.png`` and ``docs/page-phone.png`` were made).
 
 Chromium is installed by ``.ci/run`` (``apt-get install -y chromium``). Where it (or Playwright) is
 missing the tests skip with that reason locally and fail under ``CI=true``.
@@ -154,7 +155,7 @@ def _shots(page, tmp: Path, tag: str) -> list[Path]:
         page.screenshot(path=str(path), full_page=True)
         out.append(path)
         extra = os.environ.get("TRIMTAB_PAGE_SHOTS")
-        if extra:
+        if extra and not tag:  # the README's pair: the live page, not the "service away" one
             shutil.copy(path, Path(extra) / path.name)
     page.set_viewport_size(DESKTOP)
     page.wait_for_timeout(400)
