@@ -68,7 +68,7 @@ def certificate_words(cert: dict, *, binding: bool = False) -> str:
         return f"No guarantee applies now: {why}."
     scope = cert.get("scope") or "the whole feed"
     words = (f"If the events of {scope} come from one unchanging distribution, the averaged model's expected "
-             f"loss is within {cert['bound']:.3g} of the best model inside the constraint set, after "
+             f"loss is within {cert['bound']:.3g} (loss units) of the best model inside the constraint set, after "
              f"{cert['T']:,} updates (step rule {cert['rule']}).")
     if cert.get("G_estimated"):
         words += " The gradient bound G is estimated from the feed, so the figure is indicative, not proven."
