@@ -227,6 +227,13 @@ class FeedConfig(_Section):
     #: stream that receives rejected entries with the reason (default: "<stream>.rejected")
     dead_letter: str | None = None
     dead_letter_maxlen: int = Field(100_000, ge=1)
+    #: at start, entries another consumer of the group has held unacknowledged this long are taken
+    #: over (the consumer is presumed dead; its entries would otherwise stay pending for ever)
+    claim_idle_ms: int = Field(60_000, ge=0)
+    #: an entry delivered more often than this without being learned goes to the dead-letter stream
+    max_deliveries: int = Field(10, ge=1)
+    #: after a lost connection the wait before the next attempt doubles from 0.1 s up to this
+    reconnect_max_s: float = Field(5.0, gt=0, le=300)
 
     @field_validator("source")
     @classmethod
