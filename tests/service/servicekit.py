@@ -58,6 +58,8 @@ def toml_text(config) -> str:
             continue
         out.append(f"[{section}]")
         for k, v in values.items():
+            if v is None:  # TOML has no null: an unset key takes its default
+                continue
             out.append(f"{k} = {orjson.dumps(v).decode()}")
     return "\n".join(out) + "\n"
 
