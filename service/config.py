@@ -243,6 +243,24 @@ class FeedConfig(_Section):
         return v
 
 
+class PublishConfig(_Section):
+    """Publication of the serving model to Redis, for scorers on other machines (``--role scorer``)."""
+
+    #: the Redis server the learner publishes to and remote scorers read from
+    source: str = "redis://127.0.0.1:6379/0"
+    #: the hash that holds the newest model (default: "trimtab.<name>.model")
+    key: str | None = None
+    #: a remote scorer's /readyz answers 503 once its model has not been published or confirmed by
+    #: the learner for this long (a learner with nothing new confirms about every second)
+    max_model_age_s: float = Field(30.0, gt=0, le=86_400)
+    #: a remote scorer checks the hash at least this often (a publication notice wakes it sooner)
+    poll_ms: int = Field(100, ge=1, le=60_000)
+    #: after a lost connection the wait before the next attempt doubles from 0.1 s up to this
+    reconnect_max_s: float = Field(5.0, gt=0, le=300)
+
+    _redis_url = field_validator("source")(FeedConfig._redis_url.__func__)
+
+
 class Config(_Section):
     name: str = Field("model", pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
     features: FeaturesConfig = FeaturesConfig()
@@ -253,6 +271,7 @@ class Config(_Section):
     monitor: MonitorConfig = MonitorConfig()
     service: ServiceConfig = ServiceConfig()
     feed: FeedConfig | None = None
+    publish: PublishConfig | None = None
 
     @model_validator(mode="after")
     def _learnable(self):
@@ -271,6 +290,10 @@ class Config(_Section):
             radius=c.radius, lower=c.lower, upper=c.upper, rule=s.rule, base=s.base, horizon=s.horizon,
             grad_bound=None if s.grad_bound == "auto" else float(s.grad_bound), averaging=a.scheme,
             halflife=a.halflife, kernel=m.kernel)
+
+    def publish_key(self) -> str:
+        """The Redis hash of ``[publish]`` (its ``key``, or one named after the config)."""
+        return (self.publish.key if self.publish is not None and self.publish.key else f"trimtab.{self.name}.model")
 
     def resolved(self) -> dict:
         """Every setting with defaults filled in, as plain data."""
