@@ -211,6 +211,12 @@ class ServiceConfig(_Section):
     #: delete journal rows covered by the oldest kept checkpoint; false keeps the whole history
     #: (an audit trail, or a re-replay under another config)
     prune_journal: bool = True
+    #: scorer processes that answer /v1/score beside the learner behind the one address ("auto": one
+    #: per CPU core but one, at least 1); 0 runs everything in one process (docs/architecture.md)
+    scorers: int | Literal["auto"] = "auto"
+    #: the learner publishes its serving model for the scorers after every applied slice, but at most
+    #: once per this many milliseconds (0: after every slice); a held-back state follows within it
+    publish_every_ms: float = Field(0.0, ge=0.0, le=60_000.0)
 
 
 class FeedConfig(_Section):
