@@ -41,6 +41,7 @@ from service.storage.journal import Journal, fingerprint
 from service.storage.labels import LabelStore
 from service.http.metrics import Metrics
 from service.http.schemas import openapi_document
+from service.publish.fanout import publisher_for
 from service.publish.shared import SharedPublisher, capacity_for
 
 __all__ = ["SERVICE", "Service", "create_app", "error_middleware", "resolve_token", "serve_main", "version_text"]
@@ -244,7 +245,7 @@ async def _serve(config: Config, token: str | None) -> None:
     loop.set_default_executor(ThreadPoolExecutor(thread_name_prefix="trimtab-parse", initializer=background_thread))
     scorers = auto_scorers() if cfg.scorers == "auto" else cfg.scorers
     publisher = SharedPublisher(capacity_for(config)) if scorers > 0 else None
-    app = create_app(config, token=token, publisher=publisher)
+    app = create_app(config, token=token, publisher=publisher_for(publisher, config))  # + Redis with [publish]
     svc = app[SERVICE]
     runner = GuardedRunner(app, cfg, access_log=None, handle_signals=False)
     await runner.setup()
@@ -290,13 +291,13 @@ async def _serve(config: Config, token: str | None) -> None:
         listener.close()
     log.info("stopping: draining the queue and writing a final checkpoint")
     await runner.cleanup()
-    if publisher is not None:
-        publisher.close()
+    if svc.publisher is not None:
+        svc.publisher.close()
     log.info("stopped")
 
 
 def serve_main(args) -> int:
-    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D]``."""
+    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D] [--role learner|scorer]``."""
     config = load_config(args.config)
     upd = {k: v for k, v in (("host", args.host), ("port", args.port), ("data_dir", args.data_dir)) if v is not None}
     if upd:
@@ -306,6 +307,10 @@ def serve_main(args) -> int:
     if not _loopback(config.service.host) and token is None:
         log.warning("binding %s (not loopback) with service.auth = \"none\": anyone who can reach it can write",
                     config.service.host)
+    if getattr(args, "role", "learner") == "scorer":  # another machine: the model published to Redis
+        from service.http.remote_scorer import remote_scorer_main
+
+        return remote_scorer_main(config, token)
     if hasattr(signal, "SIGXFSZ"):  # a file-size limit is then a write error (503 with the reason), not a kill
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     # the journal thread runs some Python (row binding); a short switch interval keeps it from holding

@@ -252,8 +252,8 @@ def create_remote_scorer_app(config, token: str | None, follower: ModelFollower)
                   metrics=None, bodies=BodyReader(config.service))
     svc.metrics = RemoteMetrics(follower)
     follower.on_swap = lambda snap: svc.metrics.publish_to_serve.observe(max(0.0, time.time() - snap.published_at))
-    svc.openapi = orjson.dumps(openapi_document(config, learner_app._version()))
-    app = web.Application(middlewares=[learner_app._errors], client_max_size=config.service.max_body_bytes,
+    svc.openapi = orjson.dumps(openapi_document(config, learner_app.version_text()))
+    app = web.Application(middlewares=[learner_app.error_middleware], client_max_size=config.service.max_body_bytes,
                           handler_args=handler_options(config.service))
     app[SERVICE] = svc
     app[FOLLOWER] = follower

@@ -127,6 +127,8 @@ class RedisPublisher:
                 if self._closed:
                     return
                 snap = self._mailbox
+                if snap is None and self.sends == 0:
+                    continue  # nothing of this run published yet: the model there is not vouched for
             try:
                 if snap is None:
                     self._client.hset(self.key, "beat", int(time.time() * 1e6))
