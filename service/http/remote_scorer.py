@@ -135,6 +135,8 @@ class ModelFollower:
             # take it if it is newer by the learner's clock (never an older model)
             if snap is not None and (held is None or snap.version > held.version
                                      or snap.published_at > held.published_at):
+                if held is None:  # load the compiled scorer now, not in the first request (about 1 s)
+                    snap.score([{}])
                 self.snapshot = snap
                 if self.on_swap is not None:
                     self.on_swap(snap)
