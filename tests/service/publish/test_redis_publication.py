@@ -226,3 +226,32 @@ def test_remote_scorers_follow_the_learner_and_outlive_it(tmp_path, redis_server
     for s in scorers:
         assert s.stop() == 0
     assert learner.stop() == 0
+
+
+def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
+    """``redis-server`` SIGKILLed under a learner and a remote scorer: the scorer keeps answering from
+    its last version and shows the lost connection; after the restart (append-only file) both
+    reconnect on their own and the learner's next version reaches the scorer."""
+    _, conf = _configs(tmp_path, redis_server.url)
+    learner = start_serve(conf)
+    lc = Client(learner.url)
+    lc.events(demo_events(300, tag="a"))
+    scorer = _scorer(conf)
+    scorer.wait_ready()
+    first = lc.card()["state_digest"]
+    _until(lambda: _serving(scorer.url).get("state_digest") == first, 30, "the first version")
+
+    redis_server.kill()
+    _until(lambda: _metric(scorer.url, "trimtab_remote_redis_connected") == 0.0, 30, "the scorer to see the loss")
+    status, got = _post(scorer.url, "/v1/score", {"features": PROBES[0]})
+    assert status == 200 and got["version"]["digest"] == first
+    lc.events(demo_events(50, tag="b"))  # learned while Redis is away: publication waits for it
+
+    redis_server.start()
+    second = lc.card()["state_digest"]
+    assert second != first
+    _until(lambda: _serving(scorer.url).get("state_digest") == second, 60, "the version made while Redis was away")
+    assert _metric(scorer.url, "trimtab_remote_redis_connected") == 1.0
+    assert _metric(scorer.url, "trimtab_remote_reconnects") >= 1
+    assert scorer.stop() == 0
+    assert learner.stop() == 0
