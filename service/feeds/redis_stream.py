@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import asyncio
 import logging
+from collections import deque
 from contextlib import suppress
 
 from models import InvalidInput
@@ -131,8 +132,10 @@ class StreamFeed:
     async def _consume(self, client) -> None:
         cfg = self.cfg
         cursor = "0"  # own pending entries first
+        inflight: deque = deque()  # submitted batches, oldest first: acknowledged in that order
         while True:
-            block = None if cursor != ">" else cfg.block_ms
+            # with a batch in flight, do not block: finish it first when nothing new is there
+            block = cfg.block_ms if cursor == ">" and not inflight else None
             resp = await client.xreadgroup(cfg.group, cfg.consumer, {cfg.stream: cursor}, count=cfg.batch,
                                            block=block)
             self._backoff.reset()
@@ -143,9 +146,12 @@ class StreamFeed:
                     cursor = ">"
                     continue
                 cursor = entries[-1][0].decode()
-                await self._handle(client, entries, await self._deliveries(client, entries))
+                inflight.append(await self._submit(entries, await self._deliveries(client, entries)))
             elif entries:
-                await self._handle(client, entries, {})
+                inflight.append(await self._submit(entries, {}))
+            # one batch learned while the next is read and validated; none left waiting when idle
+            while len(inflight) > (1 if entries else 0):
+                await self._complete(client, inflight.popleft())
 
     async def _deliveries(self, client, entries) -> dict:
         """How often each re-read pending entry has been delivered (this delivery included)."""
@@ -154,7 +160,8 @@ class StreamFeed:
                                            count=len(entries), consumername=cfg.consumer)
         return {row["message_id"]: row["times_delivered"] for row in rows}
 
-    async def _handle(self, client, entries, deliveries: dict) -> None:
+    def _parse(self, entries, deliveries: dict) -> tuple:
+        """Validate a batch (on a worker thread): events with payloads, refusals, over-delivered ones."""
         cfg = self.cfg
         key = cfg.field.encode()
         events, payloads, bad, worn = [], [], [], []
@@ -178,12 +185,20 @@ class StreamFeed:
                 continue
             events.append(e)
             payloads.append(encode_event(e))
+        return events, payloads, bad, worn
+
+    async def _submit(self, entries, deliveries: dict) -> tuple:
+        """Queue a batch's valid events for the journal and the model; ``(item or None, entries, refusals,
+        events)`` for :meth:`_complete`."""
+        cfg = self.cfg
+        events, payloads, bad, worn = await asyncio.to_thread(self._parse, entries, deliveries)
         for eid, where, times, raw, e in worn:
             if e.id is not None and await asyncio.to_thread(self.ingestor.journaled, e.id):
                 continue  # learned before a crash took the acknowledgement: nothing to keep
             bad.append((eid, where, f"delivered {times} times and never learned (over feed.max_deliveries = "
                                     f"{cfg.max_deliveries}): the learner may stop on this entry", raw))
         note = (len(bad), len(entries), None) if bad else None
+        item = None
         if events or note:
             while True:
                 try:
@@ -193,9 +208,16 @@ class StreamFeed:
                     await asyncio.sleep(min(float(exc.retry_after), 5.0))
                 except NotReady:
                     await asyncio.sleep(0.2)
-            await item.future  # journaled and applied; an exception leaves the entries pending
+        return item, entries, bad, len(events)
+
+    async def _complete(self, client, submitted: tuple) -> None:
+        """Wait until a submitted batch is journaled and applied, then acknowledge it (an exception
+        leaves its entries pending: they are re-read after the reconnection)."""
+        item, entries, bad, n = submitted
+        if item is not None:
+            await item.future
         await self._settle(client, [eid for eid, _ in entries], bad)
-        self.consumed += len(events)
+        self.consumed += n
 
     async def _settle(self, client, acked: list, bad: list) -> None:
         """Copy ``bad`` entries (id, where, reason, event bytes) to the dead-letter stream and
