@@ -74,10 +74,13 @@ def _offline_digest(tmp_path, cfg, client) -> tuple[str, int]:
 
 class Producer(threading.Thread):
     """Adds ``events`` to the stream in pipelined batches, a little at a time, retrying a batch whose
-    answer was lost (the retry may add entries twice: the learner must drop the repeated ids)."""
+    answer was lost (the retry may add entries twice: the learner must drop the repeated ids). The
+    second half waits for :attr:`gate`, so the fault always falls in the middle of the stream."""
 
     def __init__(self, url: str, events: list[dict], batch: int = 25, pause_s: float = 0.02) -> None:
         super().__init__(daemon=True)
+        #: the first half is sent at once; the second waits for this (set when the fault is made)
+        self.gate = threading.Event()
         self.client = redis.Redis.from_url(url, socket_timeout=5)
         self.events, self.batch, self.pause_s = events, batch, pause_s
         self.retries = self.sent = 0
@@ -86,6 +89,8 @@ class Producer(threading.Thread):
     def run(self) -> None:
         try:
             for k in range(0, len(self.events), self.batch):
+                if k >= len(self.events) // 2:
+                    self.gate.wait(120)
                 deadline = time.monotonic() + 60
                 while True:
                     try:
@@ -141,6 +146,7 @@ def test_redis_restart_mid_stream_loses_nothing(tmp_path, aof_redis):
     producer = Producer(aof_redis.url, demo_events(3000, tag="r"))
     producer.start()
     _until(lambda: _learned(server) >= 800, what="800 events learned before the restart")
+    producer.gate.set()
     aof_redis.kill()
     assert producer.sent < len(producer.events), "the stream ended before the restart"
     time.sleep(0.5)
@@ -162,6 +168,7 @@ def test_learner_sigkill_mid_stream_learns_each_entry_once(tmp_path, aof_redis):
     producer = Producer(aof_redis.url, demo_events(3000, tag="k"))
     producer.start()
     _until(lambda: _learned(server) >= 800, what="800 events learned before the kill")
+    producer.gate.set()
     server.kill()
     assert producer.sent < len(producer.events), "the stream ended before the kill"
     server = start_serve(path)

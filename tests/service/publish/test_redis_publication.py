@@ -134,10 +134,10 @@ def _metric(url: str, name: str) -> float:
     raise AssertionError(f"{name} not in the exposition")
 
 
-def _configs(tmp_path, url: str):
+def _configs(tmp_path, url: str, scorers: int = 0):
     publish = {"source": url, "key": "coldchain.model", "max_model_age_s": 2.0, "poll_ms": 50,
                "reconnect_max_s": 0.5}
-    cfg = make_config(tmp_path / "data", scorers=0)
+    cfg = make_config(tmp_path / "data", scorers=scorers)
     cfg = cfg.model_copy(update={"publish": PublishConfig(**publish)})
     learner = tmp_path / "learner.toml"
     learner.write_text(toml_text(cfg))
@@ -229,10 +229,11 @@ def test_remote_scorers_follow_the_learner_and_outlive_it(tmp_path, redis_server
 
 
 def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
-    """``redis-server`` SIGKILLed under a learner and a remote scorer: the scorer keeps answering from
-    its last version and shows the lost connection; after the restart (append-only file) both
-    reconnect on their own and the learner's next version reaches the scorer."""
-    _, conf = _configs(tmp_path, redis_server.url)
+    """``redis-server`` SIGKILLed under a learner (with one local scorer process: it publishes to both
+    channels) and a remote scorer: the remote scorer keeps answering from its last version and shows
+    the lost connection; after the restart (append-only file) both reconnect on their own and the
+    learner's next version reaches the remote scorer."""
+    _, conf = _configs(tmp_path, redis_server.url, scorers=1)
     learner = start_serve(conf)
     lc = Client(learner.url)
     lc.events(demo_events(300, tag="a"))
