@@ -164,7 +164,7 @@ async def serving_model(request: web.Request) -> web.Response:
     snap = st.current()
     if snap is None:
         raise NotReady("not ready: no model published yet", where="startup")
-    return h._json(dict(snap.describe(), scorer=st.index))
+    return h._json(dict(snap.describe(), scorer=st.index, pid=os.getpid()))
 
 
 async def readyz(request: web.Request) -> web.Response:
