@@ -36,11 +36,11 @@ import time
 
 import orjson
 from aiohttp import ClientSession, ClientTimeout, UnixConnector, web
-from aiohttp.client_exceptions import ClientError
+from aiohttp.client_exceptions import ClientConnectorError, ClientError
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 
 from service.config import config_from_dict
-from service.errors import NotReady, ServiceError
+from service.errors import NotReady, ServiceError, error_body
 from service.events import EventValidator
 from service.http import handlers as h
 from service.http.bodies import BodyReader
@@ -169,12 +169,12 @@ async def serving_model(request: web.Request) -> web.Response:
 
 async def readyz(request: web.Request) -> web.Response:
     st = request.app[SCORER]
+    status, body, headers = await _ask_learner(request, "GET", "/readyz", b"", {})
+    if status != 200:  # the learner's reason (recovering, recovery refused, storage fault)
+        return web.Response(status=status, body=body, headers=headers)
     snap = st.current()
     if snap is None:
-        raise NotReady("not ready: no model published yet (the learner is recovering)", where="startup")
-    status, body, headers = await _ask_learner(request, "GET", "/readyz", b"", {})
-    if status != 200:
-        return web.Response(status=status, body=body, headers=headers)
+        raise NotReady("not ready: the learner is ready but no model reached this scorer yet", where="startup")
     out = orjson.loads(body)
     out["scorer"] = {"index": st.index, "version": snap.version, "age_s": st.age()}
     return h._json(out)
@@ -207,6 +207,12 @@ def _passed(headers) -> dict:
 
 
 async def _ask_learner(request: web.Request, method: str, path: str, body: bytes, headers: dict):
+    """The learner's answer ``(status, body, headers)`` to a request passed on as bytes.
+
+    A learner that cannot be reached is a 503 (nothing was sent: retrying is safe). A learner that
+    goes away after the request was sent leaves its outcome unknown, as it would be to a client
+    connected to the learner itself: the client's connection is cut without an answer (a retry
+    with the same ids is safe, duplicates are recognised)."""
     st = request.app[SCORER]
     try:
         async with st.session.request(method, "http://learner" + path, data=body or None, headers=headers,
@@ -214,9 +220,13 @@ async def _ask_learner(request: web.Request, method: str, path: str, body: bytes
             data = await r.read()
             out = {k: v for k, v in r.headers.items() if k.lower() not in _HOP}
             return r.status, data, out
-    except (ClientError, OSError) as exc:
+    except ClientConnectorError as exc:
         raise LearnerUnreachable(f"the learner process does not answer ({exc.__class__.__name__}); retry shortly",
                                  where="learner") from None
+    except (ClientError, OSError):
+        if request.transport is not None:
+            request.transport.abort()  # the answer below goes nowhere: the client sees its connection cut
+        return 503, orjson.dumps(error_body("learner_gone", "the learner went away while answering", "learner")), {}
 
 
 # -------------------------------------------------------------------- app and process
