@@ -310,6 +310,19 @@ class PeakRSS(threading.Thread):
                 pass
             time.sleep(0.02)
 
+    def cpu(self) -> dict[str, float]:
+        """CPU seconds (user + system) each process has used so far."""
+        import psutil
+
+        out = {}
+        for name, p in [("learner", self.proc)] + [(f"scorer pid {c.pid}", c) for c in self.proc.children()]:
+            try:
+                t = p.cpu_times()
+                out[name] = t.user + t.system
+            except psutil.Error:
+                continue
+        return out
+
     def report(self) -> dict:
         self.halt.set()
         self.join(5)
@@ -362,8 +375,11 @@ def scorer_comparison(secs: float) -> dict:
                 bg = subprocess.Popen([sys.executable, __file__, "--load", "ingest", url, str(secs + 6), "4",
                                        f"g{mode}", str(n_bodies), "0", "500"], stdout=subprocess.PIPE, cwd=ROOT)
                 time.sleep(4.0)  # the producer builds its bodies first (about 2 s here), then ingests
+                cpu0 = rss.cpu()
                 busy = run_load("rate", url, str(secs), "1000")
+                cpu1 = rss.cpu()
                 ing = json.loads(bg.communicate()[0].decode().strip().splitlines()[-1])
+                spent = {k: round(cpu1[k] - cpu0[k], 2) for k in cpu1 if k in cpu0}
                 pts = publish_to_serve(url) if scorers != 0 else None
             finally:
                 svc.terminate()
@@ -375,7 +391,8 @@ def scorer_comparison(secs: float) -> dict:
             "score_errors": idle["errors"] + busy["errors"], "ingest_events_per_s": round(ing["events_per_s"]),
             "score_client": {k: busy[k] for k in busy if k.startswith("client_") or k == "most_in_flight"},
             "ingest_client": {k: ing[k] for k in ing if k.startswith("client_")},
-            "peak_rss_mb": peaks}
+            "peak_rss_mb": peaks, "server_cpu_s_during_scores_under_ingest": spent,
+            "score_seconds": secs}
         if pts is not None:
             r["publish_to_serve_ms_p99"] = round(pts["p99_ms"], 2)
             r["publish_to_serve_ms_p50"] = round(pts["p50_ms"], 2)
@@ -383,7 +400,8 @@ def scorer_comparison(secs: float) -> dict:
               f"(p50 {busy['p50_ms']:.2f}, max {busy['max_ms']:.1f}); ingest {ing['events_per_s']:.0f} events/s "
               f"in 500-event bodies; score client CPU {busy['client_cpu_share']:.2f} of a core, GC pauses "
               f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms); ingest client CPU "
-              f"{ing['client_cpu_share']:.2f}; peak RSS MB {peaks}"
+              f"{ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under ingest {spent}; "
+              f"peak RSS MB {peaks}"
               + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else ""), file=sys.stderr)
     s, m = res["single"], res["scorers"]
     res["ratios"] = {"score_p99_under_ingest_scorers_vs_single": round(m["score_p99_ms_under_ingest"]

@@ -148,6 +148,7 @@ async def score(request: web.Request) -> web.Response:
         raise NotReady("not ready: no model published yet (the learner is recovering)", where="startup")
     h._content_type(request, ("application/json",))
     body = await svc.bodies.read(request)
+    snap = st.current()  # the newest once the body is in
     view = (snap.model, snap.serving, snap.seq, snap.updates)
     req, _events, _where, preds, used, _ = await h._off_loop(body, h._score_body, body, svc.validator, view,
                                                              svc.config.service.max_batch)
