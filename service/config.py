@@ -213,10 +213,18 @@ class ServiceConfig(_Section):
     prune_journal: bool = True
     #: scorer processes that answer /v1/score beside the learner behind the one address ("auto": one
     #: per CPU core but one, at least 1); 0 runs everything in one process (docs/architecture.md)
-    scorers: int | Literal["auto"] = "auto"
+    scorers: int | str = "auto"
     #: the learner publishes its serving model for the scorers after every applied slice, but at most
     #: once per this many milliseconds (0: after every slice); a held-back state follows within it
     publish_every_ms: float = Field(0.0, ge=0.0, le=60_000.0)
+
+
+    @field_validator("scorers", mode="before")
+    @classmethod
+    def _scorers(cls, v):
+        if v == "auto" or (isinstance(v, int) and not isinstance(v, bool) and 0 <= v <= 256):
+            return v
+        raise ValueError(f'expected "auto" or a whole number of processes from 0 to 256, got {v!r}')
 
 
 class FeedConfig(_Section):

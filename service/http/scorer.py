@@ -36,11 +36,11 @@ import time
 
 import orjson
 from aiohttp import ClientSession, ClientTimeout, UnixConnector, web
-from aiohttp.client_exceptions import ClientError
+from aiohttp.client_exceptions import ClientConnectorError, ClientError, ServerDisconnectedError
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 
 from service.config import config_from_dict
-from service.errors import NotReady, ServiceError
+from service.errors import NotReady, ServiceError, error_body
 from service.events import EventValidator
 from service.http import handlers as h
 from service.http.bodies import BodyReader
@@ -105,9 +105,10 @@ class ScorerMetrics:
 class ScorerState:
     """The newest published model this scorer has, and its way to the learner."""
 
-    def __init__(self, reader: SharedReader, learner: str, index: int) -> None:
+    def __init__(self, reader: SharedReader, learner: str, index: int, parent: int) -> None:
         self.reader = reader
         self.learner = learner
+        self.parent = parent
         self.index = index
         self.snapshot: ServingSnapshot | None = None
         self.version = 0
@@ -147,6 +148,7 @@ async def score(request: web.Request) -> web.Response:
         raise NotReady("not ready: no model published yet (the learner is recovering)", where="startup")
     h._content_type(request, ("application/json",))
     body = await svc.bodies.read(request)
+    snap = st.current()  # the newest once the body is in
     view = (snap.model, snap.serving, snap.seq, snap.updates)
     req, _events, _where, preds, used, _ = await h._off_loop(body, h._score_body, body, svc.validator, view,
                                                              svc.config.service.max_batch)
@@ -164,17 +166,17 @@ async def serving_model(request: web.Request) -> web.Response:
     snap = st.current()
     if snap is None:
         raise NotReady("not ready: no model published yet", where="startup")
-    return h._json(dict(snap.describe(), scorer=st.index))
+    return h._json(dict(snap.describe(), scorer=st.index, pid=os.getpid()))
 
 
 async def readyz(request: web.Request) -> web.Response:
     st = request.app[SCORER]
+    status, body, headers = await _ask_learner(request, "GET", "/readyz", b"", {})
+    if status != 200:  # the learner's reason (recovering, recovery refused, storage fault)
+        return web.Response(status=status, body=body, headers=headers)
     snap = st.current()
     if snap is None:
-        raise NotReady("not ready: no model published yet (the learner is recovering)", where="startup")
-    status, body, headers = await _ask_learner(request, "GET", "/readyz", b"", {})
-    if status != 200:
-        return web.Response(status=status, body=body, headers=headers)
+        raise NotReady("not ready: the learner is ready but no model reached this scorer yet", where="startup")
     out = orjson.loads(body)
     out["scorer"] = {"index": st.index, "version": snap.version, "age_s": st.age()}
     return h._json(out)
@@ -207,16 +209,34 @@ def _passed(headers) -> dict:
 
 
 async def _ask_learner(request: web.Request, method: str, path: str, body: bytes, headers: dict):
+    """The learner's answer ``(status, body, headers)`` to a request passed on as bytes.
+
+    A learner that cannot be reached is a 503 (nothing was sent: retrying is safe). A learner that
+    goes away after the request was sent leaves its outcome unknown, as it would be to a client
+    connected to the learner itself: the client's connection is cut without an answer (a retry
+    with the same ids is safe, duplicates are recognised)."""
     st = request.app[SCORER]
-    try:
-        async with st.session.request(method, "http://learner" + path, data=body or None, headers=headers,
-                                      allow_redirects=False, auto_decompress=False) as r:
-            data = await r.read()
-            out = {k: v for k, v in r.headers.items() if k.lower() not in _HOP}
-            return r.status, data, out
-    except (ClientError, OSError) as exc:
-        raise LearnerUnreachable(f"the learner process does not answer ({exc.__class__.__name__}); retry shortly",
-                                 where="learner") from None
+    for attempt in (1, 2):
+        try:
+            async with st.session.request(method, "http://learner" + path, data=body or None, headers=headers,
+                                          allow_redirects=False, auto_decompress=False) as r:
+                data = await r.read()
+                out = {k: v for k, v in r.headers.items() if k.lower() not in _HOP}
+                return r.status, data, out
+        except ClientConnectorError as exc:
+            raise LearnerUnreachable(f"the learner process does not answer ({exc.__class__.__name__}); retry "
+                                     "shortly", where="learner") from None
+        except ServerDisconnectedError:
+            # the learner closes only connections with no request in progress: while it lives, this was a
+            # pooled connection it had just closed as idle, and the request never reached it
+            if attempt == 1 and os.getppid() == st.parent:
+                continue
+            break
+        except (ClientError, OSError):
+            break
+    if request.transport is not None:
+        request.transport.abort()  # the answer below goes nowhere: the client sees its connection cut
+    return 503, orjson.dumps(error_body("learner_gone", "the learner went away while answering", "learner")), {}
 
 
 # -------------------------------------------------------------------- app and process
@@ -242,7 +262,9 @@ def create_scorer_app(config, token: str | None, state: ScorerState) -> web.Appl
     app.router.add_route("*", "/{tail:.*}", forward, expect_handler=expect)
 
     async def lifecycle(app: web.Application):
-        state.session = ClientSession(connector=UnixConnector(path=state.learner, limit=256),
+        # pooled connections are dropped well before the learner closes them as idle (keepalive_timeout_s)
+        keep = min(5.0, config.service.keepalive_timeout_s / 2)
+        state.session = ClientSession(connector=UnixConnector(path=state.learner, limit=256, keepalive_timeout=keep),
                                       timeout=ClientTimeout(total=None, connect=5.0), auto_decompress=False)
         poll = asyncio.create_task(state.poll(), name="trimtab-scorer-poll")
         yield
@@ -266,7 +288,7 @@ async def _run(setup: ScorerSetup) -> None:
     from service.http.app import resolve_token
 
     config = config_from_dict(setup.config)
-    state = ScorerState(SharedReader(setup.model_fd), setup.learner, setup.index)
+    state = ScorerState(SharedReader(setup.model_fd), setup.learner, setup.index, setup.parent)
     app = create_scorer_app(config, resolve_token(config), state)
     runner = GuardedRunner(app, config.service, access_log=None, handle_signals=False)
     await runner.setup()

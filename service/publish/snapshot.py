@@ -147,9 +147,13 @@ class ServingSnapshot:
                        certificate=meta["certificate"], state=blob[pos + n:])
         except (orjson.JSONDecodeError, ValueError, KeyError, TypeError) as exc:
             raise SnapshotDecodeFailed(f"published model's meta is damaged: {exc}") from None
-        _, _, _, digest = unpack_checked(snap.state)
+        header, arrays, extra, digest = unpack_checked(snap.state)
         if digest != snap.digest:  # the state's own checksum passed: the meta must describe it
             raise SnapshotDecodeFailed("published model's digest does not match its state")
+        try:
+            snap.__dict__["model"] = LinearModel.from_parts(header, arrays, extra)  # the cached property's slot
+        except (TrimtabError, ValueError, KeyError) as exc:
+            raise SnapshotDecodeFailed(f"published model is damaged: {exc}") from None
         return snap
 
 
