@@ -28,7 +28,6 @@ scorer (:mod:`service.http.remote_scorer`) runs it on its own thread.
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import threading
 import time
@@ -203,7 +202,8 @@ class RedisReader:
             self.refused += 1
             log.warning("Redis %s version %s refused: %s", self.key, v, exc)
             return None
-        return dataclasses.replace(snap, version=int(v))
+        snap.version = int(v)  # in place: the decoded model stays with it
+        return snap
 
     def wait(self, timeout: float) -> bool:
         """Wait up to ``timeout`` seconds for a publication notice; ``True`` if one came.
