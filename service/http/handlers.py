@@ -421,7 +421,8 @@ async def readyz(request: web.Request) -> web.Response:
     if ing.fault is not None:
         raise JournalUnavailable(f"not ready: writes are refused: {ing.fault}", where="storage")
     return _json({"ready": True, "applied_seq": ing.applied_seq, "recovery": ing.recovery,
-                  "feed": svc.feed.status() if svc.feed is not None else None})
+                  "feed": svc.feed.status() if svc.feed is not None else None,
+                  "redis_publication": getattr(svc.publisher, "redis_status", lambda: None)()})
 
 
 async def openapi(request: web.Request) -> web.Response:

@@ -37,6 +37,13 @@ class FanOut:
         for c in self.channels:
             c.close()
 
+    def redis_status(self) -> dict | None:
+        """The Redis channel's :meth:`~service.publish.redis_channel.RedisPublisher.redis_status`, if any."""
+        for c in self.channels:
+            if hasattr(c, "redis_status"):
+                return c.redis_status()
+        return None
+
 
 def publisher_for(local, config):
     """What the learner publishes to: ``local`` (or ``None``) alone without ``[publish]``; with it, a

@@ -150,7 +150,7 @@ class RedisPublisher:
                     if not self._closed:
                         self._cond.wait(wait)
 
-    def status(self) -> dict:
+    def redis_status(self) -> dict:
         """For the learner's ``/readyz``: what was sent, and the last failure if the server is away."""
         return {"key": self.key, "version": self.sent_version, "local_version": self.sent_local,
                 "sends": self.sends, "failures": self.failures, "error": self.error}

@@ -51,6 +51,11 @@ BAD = [
     ("removed-key", "[monitor]\nconfirm_recent = 4", "monitor.confirm_recent", "unknown key"),
     ("bad-name", 'name = "my model!"', "name", "pattern"),
     ("feed-url", '[feed]\nsource = "http://127.0.0.1:6379"', "feed.source", "redis://"),
+    ("feed-claim-negative", "[feed]\nclaim_idle_ms = -1", "feed.claim_idle_ms", "greater than or equal to 0"),
+    ("feed-deliveries-zero", "[feed]\nmax_deliveries = 0", "feed.max_deliveries", "greater than or equal to 1"),
+    ("publish-url", '[publish]\nsource = "http://127.0.0.1:6379"', "publish.source", "redis://"),
+    ("publish-age-zero", "[publish]\nmax_model_age_s = 0", "publish.max_model_age_s", "greater than 0"),
+    ("publish-unknown", "[publish]\nmax_age = 3", "publish.max_age", "unknown key"),
 ]
 
 

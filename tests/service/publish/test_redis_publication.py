@@ -244,6 +244,8 @@ def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
 
     redis_server.kill()
     _until(lambda: _metric(scorer.url, "trimtab_remote_redis_connected") == 0.0, 30, "the scorer to see the loss")
+    _until(lambda: orjson.loads(_get(learner.url, "/readyz")[1])["redis_publication"]["error"], 30,
+           "the learner to report the lost server")
     status, got = _post(scorer.url, "/v1/score", {"features": PROBES[0]})
     assert status == 200 and got["version"]["digest"] == first
     lc.events(demo_events(50, tag="b"))  # learned while Redis is away: publication waits for it
@@ -256,3 +258,19 @@ def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
     assert _metric(scorer.url, "trimtab_remote_reconnects") >= 1
     assert scorer.stop() == 0
     assert learner.stop() == 0
+
+
+def test_scorer_role_without_publish_section_exits_2(tmp_path):
+    """``--role scorer`` needs ``[publish]``: without it the command exits 2 naming the section."""
+    import subprocess
+    import sys
+
+    from tests.service.servicekit import ROOT
+
+    conf = tmp_path / "plain.toml"
+    conf.write_text(toml_text(make_config(tmp_path / "data")))
+    done = subprocess.run([sys.executable, "-m", "service.cli", "serve", "-c", str(conf), "--role", "scorer"],
+                          capture_output=True, cwd=ROOT, timeout=120,
+                          env={"TRIMTAB_TEST_TOKEN": "fault-test-token", "PATH": "/usr/bin:/bin"})
+    assert done.returncode == 2
+    assert b"[publish]" in done.stderr and b"publish:" in done.stderr
