@@ -41,7 +41,7 @@ from models import InvalidInput
 from service.config import FeedConfig
 from service.errors import NotReady, Overloaded
 from service.events import EventValidator
-from service.feeds.backoff import Backoff
+from service.backoff import Backoff
 from service.ingest import Ingestor, encode_event
 
 __all__ = ["StreamFeed"]

@@ -42,7 +42,7 @@ from models import InvalidInput
 
 from service.errors import NotReady, ServiceError
 from service.events import EventValidator
-from service.feeds.backoff import Backoff
+from service.backoff import Backoff
 from service.http import handlers as h
 from service.http.bodies import BodyReader
 from service.http.handlers import SERVICE, Service

@@ -32,7 +32,7 @@ import logging
 import threading
 import time
 
-from service.feeds.backoff import Backoff
+from service.backoff import Backoff
 from service.publish.snapshot import ServingSnapshot, SnapshotDecodeFailed
 
 __all__ = ["RedisPublisher", "RedisReader", "channel_names"]

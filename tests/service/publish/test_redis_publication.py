@@ -55,8 +55,9 @@ def _bits(scores) -> list[int]:
 
 
 def test_readers_never_see_a_torn_model(tmp_path, redis_server):
-    """2,000 versions published while a reader reads continuously: every copy it reads scores exactly
-    as the learner's engine did in the state whose digest the copy names, and versions never go back."""
+    """2,000 versions handed to the Redis publisher (several hundred reach Redis: its mailbox keeps the
+    newest) while a reader reads continuously: every copy it reads scores exactly as the learner's
+    engine did in the state whose digest the copy names, and versions never go back."""
     cfg = make_config(tmp_path)
     v = EventValidator(cfg)
     engine = Engine(cfg)
