@@ -193,13 +193,17 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
     send time, so a stall (of the server or of this client) cannot hide behind a late send."""
     import aiohttp
 
+    import gc
+
     lat: list[float] = []
+    late: list[float] = []  # how late this client itself sent each request (its own lag, not the server's)
     errors = 0
     most = 0
     headers = {"Content-Type": "application/json"}
     async with aiohttp.ClientSession(connector=aiohttp.TCPConnector(limit=200)) as s:
         async def one(due: float):
             nonlocal errors
+            late.append(time.perf_counter() - due)
             async with s.post(url + "/v1/score", data=SCORE_BODY, headers=headers) as r:
                 await r.read()
                 if r.status != 200:
@@ -208,8 +212,10 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
         for _ in range(50):  # warm the connection pool
             await one(time.perf_counter())
         lat.clear()
+        late.clear()
         tasks = set()
         n = int(seconds * rps)
+        gc.disable()  # no collection pauses this client during the measured seconds (it collects after)
         with _OwnCost() as own:
             t0 = time.perf_counter()
             for k in range(n):
@@ -222,10 +228,12 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
                 task.add_done_callback(tasks.discard)
                 most = max(most, len(tasks))
             await asyncio.gather(*tasks)
+        gc.enable()
     lat.sort()
+    late.sort()
     return {"n": len(lat), "errors": errors, "p50_ms": 1e3 * lat[len(lat) // 2],
             "p99_ms": 1e3 * lat[int(0.99 * len(lat))], "max_ms": 1e3 * lat[-1], "most_in_flight": most,
-            **own.report()}
+            "client_send_late_p99_ms": round(1e3 * late[int(0.99 * len(late))], 3), **own.report()}
 
 
 async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int, per_s: float = 0.0,
@@ -399,7 +407,8 @@ def scorer_comparison(secs: float) -> dict:
         print(f"{mode}: score p99 {idle['p99_ms']:.2f} ms idle, {busy['p99_ms']:.2f} ms under ingest "
               f"(p50 {busy['p50_ms']:.2f}, max {busy['max_ms']:.1f}); ingest {ing['events_per_s']:.0f} events/s "
               f"in 500-event bodies; score client CPU {busy['client_cpu_share']:.2f} of a core, GC pauses "
-              f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms); ingest client CPU "
+              f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms), its own send lateness p99 "
+              f"{busy['client_send_late_p99_ms']} ms; ingest client CPU "
               f"{ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under ingest {spent}; "
               f"peak RSS MB {peaks}"
               + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else ""), file=sys.stderr)
