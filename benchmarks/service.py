@@ -13,7 +13,14 @@ Prints ratios against baselines measured in the same run; the last line is one J
   with orjson, in this process (also printed: ``ingest_vs_parse_validate``, against a loop that
   runs the boundary's ``parse_ndjson``, i.e. parsing plus every event rule).
 
-Usage: ``python benchmarks/service.py [--seconds 5]``. The goals are the issue's; the machine has
+* ``scorers``: ``service.scorers = 0`` (one process) against the default (a learner and scorer
+  processes) in the same run: ``score_p99_ms_idle``, ``score_p99_ms_under_ingest`` (1,000 scores/s,
+  latency from the scheduled send time, while a producer posts 500-event bodies as fast as
+  acknowledged; goal <= 5 ms), ``ingest_events_per_s`` meanwhile (goal >= 60,000), the load
+  generators' CPU, GC pauses and send lateness, the server processes' CPU seconds,
+  ``publish_to_serve_ms`` (goal <= 20 ms) and peak RSS per process.
+
+Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers]``. The goals are the issue's; the machine has
 two cores shared by the server, the load generators and anything else running.
 """
 
