@@ -13,7 +13,14 @@ Prints ratios against baselines measured in the same run; the last line is one J
   with orjson, in this process (also printed: ``ingest_vs_parse_validate``, against a loop that
   runs the boundary's ``parse_ndjson``, i.e. parsing plus every event rule).
 
-Usage: ``python benchmarks/service.py [--seconds 5]``. The goals are the issue's; the machine has
+* ``scorers``: ``service.scorers = 0`` (one process) against the default (a learner and scorer
+  processes) in the same run: ``score_p99_ms_idle``, ``score_p99_ms_under_ingest`` (1,000 scores/s,
+  latency from the scheduled send time, while a producer posts 500-event bodies as fast as
+  acknowledged; goal <= 5 ms), ``ingest_events_per_s`` meanwhile (goal >= 60,000), the load
+  generators' CPU, GC pauses and send lateness, the server processes' CPU seconds,
+  ``publish_to_serve_ms`` (goal <= 20 ms) and peak RSS per process.
+
+Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers]``. The goals are the issue's; the machine has
 two cores shared by the server, the load generators and anything else running.
 """
 
@@ -193,13 +200,17 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
     send time, so a stall (of the server or of this client) cannot hide behind a late send."""
     import aiohttp
 
+    import gc
+
     lat: list[float] = []
+    late: list[float] = []  # how late this client itself sent each request (its own lag, not the server's)
     errors = 0
     most = 0
     headers = {"Content-Type": "application/json"}
     async with aiohttp.ClientSession(connector=aiohttp.TCPConnector(limit=200)) as s:
         async def one(due: float):
             nonlocal errors
+            late.append(time.perf_counter() - due)
             async with s.post(url + "/v1/score", data=SCORE_BODY, headers=headers) as r:
                 await r.read()
                 if r.status != 200:
@@ -208,8 +219,10 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
         for _ in range(50):  # warm the connection pool
             await one(time.perf_counter())
         lat.clear()
+        late.clear()
         tasks = set()
         n = int(seconds * rps)
+        gc.disable()  # no collection pauses this client during the measured seconds (it collects after)
         with _OwnCost() as own:
             t0 = time.perf_counter()
             for k in range(n):
@@ -222,10 +235,12 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
                 task.add_done_callback(tasks.discard)
                 most = max(most, len(tasks))
             await asyncio.gather(*tasks)
+        gc.enable()
     lat.sort()
+    late.sort()
     return {"n": len(lat), "errors": errors, "p50_ms": 1e3 * lat[len(lat) // 2],
             "p99_ms": 1e3 * lat[int(0.99 * len(lat))], "max_ms": 1e3 * lat[-1], "most_in_flight": most,
-            **own.report()}
+            "client_send_late_p99_ms": round(1e3 * late[int(0.99 * len(late))], 3), **own.report()}
 
 
 async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int, per_s: float = 0.0,
@@ -399,7 +414,8 @@ def scorer_comparison(secs: float) -> dict:
         print(f"{mode}: score p99 {idle['p99_ms']:.2f} ms idle, {busy['p99_ms']:.2f} ms under ingest "
               f"(p50 {busy['p50_ms']:.2f}, max {busy['max_ms']:.1f}); ingest {ing['events_per_s']:.0f} events/s "
               f"in 500-event bodies; score client CPU {busy['client_cpu_share']:.2f} of a core, GC pauses "
-              f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms); ingest client CPU "
+              f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms), its own send lateness p99 "
+              f"{busy['client_send_late_p99_ms']} ms; ingest client CPU "
               f"{ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under ingest {spent}; "
               f"peak RSS MB {peaks}"
               + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else ""), file=sys.stderr)

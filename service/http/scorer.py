@@ -56,7 +56,8 @@ __all__ = ["ScorerState", "create_scorer_app", "scorer_main"]
 
 log = logging.getLogger("trimtab.service")
 
-_POLL_S = 0.002  # how often the publication file is checked between requests
+_POLL_S = 0.005  # how often the publication file is checked between requests (each request checks too)
+_EXIT_S = 5.0  # longest a stopping scorer waits for answers in progress
 _HOP = frozenset({"connection", "keep-alive", "transfer-encoding", "content-length", "content-encoding", "host",
                   "expect", "te", "trailer", "upgrade", "proxy-authorization", "proxy-connection", "date", "server"})
 _BUCKETS = (0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.25, 1.0)
@@ -311,7 +312,10 @@ async def _run(setup: ScorerSetup) -> None:
 
     loop.add_reader(setup.life_fd, learner_gone)
     await stop.wait()
-    await runner.cleanup()
+    try:  # answers in progress may finish; an orphan never lingers for long
+        await asyncio.wait_for(runner.cleanup(), _EXIT_S)
+    except TimeoutError:
+        log.warning("scorer %d: requests still open after %.0f s; exiting anyway", setup.index, _EXIT_S)
 
 
 def scorer_main() -> int:

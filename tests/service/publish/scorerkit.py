@@ -19,6 +19,7 @@ __all__ = ["Conn", "bits", "learner_socket", "scorer_pids", "start_serve", "wait
 
 def start_serve(tmp_path, **service) -> tuple:
     """``trimtab serve`` on a fresh data dir with ``[service]`` overrides; ``(config, server)`` once ready."""
+    tmp_path.mkdir(parents=True, exist_ok=True)
     cfg = make_config(tmp_path / "data", **service)
     conf = tmp_path / "serve.toml"
     conf.write_text(toml_text(cfg))

@@ -191,3 +191,29 @@ def _alive(pid: int) -> bool:
         return psutil.Process(pid).status() != psutil.STATUS_ZOMBIE
     except psutil.NoSuchProcess:
         return False
+
+
+def test_scorers_zero_is_one_process_and_readiness_shows_the_role(tmp_path):
+    """``service.scorers = 0``: no child process, the learner answers the address (no publication);
+    with scorers, ``/readyz`` adds the scorer's version and the metrics show the published version."""
+    _, server = start_serve(tmp_path / "one", scorers=0)
+    try:
+        front = Conn(server.url)
+        _ingest(front, demo_events(600, tag="z"))
+        got = front.call("POST", "/v1/score", {"features": PROBES[0]})[1]
+        assert set(got["version"]) == {"seq", "updates"} and got["version"]["seq"] == 600
+        assert scorer_pids(server) == [] and "scorer" not in front.call("GET", "/readyz")[1]
+        front.close()
+    finally:
+        assert server.stop() == 0
+    _, server = start_serve(tmp_path / "two", scorers=1)
+    try:
+        front = Conn(server.url)
+        _ingest(front, demo_events(600, tag="z"))
+        ready = wait_for(lambda: (r := front.call("GET", "/readyz")[1])["scorer"]["version"] > 1 and r)
+        assert ready["ready"] and ready["applied_seq"] == 600 and ready["scorer"]["age_s"] >= 0
+        text = front.call("GET", "/metrics")[1]["text"]
+        assert "trimtab_published_version " in text and 'trimtab_scorer_published_version{scorer="0"}' in text
+        front.close()
+    finally:
+        assert server.stop() == 0
