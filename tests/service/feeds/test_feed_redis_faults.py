@@ -222,3 +222,36 @@ def test_dead_consumer_entries_taken_over_and_poison_dead_lettered(tmp_path):
         client.close()
     finally:
         redis_server.stop()
+
+
+def test_over_delivered_entry_already_learned_is_acknowledged_not_dead_lettered(tmp_path):
+    """An entry delivered too often whose event the journal already holds (a learner that crashed
+    after learning it, before acknowledging) is acknowledged, not dead-lettered, and not learned twice."""
+    redis_server = RedisServer(tmp_path / "redis")
+    try:
+        client = redis.Redis.from_url(redis_server.url)
+        events = demo_events(51, tag="j")
+        plain, plain_path = write_config(tmp_path, tmp_path / "data")  # same data folder, no feed yet
+        server = start_serve(plain_path)
+        Client(server.url).events(events[:50])
+        assert server.stop() == 0
+        client.xgroup_create(STREAM, GROUP, id="0", mkstream=True)
+        client.xadd(STREAM, {"event": orjson.dumps(events[0])})
+        client.xreadgroup(GROUP, "learner-1", {STREAM: ">"}, count=10)
+        for _ in range(6):
+            client.xreadgroup(GROUP, "learner-1", {STREAM: "0"}, count=10)
+        client.xadd(STREAM, {"event": orjson.dumps(events[50])})
+
+        cfg, path = _feed_config(tmp_path, redis_server.url, max_deliveries=3)
+        server = start_serve(path)
+        _until(lambda: client.xpending(STREAM, GROUP)["pending"] == 0 and _learned(server) >= 51,
+               what="the feed to settle")
+        assert client.xlen(f"{STREAM}.rejected") == 0
+        assert Client(server.url).card()["counters"]["events"] == 51
+        ref = tmp_path / "learned.ndjson"
+        ref.write_bytes(b"\n".join(orjson.dumps(e) for e in events) + b"\n")
+        assert Client(server.url).card()["state_digest"] == run_replay([ref], cfg)["summary"]["state_digest"]
+        assert server.stop() == 0
+        client.close()
+    finally:
+        redis_server.stop()
