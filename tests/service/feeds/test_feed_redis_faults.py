@@ -4,7 +4,7 @@ serve`` processes.
 - a consumer that died with entries delivered and never acknowledged: the next learner takes them over
   at start (``XAUTOCLAIM``), learns them once, and the pending list empties;
 - a pending entry deleted from the stream, and one delivered more than ``feed.max_deliveries`` times,
-  go to the dead-letter stream with their reason;
+  go to the dead-letter stream with their reason (one already journaled is only acknowledged);
 - ``redis-server`` SIGKILLed and restarted mid-stream (append-only file on, fsync on every write);
 - the learner (``trimtab serve`` consuming the stream) SIGKILLed mid-stream and started again.
 
