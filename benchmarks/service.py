@@ -13,7 +13,14 @@ Prints ratios against baselines measured in the same run; the last line is one J
   with orjson, in this process (also printed: ``ingest_vs_parse_validate``, against a loop that
   runs the boundary's ``parse_ndjson``, i.e. parsing plus every event rule).
 
-Usage: ``python benchmarks/service.py [--seconds 5]``. The goals are the issue's; the machine has
+* ``scorers``: ``service.scorers = 0`` (one process) against the default (a learner and scorer
+  processes) in the same run: ``score_p99_ms_idle``, ``score_p99_ms_under_ingest`` (1,000 scores/s,
+  latency from the scheduled send time, while a producer posts 500-event bodies as fast as
+  acknowledged; goal <= 5 ms), ``ingest_events_per_s`` meanwhile (goal >= 60,000), the load
+  generators' CPU, GC pauses and send lateness, the server processes' CPU seconds,
+  ``publish_to_serve_ms`` (goal <= 20 ms) and peak RSS per process.
+
+Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers]``. The goals are the issue's; the machine has
 two cores shared by the server, the load generators and anything else running.
 """
 
@@ -101,9 +108,15 @@ def start_bare() -> tuple[subprocess.Popen, str]:
     raise RuntimeError("bare server did not start")
 
 
-def start_service(data_dir: str) -> tuple[subprocess.Popen, str]:
+def start_service(data_dir: str, scorers: int | str | None = None) -> tuple[subprocess.Popen, str]:
+    """``trimtab serve`` on the demo config (``scorers``: overrides ``service.scorers``)."""
     env = dict(os.environ, TRIMTAB_TOKEN=TOKEN)  # the config reads its token from $TRIMTAB_TOKEN
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(CONFIG), "--port", "0",
+    config = CONFIG
+    if scorers is not None:
+        config = Path(data_dir + ".toml")
+        value = f'"{scorers}"' if isinstance(scorers, str) else str(scorers)
+        config.write_text(CONFIG.read_text().replace("[service]\n", f"[service]\nscorers = {value}\n"))
+    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(config), "--port", "0",
                              "--data-dir", data_dir], stderr=subprocess.PIPE, env=env, cwd=ROOT)
     url = None
     for raw in proc.stderr:
@@ -146,42 +159,95 @@ async def _closed(url: str, seconds: float, conns: int) -> dict:
     return {"rps": done / took}
 
 
+class _OwnCost:
+    """The load generator's own CPU time and garbage-collection pauses, so they are not taken for
+    server latency (a collection in the client delays every request it has in flight)."""
+
+    def __init__(self) -> None:
+        import gc
+        import resource
+
+        self._gc, self._res = gc, resource
+        self.pauses: list[float] = []
+        self._t = 0.0
+
+    def _hook(self, phase: str, info: dict) -> None:
+        if phase == "start":
+            self._t = time.perf_counter()
+        else:
+            self.pauses.append(time.perf_counter() - self._t)
+
+    def __enter__(self) -> _OwnCost:
+        self._gc.callbacks.append(self._hook)
+        r = self._res.getrusage(self._res.RUSAGE_SELF)
+        self._cpu0, self._wall0 = r.ru_utime + r.ru_stime, time.perf_counter()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._gc.callbacks.remove(self._hook)
+        r = self._res.getrusage(self._res.RUSAGE_SELF)
+        self.cpu = r.ru_utime + r.ru_stime - self._cpu0
+        self.wall = time.perf_counter() - self._wall0
+
+    def report(self) -> dict:
+        return {"client_cpu_s": round(self.cpu, 3), "client_cpu_share": round(self.cpu / self.wall, 3),
+                "client_gc_pauses": len(self.pauses),
+                "client_gc_max_ms": round(1e3 * max(self.pauses), 3) if self.pauses else 0.0}
+
+
 async def _rate(url: str, seconds: float, rps: float) -> dict:
+    """Single-event scores sent open loop at ``rps``; latency counted from each request's scheduled
+    send time, so a stall (of the server or of this client) cannot hide behind a late send."""
     import aiohttp
 
+    import gc
+
     lat: list[float] = []
+    late: list[float] = []  # how late this client itself sent each request (its own lag, not the server's)
     errors = 0
+    most = 0
     headers = {"Content-Type": "application/json"}
     async with aiohttp.ClientSession(connector=aiohttp.TCPConnector(limit=200)) as s:
-        async def one():
+        async def one(due: float):
             nonlocal errors
-            t = time.perf_counter()
+            late.append(time.perf_counter() - due)
             async with s.post(url + "/v1/score", data=SCORE_BODY, headers=headers) as r:
                 await r.read()
                 if r.status != 200:
                     errors += 1
-            lat.append(time.perf_counter() - t)
+            lat.append(time.perf_counter() - due)
         for _ in range(50):  # warm the connection pool
-            await one()
+            await one(time.perf_counter())
         lat.clear()
-        tasks = []
-        t0 = time.perf_counter()
+        late.clear()
+        tasks = set()
         n = int(seconds * rps)
-        for k in range(n):
-            delay = t0 + k / rps - time.perf_counter()
-            if delay > 0:
-                await asyncio.sleep(delay)
-            tasks.append(asyncio.ensure_future(one()))
-        await asyncio.gather(*tasks)
+        gc.disable()  # no collection pauses this client during the measured seconds (it collects after)
+        with _OwnCost() as own:
+            t0 = time.perf_counter()
+            for k in range(n):
+                due = t0 + k / rps
+                delay = due - time.perf_counter()
+                if delay > 0:
+                    await asyncio.sleep(delay)
+                task = asyncio.ensure_future(one(due))
+                tasks.add(task)
+                task.add_done_callback(tasks.discard)
+                most = max(most, len(tasks))
+            await asyncio.gather(*tasks)
+        gc.enable()
     lat.sort()
+    late.sort()
     return {"n": len(lat), "errors": errors, "p50_ms": 1e3 * lat[len(lat) // 2],
-            "p99_ms": 1e3 * lat[int(0.99 * len(lat))], "max_ms": 1e3 * lat[-1]}
+            "p99_ms": 1e3 * lat[int(0.99 * len(lat))], "max_ms": 1e3 * lat[-1], "most_in_flight": most,
+            "client_send_late_p99_ms": round(1e3 * late[int(0.99 * len(late))], 3), **own.report()}
 
 
-async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int, per_s: float = 0.0) -> dict:
+async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int, per_s: float = 0.0,
+                  size: int = 5000) -> dict:
     import aiohttp
 
-    data = bodies(n_bodies, tag=tag)
+    data = bodies(n_bodies, size=size, tag=tag)
     headers = {"Content-Type": "application/x-ndjson", "Authorization": f"Bearer {TOKEN}"}
     accepted = 0
     nxt = 0
@@ -200,10 +266,11 @@ async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int,
                 async with s.post(url + "/v1/events", data=body, headers=headers) as r:
                     got = await r.json()
                     accepted += got.get("accepted", 0)
-        t0 = time.perf_counter()
-        await asyncio.gather(*(worker() for _ in range(conns)))
-        took = time.perf_counter() - t0
-    return {"events_per_s": accepted / took, "accepted": accepted, "seconds": took}
+        with _OwnCost() as own:
+            t0 = time.perf_counter()
+            await asyncio.gather(*(worker() for _ in range(conns)))
+            took = time.perf_counter() - t0
+    return {"events_per_s": accepted / took, "accepted": accepted, "seconds": took, **own.report()}
 
 
 def run_load(*args: str) -> dict:
@@ -235,9 +302,139 @@ def validate_rate(data: list[bytes]) -> float:
     return n / (time.perf_counter() - t0)
 
 
+class PeakRSS(threading.Thread):
+    """Peak resident memory of a process and of each of its children, sampled every 20 ms."""
+
+    def __init__(self, pid: int) -> None:
+        import psutil
+
+        super().__init__(daemon=True)
+        self.proc = psutil.Process(pid)
+        self.peaks: dict[str, int] = {}
+        self.halt = threading.Event()
+
+    def run(self) -> None:
+        import psutil
+
+        while not self.halt.is_set():
+            try:
+                procs = [("learner", self.proc)] + [(f"scorer pid {c.pid}", c) for c in self.proc.children()]
+                for name, p in procs:
+                    self.peaks[name] = max(self.peaks.get(name, 0), p.memory_info().rss)
+            except psutil.Error:
+                pass
+            time.sleep(0.02)
+
+    def cpu(self) -> dict[str, float]:
+        """CPU seconds (user + system) each process has used so far."""
+        import psutil
+
+        out = {}
+        for name, p in [("learner", self.proc)] + [(f"scorer pid {c.pid}", c) for c in self.proc.children()]:
+            try:
+                t = p.cpu_times()
+                out[name] = t.user + t.system
+            except psutil.Error:
+                continue
+        return out
+
+    def report(self) -> dict:
+        self.halt.set()
+        self.join(5)
+        return {k: round(v / 2**20, 1) for k, v in self.peaks.items()}
+
+
+def publish_to_serve(url: str, rounds: int = 200) -> dict:
+    """After each small ingest is answered, ask ``GET /v1/model/serving`` until the address serves
+    a version at that journal position; the client's receive time minus the version's
+    ``published_at`` (same machine, same clock). An upper bound: it includes one HTTP round trip and
+    the polling interval (a tight loop on one keep-alive connection)."""
+    import http.client
+
+    host, port = url.removeprefix("http://").split(":")
+    conn = http.client.HTTPConnection(host, int(port), timeout=30)
+    auth = {"Authorization": f"Bearer {TOKEN}", "Content-Type": "application/x-ndjson"}
+    lines = _valid_lines()
+    out = []
+    for k in range(rounds):
+        body = b"\n".join(orjson.dumps(dict(orjson.loads(lines[(k * 5 + j) % len(lines)]), id=f"pts{k}-{j}"))
+                          for j in range(5))
+        conn.request("POST", "/v1/events", body=body, headers=auth)
+        seq = orjson.loads(conn.getresponse().read())["applied_seq"]
+        while True:
+            conn.request("GET", "/v1/model/serving")
+            got = orjson.loads(conn.getresponse().read())
+            if got["seq"] >= seq:
+                out.append(time.time() - got["published_at"])
+                break
+    conn.close()
+    out.sort()
+    return {"p50_ms": 1e3 * out[len(out) // 2], "p99_ms": 1e3 * out[int(0.99 * len(out))], "max_ms": 1e3 * out[-1]}
+
+
+def scorer_comparison(secs: float) -> dict:
+    """``service.scorers = 0`` (one process) against the default (scorer processes), in one run:
+    idle score p99, score p99 while producers ingest 500-event bodies as fast as acknowledged, the
+    ingest rate meanwhile, the load generators' own CPU and GC pauses, publish-to-serve, peak RSS."""
+    res: dict = {}
+    n_bodies = int(max(40, secs * 160))  # enough 500-event bodies for 80k events/s
+    for mode, scorers in (("single", 0), ("scorers", "auto")):
+        with tempfile.TemporaryDirectory() as d:
+            svc, url = start_service(d + "/data", scorers)
+            rss = PeakRSS(svc.pid)
+            rss.start()
+            try:
+                run_load("ingest", url, "3", "2", f"w{mode}", "20", "0", "500")  # warm-up: compile, connect
+                run_load("rate", url, "1", "1000")
+                idle = run_load("rate", url, str(secs), "1000")
+                bg = subprocess.Popen([sys.executable, __file__, "--load", "ingest", url, str(secs + 6), "4",
+                                       f"g{mode}", str(n_bodies), "0", "500"], stdout=subprocess.PIPE, cwd=ROOT)
+                time.sleep(4.0)  # the producer builds its bodies first (about 2 s here), then ingests
+                cpu0 = rss.cpu()
+                busy = run_load("rate", url, str(secs), "1000")
+                cpu1 = rss.cpu()
+                ing = json.loads(bg.communicate()[0].decode().strip().splitlines()[-1])
+                spent = {k: round(cpu1[k] - cpu0[k], 2) for k in cpu1 if k in cpu0}
+                pts = publish_to_serve(url) if scorers != 0 else None
+            finally:
+                svc.terminate()
+                svc.wait(60)
+                peaks = rss.report()
+        r = res[mode] = {
+            "score_p99_ms_idle": round(idle["p99_ms"], 2), "score_p99_ms_under_ingest": round(busy["p99_ms"], 2),
+            "score_p50_ms_under_ingest": round(busy["p50_ms"], 2), "score_max_ms_under_ingest": round(busy["max_ms"], 2),
+            "score_errors": idle["errors"] + busy["errors"], "ingest_events_per_s": round(ing["events_per_s"]),
+            "score_client": {k: busy[k] for k in busy if k.startswith("client_") or k == "most_in_flight"},
+            "ingest_client": {k: ing[k] for k in ing if k.startswith("client_")},
+            "peak_rss_mb": peaks, "server_cpu_s_during_scores_under_ingest": spent,
+            "score_seconds": secs}
+        if pts is not None:
+            r["publish_to_serve_ms_p99"] = round(pts["p99_ms"], 2)
+            r["publish_to_serve_ms_p50"] = round(pts["p50_ms"], 2)
+        print(f"{mode}: score p99 {idle['p99_ms']:.2f} ms idle, {busy['p99_ms']:.2f} ms under ingest "
+              f"(p50 {busy['p50_ms']:.2f}, max {busy['max_ms']:.1f}); ingest {ing['events_per_s']:.0f} events/s "
+              f"in 500-event bodies; score client CPU {busy['client_cpu_share']:.2f} of a core, GC pauses "
+              f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms), its own send lateness p99 "
+              f"{busy['client_send_late_p99_ms']} ms; ingest client CPU "
+              f"{ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under ingest {spent}; "
+              f"peak RSS MB {peaks}"
+              + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else ""), file=sys.stderr)
+    s, m = res["single"], res["scorers"]
+    res["ratios"] = {"score_p99_under_ingest_scorers_vs_single": round(m["score_p99_ms_under_ingest"]
+                                                                       / s["score_p99_ms_under_ingest"], 3),
+                     "ingest_scorers_vs_single": round(m["ingest_events_per_s"] / s["ingest_events_per_s"], 3)}
+    res["goals_met"] = {"score_p99_ms_under_ingest": m["score_p99_ms_under_ingest"] <= 5.0,
+                        "ingest_events_per_s": m["ingest_events_per_s"] >= 60_000,
+                        "publish_to_serve_ms": m["publish_to_serve_ms_p99"] <= 20.0}
+    return res
+
+
 def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--seconds", type=float, default=5.0)
+    ap.add_argument("--part", choices=("all", "classic", "scorers"), default="all",
+                    help="classic: the earlier figures (default config); scorers: only one process against "
+                         "scorer processes; all: both")
     ap.add_argument("--bare-server")
     ap.add_argument("--load", nargs="+")
     a = ap.parse_args()
@@ -245,17 +442,29 @@ def main() -> int:
         _bare_server(a.bare_server)
         return 0
     if a.load:
+        import gc
+
+        # a load generator keeps thousands of short-lived tasks: collect rarely, or its own pauses
+        # (reported as client_gc_*) show up as server latency
+        gc.collect()
+        gc.freeze()
+        gc.set_threshold(100_000, 50, 100)
         kind, url, secs, *rest = a.load
         fn = {"closed": lambda: _closed(url, float(secs), int(rest[0])),
               "rate": lambda: _rate(url, float(secs), float(rest[0])),
               "ingest": lambda: _ingest(url, float(secs), int(rest[0]), rest[1], int(rest[2]),
-                                        float(rest[3]) if len(rest) > 3 else 0.0)}[kind]
+                                        float(rest[3]) if len(rest) > 3 else 0.0,
+                                        int(rest[4]) if len(rest) > 4 else 5000)}[kind]
         print(json.dumps(asyncio.run(fn())))
         return 0
 
     secs = a.seconds
     res: dict = {"machine": f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores",
-                 "python": platform.python_version()}
+                 "python": platform.python_version(), "load_average_at_start": os.getloadavg()[0]}
+    if a.part == "scorers":
+        res["scorers"] = scorer_comparison(secs)
+        print(json.dumps(res))
+        return 0
     bare, bare_url = start_bare()
     with tempfile.TemporaryDirectory() as d:
         svc, url = start_service(d)
@@ -312,6 +521,8 @@ def main() -> int:
     res["goals_met"] = {"score_vs_bare": res["score_vs_bare"] >= 0.8,
                         "score_p99_ms_at_1000rps": res["score_p99_ms_at_1000rps"] <= 5.0,
                         "ingest_events_per_s": res["ingest_events_per_s"] >= 60_000}
+    if a.part == "all":
+        res["scorers"] = scorer_comparison(secs)
     print(json.dumps(res))
     return 0
 

@@ -357,10 +357,17 @@ class LinearModel:
             "warm_y": np.array([w[2] for w in warm], dtype=np.float64),
         }
 
-    def _pack(self) -> tuple[bytes, str]:
+    def _pack(self, categories: bool = True) -> tuple[bytes, str]:
         header = {"format": "linear-model", "spec": self._spec.to_dict(), "frozen": self._frozen}
-        extra = {"categories": [[n, t, j, s] for (n, t), (j, s) in self._mapper.known_values().items()]}
+        extra = {"categories": [[n, t, j, s] for (n, t), (j, s) in self._mapper.known_values().items()]
+                 if categories else []}
         return pack(header, self._arrays(), extra)
+
+    def scoring_bytes(self) -> tuple[bytes, str]:
+        """``(blob, state digest)``: the state as :meth:`to_bytes` without the categorical values seen
+        (reporting only: scoring hashes values and needs no memory of them). :meth:`from_bytes` of the
+        blob scores bit for bit as this model, and its digest is this model's :attr:`digest`."""
+        return self._pack(categories=False)
 
     def to_bytes(self) -> bytes:
         """The whole state as bytes; :meth:`from_bytes` gives back a bit-identical model."""
@@ -374,6 +381,12 @@ class LinearModel:
     @classmethod
     def from_bytes(cls, blob: bytes) -> LinearModel:
         header, arrays, extra, _ = unpack(blob)
+        return cls.from_parts(header, arrays, extra)
+
+    @classmethod
+    def from_parts(cls, header: dict, arrays: dict, extra: dict) -> LinearModel:
+        """The model from the parts :func:`models.snapshot.unpack` returns (for a caller that also
+        wants the digest it computes: one pass over the bytes instead of two)."""
         if header.get("format") != "linear-model":
             raise SnapshotError("the state is not a linear model")
         model = cls(ModelSpec.from_dict(header["spec"]))

@@ -38,6 +38,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--host", default=None, help="override service.host")
     s.add_argument("--port", type=int, default=None, help="override service.port")
     s.add_argument("--data-dir", default=None, help="override service.data_dir")
+    s.add_argument("--role", choices=("learner", "scorer"), default="learner",
+                   help="learner (default): the single writer, with its local scorers; scorer: serve /v1/score "
+                        "from the model a learner publishes to Redis ([publish] section), on any machine")
 
     r = sub.add_parser("replay", help="replay recorded feeds offline (-c ... --out) or into a service (--to)")
     r.add_argument("feeds", nargs="+", help="NDJSON, CSV or Parquet files (.gz allowed)")

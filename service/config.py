@@ -213,6 +213,20 @@ class ServiceConfig(_Section):
     #: delete journal rows covered by the oldest kept checkpoint; false keeps the whole history
     #: (an audit trail, or a re-replay under another config)
     prune_journal: bool = True
+    #: scorer processes that answer /v1/score beside the learner behind the one address ("auto": one
+    #: per CPU core but one, at least 1); 0 runs everything in one process (docs/architecture.md)
+    scorers: int | str = "auto"
+    #: the learner publishes its serving model for the scorers after every applied slice, but at most
+    #: once per this many milliseconds (0: after every slice); a held-back state follows within it
+    publish_every_ms: float = Field(0.0, ge=0.0, le=60_000.0)
+
+
+    @field_validator("scorers", mode="before")
+    @classmethod
+    def _scorers(cls, v):
+        if v == "auto" or (isinstance(v, int) and not isinstance(v, bool) and 0 <= v <= 256):
+            return v
+        raise ValueError(f'expected "auto" or a whole number of processes from 0 to 256, got {v!r}')
 
 
 class FeedConfig(_Section):
@@ -229,6 +243,13 @@ class FeedConfig(_Section):
     #: stream that receives rejected entries with the reason (default: "<stream>.rejected")
     dead_letter: str | None = None
     dead_letter_maxlen: int = Field(100_000, ge=1)
+    #: at start, entries another consumer of the group has held unacknowledged this long are taken
+    #: over (the consumer is presumed dead; its entries would otherwise stay pending for ever)
+    claim_idle_ms: int = Field(60_000, ge=0)
+    #: an entry delivered more often than this without being learned goes to the dead-letter stream
+    max_deliveries: int = Field(10, ge=1)
+    #: after a lost connection the wait before the next attempt doubles from 0.1 s up to this
+    reconnect_max_s: float = Field(5.0, gt=0, le=300)
 
     @field_validator("source")
     @classmethod
@@ -236,6 +257,24 @@ class FeedConfig(_Section):
         if not v.startswith(("redis://", "rediss://", "unix://")):
             raise ValueError("must be a redis:// (or rediss://, unix://) URL")
         return v
+
+
+class PublishConfig(_Section):
+    """Publication of the serving model to Redis, for scorers on other machines (``--role scorer``)."""
+
+    #: the Redis server the learner publishes to and remote scorers read from
+    source: str = "redis://127.0.0.1:6379/0"
+    #: the hash that holds the newest model (default: "trimtab.<name>.model")
+    key: str | None = None
+    #: a remote scorer's /readyz answers 503 once its model has not been published or confirmed by
+    #: the learner for this long (a learner with nothing new confirms about every second)
+    max_model_age_s: float = Field(30.0, gt=0, le=86_400)
+    #: a remote scorer checks the hash at least this often (a publication notice wakes it sooner)
+    poll_ms: int = Field(100, ge=1, le=60_000)
+    #: after a lost connection the wait before the next attempt doubles from 0.1 s up to this
+    reconnect_max_s: float = Field(5.0, gt=0, le=300)
+
+    _redis_url = field_validator("source")(FeedConfig._redis_url.__func__)
 
 
 class Config(_Section):
@@ -248,6 +287,7 @@ class Config(_Section):
     monitor: MonitorConfig = MonitorConfig()
     service: ServiceConfig = ServiceConfig()
     feed: FeedConfig | None = None
+    publish: PublishConfig | None = None
 
     @model_validator(mode="after")
     def _learnable(self):
@@ -266,6 +306,10 @@ class Config(_Section):
             radius=c.radius, lower=c.lower, upper=c.upper, rule=s.rule, base=s.base, horizon=s.horizon,
             grad_bound=None if s.grad_bound == "auto" else float(s.grad_bound), averaging=a.scheme,
             halflife=a.halflife, kernel=m.kernel)
+
+    def publish_key(self) -> str:
+        """The Redis hash of ``[publish]`` (its ``key``, or one named after the config)."""
+        return (self.publish.key if self.publish is not None and self.publish.key else f"trimtab.{self.name}.model")
 
     def resolved(self) -> dict:
         """Every setting with defaults filled in, as plain data."""

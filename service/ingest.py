@@ -36,6 +36,7 @@ from contextlib import suppress
 import orjson
 
 from service.engine import Engine
+from service.publish import take_snapshot
 from service.errors import JournalUnavailable, NotReady, Overloaded
 from service.events import Event
 from service.storage.guard import StorageGuard
@@ -126,6 +127,36 @@ class Ingestor:
         self._tasks: list[asyncio.Task] = []
         self._background: set[asyncio.Future] = set()
         self._rate = 20_000.0                # events/s applied, for Retry-After
+        #: where the serving model is published for scorer processes (None: scores are answered here only)
+        self.publisher = None
+        self._publish_every = svc.publish_every_ms / 1000.0
+        self._published_at = -math.inf       # monotonic time of the last publication
+        self.unpublished = False              # the engine changed since the last publication
+        self.published_version = 0
+        self.published_wall = 0.0             # Unix time of the last publication
+
+    # ---------------------------------------------------------------- serving
+    def set_view(self, force: bool = False) -> None:
+        """Under :attr:`lock`: make the engine's state the one ``/v1/score`` reads here, and publish it
+        for scorer processes (after every slice, at most every ``service.publish_every_ms`` unless
+        ``force``; a state held back by that limit is published by :meth:`publish_pending`)."""
+        self.view = serving_view(self.engine, self.applied_seq)
+        if self.publisher is None or not self.ready:  # scorers see recovered states only
+            return
+        now = time.monotonic()
+        if not force and now - self._published_at < self._publish_every:
+            self.unpublished = True
+            return
+        snap = take_snapshot(self.engine, self.applied_seq, self.publisher.next_version())
+        self.publisher.publish(snap)
+        self._published_at, self.unpublished = now, False
+        self.published_version, self.published_wall = snap.version, snap.published_at
+
+    def publish_pending(self) -> None:
+        """Publish a state that :meth:`set_view` held back (learner thread)."""
+        with self.lock:
+            if self.unpublished and self.engine is not None:
+                self.set_view(force=True)
 
     def _incident(self, kind: str, reason: str, evidence: dict, persist: bool = False) -> None:
         """Record a service incident; ``persist`` (journal thread only) keeps it across restarts."""
@@ -250,7 +281,7 @@ class Ingestor:
             start = time.perf_counter()
             with self.lock:
                 engine.apply(batch)
-                self.view = serving_view(engine, self.applied_seq)
+                self.set_view()
             took = time.perf_counter() - start
             self.metrics.apply_seconds.observe(took)
             if took > 0:
@@ -272,7 +303,7 @@ class Ingestor:
         with self.lock:  # the position always describes the engine state under the same lock
             if last is not None:
                 self.applied_seq = last
-            self.view = serving_view(self.engine, self.applied_seq)
+            self.set_view()
         r.applied_seq = self.applied_seq
 
     async def _learner(self) -> None:
@@ -354,7 +385,7 @@ class Ingestor:
         engine, pos = await load_state(self)
         with self.lock:
             self.engine, self.applied_seq = engine, pos  # the checkpoint's position is where the engine is
-            self.view = serving_view(engine, pos)
+            self.set_view()
         self.checkpoint_seq = pos
         self.recovery["checkpoint"] = pos
         replayed, after = 0, pos
@@ -375,6 +406,9 @@ class Ingestor:
         self._tasks = [asyncio.create_task(self._committer(), name="trimtab-committer"),
                        asyncio.create_task(self._learner(), name="trimtab-learner")]
         self.ready = True
+        if self.publisher is not None:
+            with self.lock:
+                self.set_view(force=True)
         log.info("recovered: checkpoint at position %d, %d journal rows re-applied, position %d",
                  pos, replayed, after)
 

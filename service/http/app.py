@@ -15,7 +15,9 @@ import ipaddress
 import logging
 import os
 import resource
+import secrets
 import signal
+import socket
 import sys
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -29,6 +31,7 @@ from service.http import handlers as h
 from service.http.modelmetrics import ModelHealthCollector
 from service.http.pulse import PULSE, Pulse, pulse_context
 from service.http.bodies import BodyReader
+from service.http.fleet import ScorerFleet, ScorerSetup, auto_scorers, lower_learner_priority
 from service.http.looplag import LoopLag
 from service.http.transport import GuardedRunner, handler_options
 from service.config import Config, ConfigError, load_config
@@ -40,8 +43,10 @@ from service.storage.journal import Journal, fingerprint
 from service.storage.labels import LabelStore
 from service.http.metrics import Metrics
 from service.http.schemas import openapi_document
+from service.publish.fanout import publisher_for
+from service.publish.shared import SharedPublisher, capacity_for
 
-__all__ = ["SERVICE", "Service", "create_app", "resolve_token", "serve_main"]
+__all__ = ["SERVICE", "Service", "create_app", "error_middleware", "resolve_token", "serve_main", "version_text"]
 
 log = logging.getLogger("trimtab.service")
 
@@ -68,6 +73,10 @@ async def _errors(request: web.Request, handler) -> web.StreamResponse:
     return resp
 
 
+#: the error middleware, shared with the scorer processes' app (:mod:`service.http.scorer`)
+error_middleware = _errors
+
+
 async def _lifecycle(app: web.Application):
     svc = app[SERVICE]
     cfg = svc.config.service
@@ -76,6 +85,7 @@ async def _lifecycle(app: web.Application):
     svc.labels = await asyncio.to_thread(LabelStore, svc.data_dir, ttl=cfg.remember_ttl_s,
                                          limit=cfg.remember_limit, sync=cfg.journal_sync)
     ing = svc.ingestor = Ingestor(svc.config, journal, svc.metrics)
+    ing.publisher = svc.publisher
     m = svc.metrics
     m.watch("trimtab_queue_events", lambda: ing.queued_events)
     m.watch("trimtab_applied_seq", lambda: ing.applied_seq)
@@ -86,6 +96,9 @@ async def _lifecycle(app: web.Application):
     m.watch("trimtab_loop_lag_max_seconds", lambda: lag.max_s)  # since ready
     m.watch("trimtab_loop_busy_max_seconds", lambda: lag.busy_max_s)
     m.watch("trimtab_body_bytes_in_flight", lambda: svc.bodies.held)
+    m.watch("trimtab_published_version", lambda: ing.published_version)
+    m.watch("trimtab_published_age_seconds",
+            lambda: time.time() - ing.published_wall if ing.published_version else float("nan"))
 
     async def recover():
         try:
@@ -106,8 +119,17 @@ async def _lifecycle(app: web.Application):
             await asyncio.sleep(max(1.0, min(60.0, cfg.remember_ttl_s / 4)))
             await asyncio.to_thread(svc.labels.sweep)
 
+    async def publish_pending():  # a state held back by service.publish_every_ms follows within it
+        every = cfg.publish_every_ms / 1000.0
+        while True:
+            await asyncio.sleep(every)
+            if ing.unpublished and ing.ready:
+                await ing.learn(ing.publish_pending)
+
     tasks = [asyncio.create_task(recover(), name="trimtab-recovery"), asyncio.create_task(sweep()),
              asyncio.create_task(lag.run(), name="trimtab-loop-lag")]
+    if svc.publisher is not None and cfg.publish_every_ms > 0:
+        tasks.append(asyncio.create_task(publish_pending(), name="trimtab-publish"))
     yield
     if not tasks[0].done():
         tasks[0].cancel()
@@ -121,7 +143,8 @@ async def _lifecycle(app: web.Application):
     svc.labels.close()
 
 
-def _version() -> str:
+def version_text() -> str:
+    """The installed package's version ("0" when run from a checkout)."""
     try:
         return version("trimtab")
     except PackageNotFoundError:
@@ -155,7 +178,8 @@ def resolve_token(config: Config, token: str | None = None) -> str | None:
 #: the API's routes (README "HTTP API"): method, path, handler in :mod:`service.http.handlers`
 _ROUTES = (
     ("POST", "/v1/score", "score"), ("POST", "/v1/events", "post_events"), ("POST", "/v1/labels", "post_labels"),
-    ("GET", "/v1/model", "model_card"), ("POST", "/v1/model/rollback", "rollback"),
+    ("GET", "/v1/model", "model_card"), ("GET", "/v1/model/serving", "serving_model"),
+    ("POST", "/v1/model/rollback", "rollback"),
     ("GET", "/v1/checkpoints", "get_checkpoints"), ("POST", "/v1/checkpoints", "post_checkpoint"),
     ("GET", "/v1/incidents", "incidents"), ("GET", "/v1/openapi.json", "openapi"), ("GET", "/metrics", "metrics"),
     ("GET", "/healthz", "healthz"), ("GET", "/readyz", "readyz"), ("GET", "/v1/health", "health"),
@@ -163,8 +187,10 @@ _ROUTES = (
 )
 
 
-def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None) -> web.Application:
-    """The service app for ``config``; ``token`` overrides the environment variable (tests).
+def create_app(config: Config, *, data_dir: str | None = None, token: str | None = None,
+               publisher=None) -> web.Application:
+    """The service app for ``config``; ``token`` overrides the environment variable (tests);
+    ``publisher`` (a :class:`service.publish.SnapshotPublisher`) receives every new serving model.
 
     Raises :class:`ConfigError` when ``service.auth = "token"`` and there is no usable token
     (see :func:`resolve_token`).
@@ -173,8 +199,9 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     if token is None:
         log.warning("%s", h.OPEN_WRITES)
     svc = Service(config=config, data_dir=data_dir or config.service.data_dir, token=token,
-                  validator=EventValidator(config), metrics=Metrics(), bodies=BodyReader(config.service))
-    svc.openapi = orjson.dumps(openapi_document(config, _version()))
+                  validator=EventValidator(config), metrics=Metrics(), bodies=BodyReader(config.service),
+                  publisher=publisher)
+    svc.openapi = orjson.dumps(openapi_document(config, version_text()))
     app = web.Application(middlewares=[_errors], client_max_size=config.service.max_body_bytes,
                           handler_args=handler_options(config.service))
     app[SERVICE] = svc
@@ -212,35 +239,71 @@ def _loopback(host: str) -> bool:
         return False
 
 
-async def _serve(app: web.Application, host: str, port: int) -> None:
-    asyncio.get_running_loop().set_default_executor(
-        ThreadPoolExecutor(thread_name_prefix="trimtab-parse", initializer=background_thread))
-    runner = GuardedRunner(app, app[SERVICE].config.service, access_log=None, handle_signals=False)
+def _tcp_listener(host: str, port: int) -> socket.socket:
+    """The listening socket of the configured address, shared by the scorer processes."""
+    family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)[0][0]
+    return socket.create_server((host, port), family=family, backlog=1024)
+
+
+async def _serve(config: Config, token: str | None) -> None:
+    cfg = config.service
+    loop = asyncio.get_running_loop()
+    loop.set_default_executor(ThreadPoolExecutor(thread_name_prefix="trimtab-parse", initializer=background_thread))
+    scorers = auto_scorers() if cfg.scorers == "auto" else cfg.scorers
+    publisher = SharedPublisher(capacity_for(config)) if scorers > 0 else None
+    app = create_app(config, token=token, publisher=publisher_for(publisher, config))  # + Redis with [publish]
+    svc = app[SERVICE]
+    runner = GuardedRunner(app, cfg, access_log=None, handle_signals=False)
     await runner.setup()
-    app[SERVICE].metrics.watch("trimtab_connections_open", lambda: runner.server.open_connections)
-    _descriptors_for(app[SERVICE].config.service.max_connections)
-    site = web.TCPSite(runner, host, port, backlog=1024)
-    await site.start()
+    svc.metrics.watch("trimtab_connections_open", lambda: runner.server.open_connections)
+    _descriptors_for(cfg.max_connections)
+    fleet = None
+    if scorers == 0:  # one process: the learner answers the configured address itself
+        site = web.TCPSite(runner, cfg.host, cfg.port, backlog=1024)
+        await site.start()
+        bound = runner.addresses[0]
+    else:
+        # the learner answers on a local socket only (an abstract Unix name: no file to leave behind);
+        # the scorers take the configured address and forward what is not a score (docs/architecture.md)
+        listener = _tcp_listener(cfg.host, cfg.port)
+        bound = listener.getsockname()
+        local = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        name = f"\0trimtab-learner-{os.getpid()}-{secrets.token_hex(6)}"
+        local.bind(name)
+        site = web.SockSite(runner, local, backlog=1024)
+        await site.start()
+        fleet = svc.fleet = ScorerFleet(scorers, ScorerSetup(
+            config=config.resolved(), listen_fd=listener.fileno(), model_fd=publisher.fd, life_fd=-1,
+            learner=name, parent=os.getpid()))
+        fleet.start()
+        svc.metrics.watch("trimtab_scorers_running", lambda: len(fleet.pids))
+        svc.metrics.watch("trimtab_scorer_restarts", lambda: fleet.restarts)
+        lower_learner_priority()  # after the fleet's thread started: replacements keep the scorers' priority
+        log.info("learner on local socket unix:@%s; %d scorer processes on the address", name[1:], scorers)
     # the objects alive now (modules, the recovered engine) never become garbage: move them out of
     # the collector's sight, and collect less often, so a full collection does not stall scoring for
     # 100+ ms while bodies are parsed (common practice for latency-bound CPython services)
     gc.collect()
     gc.freeze()
     gc.set_threshold(20_000, 20, 50)
-    bound = runner.addresses[0]
-    log.info("listening on http://%s:%d (data in %s)", bound[0], bound[1], app[SERVICE].data_dir)
+    log.info("listening on http://%s:%d (data in %s)", bound[0], bound[1], svc.data_dir)
     stop = asyncio.Event()
-    loop = asyncio.get_running_loop()
     for sig in (signal.SIGINT, signal.SIGTERM):
         loop.add_signal_handler(sig, stop.set)
     await stop.wait()
+    if fleet is not None:  # scorers first: what they forward meanwhile is still answered here
+        log.info("stopping the scorer processes")
+        await asyncio.to_thread(fleet.stop)
+        listener.close()
     log.info("stopping: draining the queue and writing a final checkpoint")
     await runner.cleanup()
+    if svc.publisher is not None:
+        svc.publisher.close()
     log.info("stopped")
 
 
 def serve_main(args) -> int:
-    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D]``."""
+    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D] [--role learner|scorer]``."""
     config = load_config(args.config)
     upd = {k: v for k, v in (("host", args.host), ("port", args.port), ("data_dir", args.data_dir)) if v is not None}
     if upd:
@@ -250,10 +313,14 @@ def serve_main(args) -> int:
     if not _loopback(config.service.host) and token is None:
         log.warning("binding %s (not loopback) with service.auth = \"none\": anyone who can reach it can write",
                     config.service.host)
+    if getattr(args, "role", "learner") == "scorer":  # another machine: the model published to Redis
+        from service.http.remote_scorer import remote_scorer_main
+
+        return remote_scorer_main(config, token)
     if hasattr(signal, "SIGXFSZ"):  # a file-size limit is then a write error (503 with the reason), not a kill
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     # the journal thread runs some Python (row binding); a short switch interval keeps it from holding
     # the GIL for the default 5 ms while a score request waits
     sys.setswitchinterval(0.0005)
-    asyncio.run(_serve(create_app(config, token=token), config.service.host, config.service.port))
+    asyncio.run(_serve(config, token))
     return 0

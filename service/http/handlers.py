@@ -31,6 +31,7 @@ from service.errors import (JournalUnavailable, NotReady, PayloadTooLarge, Unaut
                             error_response)
 from service.events import Event, EventValidator, Rejection, check_id, parse_ndjson
 from service.ingest import Ingestor, encode_event
+from service.publish import take_snapshot
 from service.storage.labels import LabelStore
 from service.http.health import model_health
 from service.http.metrics import CONTENT_TYPE, Metrics
@@ -41,7 +42,7 @@ from service.http.schemas import EventIn, EventsBody, LabelIn, LabelsBody, Rollb
 __all__ = [
     "OPEN_WRITES", "SERVICE", "Service", "get_checkpoints", "health", "healthz", "incidents", "merge_incidents",
     "metrics", "model_card", "openapi", "page", "page_asset", "post_checkpoint", "post_events", "post_labels",
-    "readyz", "rollback", "score",
+    "readyz", "rollback", "score", "serving_model",
 ]
 
 _INLINE_BYTES = 16 * 1024  # bodies parsed on the loop itself (~100 events, < 1 ms); larger ones on a thread
@@ -60,6 +61,8 @@ class Service:
     labels: LabelStore | None = None
     recovery_error: str | None = None
     feed: object | None = None  # service.feeds.redis_stream.StreamFeed when [feed] is configured
+    publisher: object | None = None  # service.publish.SnapshotPublisher when scorer processes run
+    fleet: object | None = None  # service.http.fleet.ScorerFleet when scorer processes run
     bodies: BodyReader | None = None  # set by the app factory
     card_lock: asyncio.Lock = field(default_factory=asyncio.Lock)
     card_cache: tuple | None = None  # (state key, serialized model card)
@@ -319,6 +322,23 @@ async def model_card(request: web.Request) -> web.Response:
     return web.Response(body=body, content_type="application/json")
 
 
+async def serving_model(request: web.Request) -> web.Response:
+    """The serving model's version, layout, scaling and certificate summary (no coefficients): the
+    learner's current state here; a scorer answers the same route from the version it serves."""
+    svc = request.app[SERVICE]
+    _auth(svc, request, write=False)
+    ing = _ready(svc)
+
+    def build() -> dict:
+        with ing.lock:
+            snap = take_snapshot(ing.engine, ing.applied_seq, ing.published_version)
+        out = snap.describe()
+        out["unpublished_changes"] = ing.publisher is not None and ing.unpublished
+        return out
+
+    return _json(await asyncio.to_thread(build))
+
+
 def _card_bytes(svc: Service, ing: Ingestor) -> bytes:
     with ing.lock:
         card = _card(svc, ing)
@@ -470,7 +490,8 @@ async def readyz(request: web.Request) -> web.Response:
     if ing.fault is not None:
         raise JournalUnavailable(f"not ready: writes are refused: {ing.fault}", where="storage")
     return _json({"ready": True, "applied_seq": ing.applied_seq, "recovery": ing.recovery,
-                  "feed": svc.feed.status() if svc.feed is not None else None})
+                  "feed": svc.feed.status() if svc.feed is not None else None,
+                  "redis_publication": getattr(svc.publisher, "redis_status", lambda: None)()})
 
 
 async def openapi(request: web.Request) -> web.Response:

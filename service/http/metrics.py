@@ -48,6 +48,11 @@ class Metrics:
                  "timer since ready (work on the loop itself)"),
                 ("trimtab_body_bytes_in_flight", "Request body bytes claimed by requests being answered"),
                 ("trimtab_connections_open", "Open client connections (trimtab serve only)"),
+                ("trimtab_published_version", "Publication number of the newest model published for the "
+                 "scorer processes (0: none, or no scorers)"),
+                ("trimtab_published_age_seconds", "Seconds since the newest model was published"),
+                ("trimtab_scorers_running", "Scorer processes running"),
+                ("trimtab_scorer_restarts", "Scorer processes started to replace one that exited"),
             )}
         self._children: dict = {}
 

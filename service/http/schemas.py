@@ -130,6 +130,9 @@ class IngestResponse(BaseModel):
 class Version(BaseModel):
     seq: int = Field(description="journal position the model had applied when it scored")
     updates: int = Field(description="SGD updates the model had made")
+    published: int | None = Field(None, description="publication number of the model a scorer process used "
+                                  "(absent when the learner answered)")
+    digest: str | None = Field(None, description="state digest of that published model (scorer processes)")
 
 
 class ScoreResponse(BaseModel):
@@ -228,6 +231,9 @@ def openapi_document(config, version: str) -> dict:
                                    True, ndjson=True)},
         "/v1/labels": {"post": _op("labels for events scored with remember", "LabelsBody", "IngestResponse", True)},
         "/v1/model": {"get": _op("model card", None, "Object", reads, (401, 503))},
+        "/v1/model/serving": {"get": _op("the serving model's version, layout, scaling and certificate summary "
+                                         "(a scorer process: the version it serves)", None, "Object", reads,
+                                         (401, 503))},
         "/v1/model/rollback": {"post": _op("roll the raw iterate back to the average", "RollbackRequest",
                                            "Object", True, (400, 401, 408, 413, 415, 422, 429, 503))},
         "/v1/checkpoints": {"get": _op("stored checkpoints", None, "Object", reads, (401, 503)),

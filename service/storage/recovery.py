@@ -156,4 +156,4 @@ def replay_rows(ing, rows: list[tuple]) -> None:
     ing.apply_events(events)
     with ing.lock:
         ing.applied_seq = rows[-1][0]
-        ing.view = serving_view(ing.engine, ing.applied_seq)
+        ing.set_view()

@@ -58,6 +58,8 @@ def toml_text(config) -> str:
             continue
         out.append(f"[{section}]")
         for k, v in values.items():
+            if v is None:  # TOML has no null: an unset key takes its default
+                continue
             out.append(f"{k} = {orjson.dumps(v).decode()}")
     return "\n".join(out) + "\n"
 
@@ -147,14 +149,14 @@ class ServerThread:
 
 
 class ServeProcess:
-    """``trimtab serve -c CONFIG --port 0`` in a subprocess; ``url`` once it logs where it listens.
+    """``trimtab serve -c CONFIG --port 0 [ARGS]`` in a subprocess; ``url`` once it logs where it listens.
 
     The subprocess has ``TOKEN`` in ``TRIMTAB_TEST_TOKEN`` unless ``env`` says otherwise.
     """
 
-    def __init__(self, config_path: Path, env: dict | None = None) -> None:
+    def __init__(self, config_path: Path, env: dict | None = None, args: tuple[str, ...] = ()) -> None:
         self.proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(config_path),
-                                      "--port", "0"], stderr=subprocess.PIPE, cwd=ROOT,
+                                      "--port", "0", *args], stderr=subprocess.PIPE, cwd=ROOT,
                                      env={**os.environ, TOKEN_ENV: TOKEN, **(env or {})})
         self.log: list[str] = []
         self.url = None

@@ -39,6 +39,10 @@ BAD = [
     ("bad-serve", '[monitor]\nserve = "best"', "monitor.serve", "averaged"),
     ("port-range", "[service]\nport = 70000", "service.port", "65535"),
     ("bad-journal-sync", '[service]\njournal_sync = "off"', "service.journal_sync", "full"),
+    ("scorers-negative", "[service]\nscorers = -1", "service.scorers", '"auto"'),
+    ("scorers-word", '[service]\nscorers = "many"', "service.scorers", '"auto"'),
+    ("scorers-fraction", "[service]\nscorers = 1.5", "service.scorers", "whole number"),
+    ("publish-every-negative", "[service]\npublish_every_ms = -2", "service.publish_every_ms", "greater than"),
     ("strongly-convex-no-l2", '[steps]\nrule = "strongly_convex"', "steps.rule", "l2 > 0"),
     ("strongly-convex-unbounded", '[steps]\nrule = "strongly_convex"\n[model]\nl2 = 0.01\n[constraint]\nset = "none"',
      "steps.rule", "bounded"),
@@ -47,6 +51,11 @@ BAD = [
     ("removed-key", "[monitor]\nconfirm_recent = 4", "monitor.confirm_recent", "unknown key"),
     ("bad-name", 'name = "my model!"', "name", "pattern"),
     ("feed-url", '[feed]\nsource = "http://127.0.0.1:6379"', "feed.source", "redis://"),
+    ("feed-claim-negative", "[feed]\nclaim_idle_ms = -1", "feed.claim_idle_ms", "greater than or equal to 0"),
+    ("feed-deliveries-zero", "[feed]\nmax_deliveries = 0", "feed.max_deliveries", "greater than or equal to 1"),
+    ("publish-url", '[publish]\nsource = "http://127.0.0.1:6379"', "publish.source", "redis://"),
+    ("publish-age-zero", "[publish]\nmax_model_age_s = 0", "publish.max_model_age_s", "greater than 0"),
+    ("publish-unknown", "[publish]\nmax_age = 3", "publish.max_age", "unknown key"),
 ]
 
 

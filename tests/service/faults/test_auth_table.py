@@ -27,6 +27,7 @@ DECISIONS = {
     ("POST", "/v1/checkpoints"): WRITE,
     ("POST", "/v1/score"): SCORE,
     ("GET", "/v1/model"): READ,
+    ("GET", "/v1/model/serving"): READ,
     ("GET", "/v1/checkpoints"): READ,
     ("GET", "/v1/incidents"): READ,
     ("GET", "/metrics"): READ,
