@@ -38,6 +38,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--host", default=None, help="override service.host")
     s.add_argument("--port", type=int, default=None, help="override service.port")
     s.add_argument("--data-dir", default=None, help="override service.data_dir")
+    s.add_argument("--start-from", default=None, metavar="DIR/NAME",
+                   help="start an empty data dir from the final state of a replay run (its folder, with state.bin)")
 
     r = sub.add_parser("replay", help="replay recorded feeds offline (-c ... --out) or into a service (--to)")
     r.add_argument("feeds", nargs="+", help="NDJSON, CSV or Parquet files (.gz allowed)")

@@ -28,6 +28,7 @@ import numpy as np
 import orjson
 
 from models import LinearModel, Outcome, Rows
+from models.binary_metrics import RunningBinaryMetrics, binary_metrics
 
 from service.baseline import Baseline
 from service.config import Config
@@ -113,6 +114,8 @@ class Engine:
         self._seg_loss = 0.0
         self._seg_n = 0
         self._seg_base = 0.0
+        self.nonfinite_losses = 0
+        self._tally = RunningBinaryMetrics() if self._binary else None
         window = config.monitor.window if self._share > 0.0 else 0
         self.baseline = Baseline(config.model.loss, window, huber_delta=config.model.huber_delta)
         self.trace: deque = deque(maxlen=trace_limit)
@@ -178,8 +181,12 @@ class Engine:
             nxt = self.model.process(rows, y, mode, out, serve=self.serving, start=i, max_learn=budget)
             seg = slice(i, nxt)
             learn = mode[seg] == 1
-            self._seg_loss += float(np.sum(out.loss[seg][learn]))
-            self._seg_n += int(np.count_nonzero(learn))
+            # a loss that overflowed (a feature of 1e300) is counted, never summed: one event must not
+            # turn a running figure into inf or NaN for the rest of the run
+            losses = out.loss[seg][learn]
+            finite = np.isfinite(losses)
+            self._seg_loss += float(np.sum(losses[finite]))
+            self._seg_n += int(np.count_nonzero(finite))
             self._since_check += int(np.count_nonzero(learn))
             self._seg_base += self.baseline.segment_loss(i, nxt)
             refused = int(np.count_nonzero(out.code[seg] == 2))
@@ -203,8 +210,13 @@ class Engine:
         self.held_out += held
         self.scored += n - learned - held
         lossed = out.loss[mode == 1]
-        self._loss_sum += float(np.sum(lossed))
-        self._loss_n += len(lossed)
+        finite = np.isfinite(lossed)
+        self._loss_sum += float(np.sum(lossed[finite]))
+        self._loss_n += int(np.count_nonzero(finite))
+        self.nonfinite_losses += len(lossed) - int(np.count_nonzero(finite))
+        if self._tally is not None:
+            pred, target = out.pred[mode == 1][finite], y[mode == 1][finite]
+            self._tally.update(target, pred)
         return Applied(out, first, learned, held, n - learned - held, int(np.count_nonzero(out.code == 2)), actions)
 
     def _check(self, event: int, ts: float, held: tuple | None = None) -> dict:
@@ -256,6 +268,20 @@ class Engine:
             return {"raw": None, "averaged": None}
         return self.monitor.holdout_losses(self.model)
 
+    def binary_metrics(self) -> dict | None:
+        """Accuracy at 0.5, ROC AUC, Brier score, log loss and base rate (:mod:`models.binary_metrics`) of
+        the serving iterate: ``progressive`` over the learned events (each scored before it was learned),
+        ``holdout`` on the monitor's held-out window now; ``None`` for a regression."""
+        if self._tally is None:
+            return None
+        held = None
+        if self.monitor is not None and len(self.monitor.window):
+            window = self.monitor.window
+            p = self.model.predict_rows(window.rows(), self.serving)
+            ok = np.isfinite(p)
+            held = binary_metrics(window.targets()[ok], p[ok]).to_dict()
+        return {"iterate": self.serving, "progressive": self._tally.result().to_dict(), "holdout": held}
+
     @property
     def warnings(self) -> list[str]:
         """Plain-words warnings for the model card and the report: the monitor's own (its ``warnings``,
@@ -274,7 +300,8 @@ class Engine:
 
     def counters(self) -> dict:
         return {"events": self.events, "learned": self.learned, "held_out": self.held_out, "scored": self.scored,
-                "refused": self.refused, "rejected": self.rejected, "progressive_loss": self.progressive_loss,
+                "refused": self.refused, "rejected": self.rejected, "nonfinite_losses": self.nonfinite_losses,
+                "progressive_loss": self.progressive_loss,
                 "baseline_progressive_loss": self.baseline.progressive_loss}
 
     # ---------------------------------------------------------------- state
@@ -291,6 +318,7 @@ class Engine:
             "baseline": orjson.dumps({k: [_exact(x) for x in v] if isinstance(v, list) else _exact(v)
                                       for k, v in self.baseline.state().items()}),
             "trace": orjson.dumps([_tagged(r) for r in self.trace], option=orjson.OPT_SERIALIZE_NUMPY),
+            "metrics": orjson.dumps({"binary": _tally_state(self._tally)}),
         }
         if self.monitor is not None:
             sections["monitor"] = self.monitor.to_bytes()
@@ -300,7 +328,7 @@ class Engine:
     def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:
         """An engine from :meth:`to_bytes`; :class:`CheckpointFormatError` (with the reason) for
         anything else, including a checkpoint of another format version or layout."""
-        parts = read_sections(blob, {"meta", "model", "counters", "baseline", "trace"}, frozenset({"monitor"}))
+        parts = read_sections(blob, _SECTIONS, frozenset({"monitor"}))
         meta = orjson.loads(parts["meta"])
         counters = orjson.loads(parts["counters"])
         if meta.get("state") != "engine" or list(counters) != list(STATE_COUNTERS):
@@ -317,18 +345,28 @@ class Engine:
         engine.baseline.load_state({k: [_unexact(x) for x in v] if isinstance(v, list) else _unexact(v)
                                     for k, v in orjson.loads(parts["baseline"]).items()})
         engine.trace.extend(_untagged(r) for r in orjson.loads(parts["trace"]))
+        binary = orjson.loads(parts["metrics"])["binary"]
+        if (binary is None) != (engine._tally is None):
+            raise CheckpointFormatError("checkpoint and config disagree on whether the task is binary")
+        if binary is not None:
+            engine._tally.load_state({k: _unexact(v) for k, v in binary.items()})
         return engine
 
     @staticmethod
     def checkpoint_position(blob: bytes) -> int | None:
         """The journal position recorded in a checkpoint's ``meta`` section (``None``: not recorded)."""
-        return orjson.loads(read_sections(blob, {"meta", "model", "counters", "baseline", "trace"},
-                                          frozenset({"monitor"}))["meta"]).get("position")
+        return orjson.loads(read_sections(blob, _SECTIONS, frozenset({"monitor"}))["meta"]).get("position")
 
 
 #: engine attributes a checkpoint holds; changing this tuple changes the state: bump FORMAT_VERSION
 STATE_COUNTERS = ("events", "learned", "held_out", "scored", "refused", "rejected", "_loss_sum", "_loss_n",
-                  "_since_check", "_seg_loss", "_seg_n", "_seg_base")
+                  "_since_check", "_seg_loss", "_seg_n", "_seg_base", "nonfinite_losses")
+#: the sections every engine checkpoint has (``monitor`` besides, when a monitor runs)
+_SECTIONS = frozenset({"meta", "model", "counters", "baseline", "trace", "metrics"})
+
+
+def _tally_state(tally: RunningBinaryMetrics | None) -> dict | None:
+    return None if tally is None else {k: _exact(v) for k, v in tally.state().items()}
 
 
 def _exact(value):

@@ -234,13 +234,19 @@ async def _serve(app: web.Application, host: str, port: int) -> None:
 
 
 def serve_main(args) -> int:
-    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D]``."""
+    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D] [--start-from DIR/NAME]``."""
     config = load_config(args.config)
     upd = {k: v for k, v in (("host", args.host), ("port", args.port), ("data_dir", args.data_dir)) if v is not None}
     if upd:
         config = config.model_copy(update={"service": config.service.model_copy(update=upd)})
     logging.basicConfig(level=logging.INFO, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
     token = resolve_token(config)  # exits 2 (config error) when writes would be open by accident
+    if getattr(args, "start_from", None):
+        from service.storage.promote import start_from
+
+        started = start_from(config, config.service.data_dir, args.start_from)
+        log.info("data dir %s starts from the replay state %s (state digest %s, %d events)", config.service.data_dir,
+                 started["source"], started["state_digest"], started["events"])
     if not _loopback(config.service.host) and token is None:
         log.warning("binding %s (not loopback) with service.auth = \"none\": anyone who can reach it can write",
                     config.service.host)

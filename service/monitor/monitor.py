@@ -166,6 +166,9 @@ class Monitor:
         reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
         usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference if reference > 0 else \
             np.ones(len(new), dtype=bool)
+        # a loss that overflowed (a feature of 1e300) says nothing about either iterate and would make
+        # both means inf or NaN: left out like garbage
+        usable &= np.isfinite(losses).all(axis=0)
         kept = losses if usable.all() else losses[:, usable]
         raw, avg = (kept.sum(axis=1) / kept.shape[1]).tolist() if kept.shape[1] else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing

@@ -102,6 +102,10 @@ class HeldOutWindow:
         """Forget the events held out before ``event`` (after a real change)."""
         self._keep_last(int(np.count_nonzero(self._events[self._lo:self._hi] >= event)))
 
+    def targets(self) -> np.ndarray:
+        """Targets of the kept events, oldest first (a copy)."""
+        return self._y[self._lo:self._hi].copy()
+
     def rows(self) -> Rows:
         """The window's rows, views of the buffers valid until the next :meth:`add` (``indptr`` points
         into the whole coordinate buffers, so it need not start at 0)."""

@@ -144,6 +144,29 @@ def _table(runs: list[dict]) -> str:
             + "</tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>")
 
 
+def _binary_table(runs: list[dict]) -> str:
+    """Accuracy at 0.5, ROC AUC, Brier score, log loss and base rate of the binary runs, progressive
+    (each event scored before it was learned) and on the held-out window at the end; empty without any."""
+    head = ["run", "figure", "events", "accuracy at 0.5", "ROC AUC", "Brier score", "log loss (nats)", "base rate"]
+    rows = []
+    for r in runs:
+        metrics = r.get("binary_metrics")
+        if not metrics:
+            continue
+        for where, label in (("progressive", "progressive"), ("holdout", "held-out window")):
+            m = metrics.get(where) or {}
+            cells = [r["name"], f"{label} ({metrics.get('iterate', '-')} iterate)", _num(m.get("count")),
+                     _num(m.get("accuracy")), _num(m.get("roc_auc")), _num(m.get("brier")), _num(m.get("log_loss")),
+                     _num(m.get("base_rate"))]
+            rows.append("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in cells) + "</tr>")
+    if not rows:
+        return ""
+    return ("<h3>Binary metrics</h3><div class='wide'><table><thead><tr>"
+            + "".join(f"<th>{html.escape(h)}</th>" for h in head) + "</tr></thead><tbody>" + "".join(rows)
+            + "</tbody></table></div><p><small>The progressive ROC AUC is that of the probabilities rounded down "
+              "to 1/1024 (a running histogram); the held-out one is exact.</small></p>")
+
+
 def _warnings(run: dict) -> str:
     items = run.get("warnings") or []
     if not items:
@@ -227,7 +250,7 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     page = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>trimtab replay report</title>"
             f"<style>{_STYLE}</style></head><body><h1>Replay report</h1><p>Feed: <code>{feeds}</code></p>"
             f"<div class='caution'><b>Caution.</b> {html.escape(caution)}</div>"
-            f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}<ul>{verdicts}</ul>{compare}"
+            f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}{_binary_table(runs)}<ul>{verdicts}</ul>{compare}"
             f"{''.join(sections)}<p><small>Loss is the config's loss; the baseline predicts the running mean "
             "of the target (the base rate for a binary task) from the events learned so far, scored on the same "
             "events. Events count the valid events applied, in feed order. Model coordinates are the features "
