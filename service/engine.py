@@ -29,6 +29,7 @@ import orjson
 
 from models import LinearModel, Outcome, Rows
 from models.binary_metrics import RunningBinaryMetrics, binary_metrics
+from models.losses import overflowed
 
 from service.baseline import Baseline
 from service.config import Config
@@ -181,10 +182,10 @@ class Engine:
             nxt = self.model.process(rows, y, mode, out, serve=self.serving, start=i, max_learn=budget)
             seg = slice(i, nxt)
             learn = mode[seg] == 1
-            # a loss that overflowed (a feature of 1e300) is counted, never summed: one event must not
-            # turn a running figure into inf or NaN for the rest of the run
+            # a loss that overflowed (a feature of 1e300, a model that blew up) is counted, never summed:
+            # one event must not turn a running figure into inf or NaN for the rest of the run
             losses = out.loss[seg][learn]
-            finite = np.isfinite(losses)
+            finite = ~overflowed(losses)
             self._seg_loss += float(np.sum(losses[finite]))
             self._seg_n += int(np.count_nonzero(finite))
             self._since_check += int(np.count_nonzero(learn))
@@ -210,7 +211,7 @@ class Engine:
         self.held_out += held
         self.scored += n - learned - held
         lossed = out.loss[mode == 1]
-        finite = np.isfinite(lossed)
+        finite = ~overflowed(lossed)
         self._loss_sum += float(np.sum(lossed[finite]))
         self._loss_n += int(np.count_nonzero(finite))
         self.nonfinite_losses += len(lossed) - int(np.count_nonzero(finite))
@@ -267,6 +268,30 @@ class Engine:
         if self.monitor is None:
             return {"raw": None, "averaged": None}
         return self.monitor.holdout_losses(self.model)
+
+    def divergence(self) -> str | None:
+        """Why the model blew up, or ``None``: a weight norm that is not finite or above
+        :data:`DIVERGED_NORM`, a loss (held-out of the serving iterate, progressive) that is not
+        finite or above :data:`DIVERGED_FACTOR` times the baseline's on the same events, or losses
+        that overflowed on more than :data:`DIVERGED_OVERFLOW_SHARE` of the learned events."""
+        norms = {it: self.model.norm(it) for it in ("raw", "averaged")}
+        if any(not (math.isfinite(v) and v <= DIVERGED_NORM) for v in norms.values()):
+            return (f"the weights blew up (norm of the raw iterate {norms['raw']:.3g}, of the averaged "
+                    f"{norms['averaged']:.3g})")
+        held, base_held = self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
+        for where, loss, base in (("held-out", held, base_held),
+                                  ("progressive", self.progressive_loss, self.baseline.progressive_loss)):
+            if loss is None:
+                continue
+            if not math.isfinite(loss):
+                return f"the {where} loss is not finite ({loss})"
+            if base is not None and base > 0 and loss > DIVERGED_FACTOR * base:
+                return (f"the {where} loss blew up: {loss:.4g}, {loss / base:.3g} times the baseline's "
+                        f"{base:.4g} on the same events")
+        overflowed = self.nonfinite_losses
+        if overflowed >= 10 and overflowed > DIVERGED_OVERFLOW_SHARE * max(self.learned, 1):
+            return f"the loss overflowed on {overflowed:,} of {self.learned:,} learned events"
+        return None
 
     def binary_metrics(self) -> dict | None:
         """Accuracy at 0.5, ROC AUC, Brier score, log loss and base rate (:mod:`models.binary_metrics`) of
@@ -357,6 +382,16 @@ class Engine:
         """The journal position recorded in a checkpoint's ``meta`` section (``None``: not recorded)."""
         return orjson.loads(read_sections(blob, _SECTIONS, frozenset({"monitor"}))["meta"]).get("position")
 
+
+#: a weight norm above this (in scaled coordinates) has blown up; common practice, no published
+#: source: far above any model of targets in sensible units, far below where squares overflow
+DIVERGED_NORM = 1e100
+#: a loss this many times the baseline's (a constant prediction) on the same events has blown up;
+#: common practice, no published source
+DIVERGED_FACTOR = 1e3
+#: overflowing losses on more than this share of the learned events mean a blown-up model, not a few
+#: absurd feature values; common practice, no published source
+DIVERGED_OVERFLOW_SHARE = 0.01
 
 #: engine attributes a checkpoint holds; changing this tuple changes the state: bump FORMAT_VERSION
 STATE_COUNTERS = ("events", "learned", "held_out", "scored", "refused", "rejected", "_loss_sum", "_loss_n",

@@ -115,7 +115,8 @@ class HeldOutWindow:
         """Every kept event's loss under the raw and the averaged iterate of ``model``."""
         spec = model.spec
         margins = model.score_rows_both(self.rows())
-        losses = loss_value(spec.loss, margins, self._y[self._lo:self._hi], spec.huber_delta)
+        with np.errstate(over="ignore", invalid="ignore"):  # a blown-up model's losses are inf: the monitor counts them
+            losses = loss_value(spec.loss, margins, self._y[self._lo:self._hi], spec.huber_delta)
         return WindowLosses(losses, self._events[self._lo:self._hi])
 
     # ---------------------------------------------------------------- state

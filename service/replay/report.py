@@ -58,13 +58,16 @@ def _events(items: list[dict], limit: int = 6) -> str:
 
 
 def verdict(run: dict) -> str:
-    """A plain-words verdict: ``stable``, or what the monitor did and when.
+    """A plain-words verdict: ``stable``, ``diverged`` (the weights or the loss blew up, ``run["diverged"]``
+    says how), or what the monitor did and when.
 
     >>> verdict({"rollbacks": [], "restarts": [], "serving": "averaged"})
     'stable: no rollbacks or restarts; serving the averaged iterate'
     >>> verdict({"rollbacks": [{"event": 31608}, {"event": 32398}], "restarts": [{"event": 57800}],
     ...          "serving": "raw"})
     'rolled back 2 times at events 31,608, 32,398; restarted at event 57,800 after a change; serving the raw iterate'
+    >>> verdict({"rollbacks": [{"event": 500}], "restarts": [], "diverged": "the weights blew up", "serving": "raw"})
+    'diverged: the weights blew up; rolled back 1 time at event 500; serving the raw iterate'
     """
     rb, rs = run.get("rollbacks") or [], run.get("restarts") or []
     parts = []
@@ -78,7 +81,9 @@ def verdict(run: dict) -> str:
         parts.append(f"{len(bursts)} burst{'s' if len(bursts) > 1 else ''} of rejected input "
                      f"(from event {bursts[0]['event']:,})")
     ignored = run.get("alarms_ignored") or 0
-    if ignored:
+    if run.get("diverged"):
+        parts.insert(0, f"diverged: {run['diverged']}")
+    elif ignored:
         parts.insert(0, f"not stable: {ignored:,} rollback alarm{'s' if ignored > 1 else ''} that this config "
                         "does not act on (rollback = false)")
     elif _doubts(run):
@@ -235,7 +240,8 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     for run, res, plot in zip(runs, results, plots):
         unit = _LOSS_UNITS.get(res.get("loss", "squared"), "loss")
         png = run_figure(run, plot, unit, notes)
-        acted = " acted" if run.get("rollbacks") or run.get("restarts") or run.get("warnings") else ""
+        acted = " acted" if (run.get("rollbacks") or run.get("restarts") or run.get("warnings")
+                             or run.get("diverged")) else ""
         sections.append(
             f"<h2>{html.escape(run['name'])}</h2><p class='verdict{acted}'>{html.escape(run['verdict'])}</p>"
             f"{_warnings(run)}{_img(png, 'loss with its baseline, step size and distance of run ' + run['name'])}"

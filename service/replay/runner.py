@@ -206,6 +206,7 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "nonfinite_losses": engine.nonfinite_losses,
         "progressive_loss": engine.progressive_loss, "holdout_loss": engine.holdout_losses(),
         "binary_metrics": engine.binary_metrics(),
+        "diverged": engine.divergence(),
         "baseline_loss": engine.baseline_loss, "warnings": engine.warnings, "serving": engine.serving,
         "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
         "rollbacks": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "rollback"],

@@ -149,12 +149,13 @@ class ServerThread:
 class ServeProcess:
     """``trimtab serve -c CONFIG --port 0`` in a subprocess; ``url`` once it logs where it listens.
 
-    The subprocess has ``TOKEN`` in ``TRIMTAB_TEST_TOKEN`` unless ``env`` says otherwise.
+    The subprocess has ``TOKEN`` in ``TRIMTAB_TEST_TOKEN`` unless ``env`` says otherwise; ``args`` are
+    more ``trimtab serve`` options.
     """
 
-    def __init__(self, config_path: Path, env: dict | None = None) -> None:
+    def __init__(self, config_path: Path, env: dict | None = None, args: tuple = ()) -> None:
         self.proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(config_path),
-                                      "--port", "0"], stderr=subprocess.PIPE, cwd=ROOT,
+                                      "--port", "0", *args], stderr=subprocess.PIPE, cwd=ROOT,
                                      env={**os.environ, TOKEN_ENV: TOKEN, **(env or {})})
         self.log: list[str] = []
         self.url = None
