@@ -35,7 +35,8 @@ def _config(**sections):
 
 
 def _binary_events(engine: Engine, n: int):
-    lines = gzip.open(BINARY_FEED).read().split(b"\n")[:n]
+    with gzip.open(BINARY_FEED) as f:
+        lines = f.read().split(b"\n")[:n]
     events, _, _ = parse_ndjson(b"\n".join(lines), engine.validator)
     return events
 
