@@ -259,8 +259,11 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
             f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}{_binary_table(runs)}<ul>{verdicts}</ul>{compare}"
             f"{''.join(sections)}<p><small>Loss is the config's loss; the baseline predicts the running mean "
             "of the target (the base rate for a binary task) from the events learned so far, scored on the same "
-            "events. Events count the valid events applied, in feed order. Model coordinates are the features "
-            "after warm-up scaling. Details: summary.json and &lt;run&gt;/model.json next to this page."
+            "events. Events count the valid events applied, in feed order. &lt;run&gt;/model.json gives both iterates "
+            "in the features' own units (raw, averaged) and in the model's coordinates, the numeric features after "
+            "warm-up scaling (scaled), with the scaling's means and deviations (docs/model-file.md). Details: "
+            "summary.json and &lt;run&gt;/model.json next to this page; &lt;run&gt;/state.bin is the final state "
+            "that trimtab serve --start-from &lt;out&gt;/&lt;run&gt; continues from."
             "</small></p></body></html>")
     path = out / "report.html"
     path.write_text(page, encoding="utf-8")
