@@ -193,3 +193,23 @@ def test_replay_config_loads_back(replayed):
     resolved = load_config(tmp / "guarded.toml").resolved()
     learning = json.loads((run / "state.json").read_text())["learning"]
     assert learning == {k: resolved[k] for k in learning}
+
+
+def test_start_from_a_sweep_run_folder_reads_its_config_toml(replayed, tmp_path):
+    """A sweep keeps a run as ``state.bin``, a ``state.json`` without the settings, and ``config.toml``
+    (docs/sweeps.md): the settings are then read from ``config.toml``."""
+    from service.storage.promote import start_from
+
+    tmp, run, summary = replayed
+    folder = tmp_path / "sweep-run"
+    folder.mkdir()
+    blob = (run / "state.bin").read_bytes()
+    (folder / "state.bin").write_bytes(blob)
+    meta = json.loads((run / "state.json").read_text())
+    (folder / "state.json").write_text(json.dumps({k: meta[k] for k in ("format", "sha256", "bytes", "state_digest")}
+                                                  | {"config": "config.toml"}))
+    (folder / "config.toml").write_text((tmp / "guarded.toml").read_text())
+    config = _config(tmp_path / "live")
+    started = start_from(config, tmp_path / "live", folder)
+    assert started["state_digest"] == summary["state_digest"]
+    assert (tmp_path / "live" / "trimtab.sqlite").is_file()
