@@ -15,8 +15,10 @@ iterates and applies the rules of ``rules.py``, where each is documented, in thi
 
 Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
 times the median of the older window events (a garbage target is far from both iterates, so it
-says nothing about which is better). Rejected-input bursts (a share above ``reject_burst_share`` of
-the last ``reject_window`` events) are incidents too, one per burst.
+says nothing about which is better), and losses that overflowed (not finite or above
+``models.losses.OVERFLOW_LOSS``), which would turn both means into inf or NaN. Rejected-input
+bursts (a share above ``reject_burst_share`` of the last ``reject_window`` events) are incidents
+too, one per burst.
 Every change of the step scale (a rollback multiplies it by ``rollback_shrink``, a restart sets it
 back to 1) is an incident of its own, ``step_scale``, with the old and the new factor.
 """
