@@ -288,9 +288,9 @@ class Engine:
             if base is not None and base > 0 and loss > DIVERGED_FACTOR * base:
                 return (f"the {where} loss blew up: {loss:.4g}, {loss / base:.3g} times the baseline's "
                         f"{base:.4g} on the same events")
-        overflowed = self.nonfinite_losses
-        if overflowed >= 10 and overflowed > DIVERGED_OVERFLOW_SHARE * max(self.learned, 1):
-            return f"the loss overflowed on {overflowed:,} of {self.learned:,} learned events"
+        count = self.nonfinite_losses
+        if count >= 10 and count > DIVERGED_OVERFLOW_SHARE * max(self.learned, 1):
+            return f"the loss overflowed on {count:,} of {self.learned:,} learned events"
         return None
 
     def binary_metrics(self) -> dict | None:
