@@ -61,7 +61,6 @@ def _score(client: Client, events: list[dict]) -> list[float]:
     return got["scores"]
 
 
-@pytest.mark.slow
 def test_replay_then_serve_start_from_keeps_digest_and_scores(replayed, monkeypatch):
     """Must-show 4 and 5: the service started from the run shows the run's state digest and scores
     exactly as the run's final state does offline; the by-hand numpy example of docs/model-file.md

@@ -11,11 +11,16 @@ from __future__ import annotations
 
 import gzip
 import json
+import shutil
 from pathlib import Path
 
 import pytest
 
 from service.cli import main
+from service.config import load_config
+from service.engine import Engine
+from service.events import EventValidator
+from tests.service.replay.test_promote import _doc_example
 from tests.service.replay.test_report import check_report
 
 ROOT = Path(__file__).resolve().parents[3]
@@ -41,7 +46,7 @@ window = 1000
 
 
 @pytest.mark.slow
-def test_binary_report_shows_metrics_and_a_diverged_verdict(tmp_path):
+def test_binary_report_shows_metrics_and_a_diverged_verdict(tmp_path, monkeypatch):
     with gzip.open(BINARY_FEED) as f:
         lines = f.read().split(b"\n")[:4000]
     feed = tmp_path / "binary.ndjson"
@@ -64,3 +69,15 @@ def test_binary_report_shows_metrics_and_a_diverged_verdict(tmp_path):
             assert 0.0 <= m["accuracy"] <= 1.0 and 0.0 <= m["brier"] <= 1.0
             for key in ("roc_auc", "brier", "log_loss", "base_rate"):
                 assert f"{m[key]:.4g}" in text  # the page's 4 significant digits
+
+    # docs/model-file.md's example on a binary model (its logistic link): the run's folder under the
+    # name the example reads, against the probability the run's final state gives
+    (tmp_path / "replay-out").mkdir()
+    shutil.copytree(out / "sound", tmp_path / "replay-out" / "guarded")
+    monkeypatch.chdir(tmp_path)
+    namespace: dict = {"__name__": "model_file_example"}
+    exec(compile(_doc_example(), "docs/model-file.md", "exec"), namespace)
+    config = load_config(sound)
+    engine = Engine.from_bytes(config, (out / "sound" / "state.bin").read_bytes())
+    expected, _ = engine.score([EventValidator(config).validate({"features": namespace["event"]}).features])
+    assert 0.0 < namespace["score"] < 1.0 and abs(namespace["score"] - float(expected[0])) <= 1e-12
