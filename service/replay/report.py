@@ -179,12 +179,18 @@ def _warnings(run: dict) -> str:
     return "<ul class='warnings'>" + "".join(f"<li><b>Warning:</b> {html.escape(w)}</li>" for w in items) + "</ul>"
 
 
+def _scale(incident: dict) -> str:
+    """A rollback's new step scale (every later step is multiplied by it)."""
+    scale = incident.get("step_scale")
+    return f" (later steps now scaled by {scale:.4g})" if isinstance(scale, (int, float)) else ""
+
+
 def _incidents(run: dict) -> str:
     items = [("rollback", i) for i in run.get("rollbacks") or []] + [("restart", i) for i in run.get("restarts") or []]
     items.sort(key=lambda t: t[1]["event"])
     if not items:
         return "<p>No rollbacks or restarts.</p>"
-    lis = "".join(f"<li><b>{kind}</b> at event {i['event']:,}: {html.escape(i['reason'])}</li>"
+    lis = "".join(f"<li><b>{kind}</b> at event {i['event']:,}: {html.escape(i['reason'])}{_scale(i)}</li>"
                   for kind, i in items[:40])
     more = f"<li>... and {len(items) - 40} more (see summary.json)</li>" if len(items) > 40 else ""
     return f"<ul>{lis}{more}</ul>"

@@ -209,7 +209,8 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "diverged": engine.divergence(),
         "baseline_loss": engine.baseline_loss, "warnings": engine.warnings, "serving": engine.serving,
         "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
-        "rollbacks": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "rollback"],
+        "rollbacks": [{"event": i["event"], "reason": i["reason"], "step_scale": i["evidence"].get("step_scale")}
+                      for i in incidents if i["kind"] == "rollback"],
         "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],
         "rejected_bursts": [{"event": i["event"], "reason": i["reason"]} for i in incidents
                             if i["kind"] == "rejected_burst"],

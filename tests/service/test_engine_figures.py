@@ -182,6 +182,8 @@ def test_every_step_scale_change_is_an_incident(blown_up):
         assert ev["new"] == (1.0 if action["kind"] == "restart" else pytest.approx(0.5 * scale, rel=1e-12))
         assert action["kind"] != "rollback" or ev["new"] == action["evidence"]["step_scale"]
         scale = ev["new"]
+    rollbacks = [c["evidence"]["new"] for c in changes if c["evidence"]["cause"] == "rollback"]
+    assert [r["step_scale"] for r in blown_up["summary"]["rollbacks"]] == rollbacks
 
 
 def test_an_operator_rollback_records_the_step_scale():
