@@ -271,23 +271,24 @@ class Engine:
 
     def divergence(self) -> str | None:
         """Why the model blew up, or ``None``: a weight norm that is not finite or above
-        :data:`DIVERGED_NORM`, a loss (held-out of the serving iterate, progressive) that is not
-        finite or above :data:`DIVERGED_FACTOR` times the baseline's on the same events, or losses
-        that overflowed on more than :data:`DIVERGED_OVERFLOW_SHARE` of the learned events."""
+        :data:`DIVERGED_NORM`, a loss (held-out of the serving iterate; progressive without a held-out
+        window) that is not finite or above :data:`DIVERGED_FACTOR` times the baseline's on the same
+        events, or losses that overflowed on more than :data:`DIVERGED_OVERFLOW_SHARE` of the learned
+        events."""
         norms = {it: self.model.norm(it) for it in ("raw", "averaged")}
         if any(not (math.isfinite(v) and v <= DIVERGED_NORM) for v in norms.values()):
             return (f"the weights blew up (norm of the raw iterate {norms['raw']:.3g}, of the averaged "
                     f"{norms['averaged']:.3g})")
-        held, base_held = self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
-        for where, loss, base in (("held-out", held, base_held),
-                                  ("progressive", self.progressive_loss, self.baseline.progressive_loss)):
-            if loss is None:
-                continue
-            if not math.isfinite(loss):
-                return f"the {where} loss is not finite ({loss})"
-            if base is not None and base > 0 and loss > DIVERGED_FACTOR * base:
-                return (f"the {where} loss blew up: {loss:.4g}, {loss / base:.3g} times the baseline's "
-                        f"{base:.4g} on the same events")
+        # the held-out figure says how the model does now; the progressive one (the whole run, early
+        # events included) stands in only without a held-out window, as for :attr:`warnings`
+        where, loss, base = "held-out", self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
+        if loss is None:
+            where, loss, base = "progressive", self.progressive_loss, self.baseline.progressive_loss
+        if loss is not None and not math.isfinite(loss):
+            return f"the {where} loss is not finite ({loss})"
+        if loss is not None and base is not None and base > 0 and loss > DIVERGED_FACTOR * base:
+            return (f"the {where} loss blew up: {loss:.4g}, {loss / base:.3g} times the baseline's "
+                    f"{base:.4g} on the same events")
         count = self.nonfinite_losses
         if count >= 10 and count > DIVERGED_OVERFLOW_SHARE * max(self.learned, 1):
             return f"the loss overflowed on {count:,} of {self.learned:,} learned events"
