@@ -312,7 +312,8 @@ class Engine:
     def warnings(self) -> list[str]:
         """Plain-words warnings for the model card and the report: the monitor's own (its ``warnings``,
         when it has any), then a model that does no better than the baseline: on the held-out window
-        when there is one (the current models), else over the progressive losses of the whole run."""
+        when there is one (the current models), else over the progressive losses of the whole run; and
+        learned events whose loss overflowed (left out of the running figures)."""
         out = list(getattr(self.monitor, "warnings", None) or [])
         model, base = self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
         where = "on the held-out window"
@@ -322,6 +323,9 @@ class Engine:
         if model is not None and base is not None and not model < base:
             out.append(f"the model's loss {where} ({model:.4g}) is not below the baseline's ({base:.4g}, "
                        f"{_BASELINE_WORDS[self._binary]}): it does no better than a constant prediction")
+        if self.nonfinite_losses:
+            out.append(f"the loss of {self.nonfinite_losses:,} learned event(s) overflowed and is left out of the "
+                       "progressive figures (nonfinite_losses)")
         return out
 
     def counters(self) -> dict:

@@ -136,6 +136,7 @@ def test_an_overflowing_loss_is_counted_not_summed():
     assert engine.nonfinite_losses == int(huge.sum()) >= 1
     assert engine.progressive_loss == pytest.approx(float(np.mean(losses[~huge])), rel=1e-12)
     assert math.isfinite(engine.progressive_loss)
+    assert any(f"{engine.nonfinite_losses:,} learned event(s) overflowed" in w for w in engine.warnings)
 
 
 def _blowup_config(monitor: dict | None = None):
