@@ -9,7 +9,6 @@ Feeds: the invented cold-chain demo feeds of ``replay_data/`` (regression and bi
 from __future__ import annotations
 
 import gzip
-import json
 import math
 from pathlib import Path
 
