@@ -19,10 +19,21 @@ import numpy as np
 
 from .errors import code_of
 
-__all__ = ["LOSSES", "loss_code", "loss_derivative", "loss_value"]
+__all__ = ["LOSSES", "OVERFLOW_LOSS", "loss_code", "loss_derivative", "loss_value", "overflowed"]
 
 #: Valid loss names and the integer code the compiled kernels use.
 LOSSES = {"squared": 0, "huber": 1, "logistic": 2}
+
+
+#: A loss above this (or not finite) has overflowed for the purpose of running figures: it is counted,
+#: never summed, so that a sum of up to 1e150 of them stays finite (float64 ends near 1.8e308). Common
+#: practice, no published source: no loss of a sensible model on sensible units comes near it.
+OVERFLOW_LOSS = 1e150
+
+
+def overflowed(losses: np.ndarray) -> np.ndarray:
+    """``True`` where a loss is NaN, infinite or above :data:`OVERFLOW_LOSS` (NaN counts: it is not a loss)."""
+    return ~(np.abs(losses) <= OVERFLOW_LOSS)
 
 
 def loss_code(name: str) -> int:

@@ -41,6 +41,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--role", choices=("learner", "scorer"), default="learner",
                    help="learner (default): the single writer, with its local scorers; scorer: serve /v1/score "
                         "from the model a learner publishes to Redis ([publish] section), on any machine")
+    s.add_argument("--start-from", default=None, metavar="DIR/NAME",
+                   help="start an empty data dir from the final state of a replay run (its folder, with state.bin)")
 
     r = sub.add_parser("replay", help="replay recorded feeds offline (-c ... --out) or into a service (--to)")
     r.add_argument("feeds", nargs="+", help="NDJSON, CSV or Parquet files (.gz allowed)")

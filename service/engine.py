@@ -28,6 +28,8 @@ import numpy as np
 import orjson
 
 from models import LinearModel, Outcome, Rows
+from models.binary_metrics import RunningBinaryMetrics, binary_metrics
+from models.losses import overflowed
 
 from service.baseline import Baseline
 from service.config import Config
@@ -113,6 +115,8 @@ class Engine:
         self._seg_loss = 0.0
         self._seg_n = 0
         self._seg_base = 0.0
+        self.nonfinite_losses = 0
+        self._tally = RunningBinaryMetrics() if self._binary else None
         window = config.monitor.window if self._share > 0.0 else 0
         self.baseline = Baseline(config.model.loss, window, huber_delta=config.model.huber_delta)
         self.trace: deque = deque(maxlen=trace_limit)
@@ -178,8 +182,12 @@ class Engine:
             nxt = self.model.process(rows, y, mode, out, serve=self.serving, start=i, max_learn=budget)
             seg = slice(i, nxt)
             learn = mode[seg] == 1
-            self._seg_loss += float(np.sum(out.loss[seg][learn]))
-            self._seg_n += int(np.count_nonzero(learn))
+            # a loss that overflowed (a feature of 1e300, a model that blew up) is counted, never summed:
+            # one event must not turn a running figure into inf or NaN for the rest of the run
+            losses = out.loss[seg][learn]
+            finite = ~overflowed(losses)
+            self._seg_loss += float(np.sum(losses[finite]))
+            self._seg_n += int(np.count_nonzero(finite))
             self._since_check += int(np.count_nonzero(learn))
             self._seg_base += self.baseline.segment_loss(i, nxt)
             refused = int(np.count_nonzero(out.code[seg] == 2))
@@ -203,8 +211,13 @@ class Engine:
         self.held_out += held
         self.scored += n - learned - held
         lossed = out.loss[mode == 1]
-        self._loss_sum += float(np.sum(lossed))
-        self._loss_n += len(lossed)
+        finite = ~overflowed(lossed)
+        self._loss_sum += float(np.sum(lossed[finite]))
+        self._loss_n += int(np.count_nonzero(finite))
+        self.nonfinite_losses += len(lossed) - int(np.count_nonzero(finite))
+        if self._tally is not None:
+            pred, target = out.pred[mode == 1][finite], y[mode == 1][finite]
+            self._tally.update(target, pred)
         return Applied(out, first, learned, held, n - learned - held, int(np.count_nonzero(out.code == 2)), actions)
 
     def _check(self, event: int, ts: float, held: tuple | None = None) -> dict:
@@ -256,11 +269,51 @@ class Engine:
             return {"raw": None, "averaged": None}
         return self.monitor.holdout_losses(self.model)
 
+    def divergence(self) -> str | None:
+        """Why the model blew up, or ``None``: a weight norm that is not finite or above
+        :data:`DIVERGED_NORM`, a loss (held-out of the serving iterate; progressive without a held-out
+        window) that is not finite or above :data:`DIVERGED_FACTOR` times the baseline's on the same
+        events, or losses that overflowed on more than :data:`DIVERGED_OVERFLOW_SHARE` of the learned
+        events."""
+        norms = {it: self.model.norm(it) for it in ("raw", "averaged")}
+        if any(not (math.isfinite(v) and v <= DIVERGED_NORM) for v in norms.values()):
+            return (f"the weights blew up (norm of the raw iterate {norms['raw']:.3g}, of the averaged "
+                    f"{norms['averaged']:.3g})")
+        # the held-out figure says how the model does now; the progressive one (the whole run, early
+        # events included) stands in only without a held-out window, as for :attr:`warnings`
+        where, loss, base = "held-out", self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
+        if loss is None:
+            where, loss, base = "progressive", self.progressive_loss, self.baseline.progressive_loss
+        if loss is not None and not math.isfinite(loss):
+            return f"the {where} loss is not finite ({loss})"
+        if loss is not None and base is not None and base > 0 and loss > DIVERGED_FACTOR * base:
+            return (f"the {where} loss blew up: {loss:.4g}, {loss / base:.3g} times the baseline's "
+                    f"{base:.4g} on the same events")
+        count = self.nonfinite_losses
+        if count >= 10 and count > DIVERGED_OVERFLOW_SHARE * max(self.learned, 1):
+            return f"the loss overflowed on {count:,} of {self.learned:,} learned events"
+        return None
+
+    def binary_metrics(self) -> dict | None:
+        """Accuracy at 0.5, ROC AUC, Brier score, log loss and base rate (:mod:`models.binary_metrics`) of
+        the serving iterate: ``progressive`` over the learned events (each scored before it was learned),
+        ``holdout`` on the monitor's held-out window now; ``None`` for a regression."""
+        if self._tally is None:
+            return None
+        held = None
+        if self.monitor is not None and len(self.monitor.window):
+            window = self.monitor.window
+            p = self.model.predict_rows(window.rows(), self.serving)
+            ok = np.isfinite(p)
+            held = binary_metrics(window.targets()[ok], p[ok]).to_dict()
+        return {"iterate": self.serving, "progressive": self._tally.result().to_dict(), "holdout": held}
+
     @property
     def warnings(self) -> list[str]:
         """Plain-words warnings for the model card and the report: the monitor's own (its ``warnings``,
         when it has any), then a model that does no better than the baseline: on the held-out window
-        when there is one (the current models), else over the progressive losses of the whole run."""
+        when there is one (the current models), else over the progressive losses of the whole run; and
+        learned events whose loss overflowed (left out of the running figures)."""
         out = list(getattr(self.monitor, "warnings", None) or [])
         model, base = self.holdout_losses().get(self.serving), self.baseline.holdout_loss()
         where = "on the held-out window"
@@ -270,11 +323,15 @@ class Engine:
         if model is not None and base is not None and not model < base:
             out.append(f"the model's loss {where} ({model:.4g}) is not below the baseline's ({base:.4g}, "
                        f"{_BASELINE_WORDS[self._binary]}): it does no better than a constant prediction")
+        if self.nonfinite_losses:
+            out.append(f"the loss of {self.nonfinite_losses:,} learned event(s) overflowed and is left out of the "
+                       "progressive figures (nonfinite_losses)")
         return out
 
     def counters(self) -> dict:
         return {"events": self.events, "learned": self.learned, "held_out": self.held_out, "scored": self.scored,
-                "refused": self.refused, "rejected": self.rejected, "progressive_loss": self.progressive_loss,
+                "refused": self.refused, "rejected": self.rejected, "nonfinite_losses": self.nonfinite_losses,
+                "progressive_loss": self.progressive_loss,
                 "baseline_progressive_loss": self.baseline.progressive_loss}
 
     # ---------------------------------------------------------------- state
@@ -291,6 +348,7 @@ class Engine:
             "baseline": orjson.dumps({k: [_exact(x) for x in v] if isinstance(v, list) else _exact(v)
                                       for k, v in self.baseline.state().items()}),
             "trace": orjson.dumps([_tagged(r) for r in self.trace], option=orjson.OPT_SERIALIZE_NUMPY),
+            "metrics": orjson.dumps({"binary": _tally_state(self._tally)}),
         }
         if self.monitor is not None:
             sections["monitor"] = self.monitor.to_bytes()
@@ -300,7 +358,7 @@ class Engine:
     def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:
         """An engine from :meth:`to_bytes`; :class:`CheckpointFormatError` (with the reason) for
         anything else, including a checkpoint of another format version or layout."""
-        parts = read_sections(blob, {"meta", "model", "counters", "baseline", "trace"}, frozenset({"monitor"}))
+        parts = read_sections(blob, _SECTIONS, frozenset({"monitor"}))
         meta = orjson.loads(parts["meta"])
         counters = orjson.loads(parts["counters"])
         if meta.get("state") != "engine" or list(counters) != list(STATE_COUNTERS):
@@ -317,18 +375,38 @@ class Engine:
         engine.baseline.load_state({k: [_unexact(x) for x in v] if isinstance(v, list) else _unexact(v)
                                     for k, v in orjson.loads(parts["baseline"]).items()})
         engine.trace.extend(_untagged(r) for r in orjson.loads(parts["trace"]))
+        binary = orjson.loads(parts["metrics"])["binary"]
+        if (binary is None) != (engine._tally is None):
+            raise CheckpointFormatError("checkpoint and config disagree on whether the task is binary")
+        if binary is not None:
+            engine._tally.load_state({k: _unexact(v) for k, v in binary.items()})
         return engine
 
     @staticmethod
     def checkpoint_position(blob: bytes) -> int | None:
         """The journal position recorded in a checkpoint's ``meta`` section (``None``: not recorded)."""
-        return orjson.loads(read_sections(blob, {"meta", "model", "counters", "baseline", "trace"},
-                                          frozenset({"monitor"}))["meta"]).get("position")
+        return orjson.loads(read_sections(blob, _SECTIONS, frozenset({"monitor"}))["meta"]).get("position")
 
+
+#: a weight norm above this (in scaled coordinates) has blown up; common practice, no published
+#: source: far above any model of targets in sensible units, far below where squares overflow
+DIVERGED_NORM = 1e100
+#: a loss this many times the baseline's (a constant prediction) on the same events has blown up;
+#: common practice, no published source
+DIVERGED_FACTOR = 1e3
+#: overflowing losses on more than this share of the learned events mean a blown-up model, not a few
+#: absurd feature values; common practice, no published source
+DIVERGED_OVERFLOW_SHARE = 0.01
 
 #: engine attributes a checkpoint holds; changing this tuple changes the state: bump FORMAT_VERSION
 STATE_COUNTERS = ("events", "learned", "held_out", "scored", "refused", "rejected", "_loss_sum", "_loss_n",
-                  "_since_check", "_seg_loss", "_seg_n", "_seg_base")
+                  "_since_check", "_seg_loss", "_seg_n", "_seg_base", "nonfinite_losses")
+#: the sections every engine checkpoint has (``monitor`` besides, when a monitor runs)
+_SECTIONS = frozenset({"meta", "model", "counters", "baseline", "trace", "metrics"})
+
+
+def _tally_state(tally: RunningBinaryMetrics | None) -> dict | None:
+    return None if tally is None else {k: _exact(v) for k, v in tally.state().items()}
 
 
 def _exact(value):

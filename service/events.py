@@ -10,12 +10,13 @@ or ``events[3].target``) and whose message says why. The rules:
 * ``id`` is a string of 1 to 256 bytes of UTF-8 without control characters (:func:`check_id`),
   required when ``target`` is present;
 * ``ts`` is a finite number or an RFC 3339 string;
-* ``features`` is an object; a declared numeric feature is a finite number, a boolean or null; a
+* ``features`` is an object; a declared numeric feature is a finite number of magnitude at most
+  :data:`MAX_MAGNITUDE` (1e100), a boolean or null; a
   declared categorical feature is a string of at most ``features.max_value_bytes`` bytes of UTF-8,
   an integer in the signed 64-bit range (an integral float counts as its integer; orjson reads a
   JSON integer past 64 bits as a double, so the range is checked on that double), a boolean or
   null; an undeclared feature is rejected or dropped (``features.unknown``);
-* ``target`` is a finite number (regression) or 0/1/true/false (binary);
+* ``target`` is a finite number of magnitude at most 1e100 (regression) or 0/1/true/false (binary);
 * a line is at most ``service.max_line_bytes`` bytes, valid UTF-8 (the rejection gives the byte
   offset of the first bad byte) and valid JSON (NaN and Infinity literals are not JSON).
 
@@ -115,6 +116,23 @@ def check_id(ident, where: str) -> str:
     return ident
 
 
+#: the largest magnitude a numeric feature or a regression target may have: far beyond any measured
+#: quantity (a timestamp in nanoseconds is 2e18), far below where a square overflows (1.3e154), so a
+#: value never turns a running figure (the warm-up scaling, the baseline, a loss sum) into inf or NaN.
+#: Common practice, no published source.
+MAX_MAGNITUDE = 1e100
+
+
+def _checked(x: float, where: str) -> float:
+    """``x`` when it is finite and at most :data:`MAX_MAGNITUDE` in magnitude; else the rejection."""
+    if not math.isfinite(x):
+        raise InvalidInput("not a finite number", where=where)
+    if abs(x) > MAX_MAGNITUDE:
+        raise InvalidInput(f"magnitude {abs(x):.3g} is above the {MAX_MAGNITUDE:g} limit (its square would overflow "
+                           "the running figures)", where=where)
+    return x
+
+
 def _number(v) -> float:
     """``float(v)``, with an integer too large for a double reported as not finite."""
     try:
@@ -166,10 +184,7 @@ class EventValidator:
             raise InvalidInput(f"binary target must be 0, 1, true or false, got {_repr(v)}", where=where)
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise InvalidInput(f"expected a number, got {_kind(v)}", where=where)
-        x = _number(v)
-        if not math.isfinite(x):
-            raise InvalidInput("not a finite number", where=where)
-        return x
+        return _checked(_number(v), where)
 
     def validate(self, obj, where: str = "") -> Event:
         """Check one parsed event; raise :class:`InvalidInput` naming where and why."""
@@ -199,10 +214,7 @@ class EventValidator:
                 if v is None or v is True or v is False:
                     clean[name] = None if v is None else float(v)
                 elif isinstance(v, (int, float)):
-                    x = _number(v)
-                    if not math.isfinite(x):
-                        raise InvalidInput("not a finite number", where=f"{p}features.{name}")
-                    clean[name] = x
+                    clean[name] = _checked(_number(v), f"{p}features.{name}")
                 else:
                     raise InvalidInput(f"expected a number, got {_kind(v)}", where=f"{p}features.{name}")
             elif name in self.categorical:

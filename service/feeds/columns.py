@@ -25,7 +25,7 @@ from models import FeatureMapper, Rows
 from models.features import categorical_text
 
 from service.engine import PreparedBatch
-from service.events import CONTROL_CHARS, INT64_MAX, INT64_MIN, MAX_ID_BYTES  # the validator's rules
+from service.events import CONTROL_CHARS, INT64_MAX, INT64_MIN, MAX_ID_BYTES, MAX_MAGNITUDE  # the validator's rules
 from service.idhash import hash_ids, holdout_fractions
 
 __all__ = ["Columns", "Prepared", "from_arrow", "holdout_share", "take_prepared", "to_prepared"]
@@ -90,8 +90,9 @@ def _floats(arr, slow: np.ndarray, *, allow_bool: bool) -> np.ndarray:
         return np.full(len(arr), np.nan)
     x = arr.to_numpy(zero_copy_only=False).astype(np.float64)
     x[null] = np.nan
-    # non-finite numbers are rejected by the validator; -0.0 is ambiguous (JSON "-0" is the integer 0)
-    slow |= ~null & (~np.isfinite(x) | ((x == 0.0) & np.signbit(x)))
+    # non-finite and huge numbers are rejected by the validator (a huge ts passes there, on the slow
+    # path); -0.0 is ambiguous (JSON "-0" is the integer 0)
+    slow |= ~null & (~(np.abs(x) <= MAX_MAGNITUDE) | ((x == 0.0) & np.signbit(x)))
     return x
 
 

@@ -303,7 +303,7 @@ async def _serve(config: Config, token: str | None) -> None:
 
 
 def serve_main(args) -> int:
-    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D] [--role learner|scorer]``."""
+    """``trimtab serve -c CONFIG [--host H] [--port P] [--data-dir D] [--role learner|scorer] [--start-from DIR/NAME]``."""
     config = load_config(args.config)
     upd = {k: v for k, v in (("host", args.host), ("port", args.port), ("data_dir", args.data_dir)) if v is not None}
     if upd:
@@ -317,6 +317,12 @@ def serve_main(args) -> int:
         from service.http.remote_scorer import remote_scorer_main
 
         return remote_scorer_main(config, token)
+    if getattr(args, "start_from", None):
+        from service.storage.promote import start_from
+
+        started = start_from(config, config.service.data_dir, args.start_from)
+        log.info("data dir %s starts from the replay state %s (state digest %s, %d events)", config.service.data_dir,
+                 started["source"], started["state_digest"], started["events"])
     if hasattr(signal, "SIGXFSZ"):  # a file-size limit is then a write error (503 with the reason), not a kill
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     # the journal thread runs some Python (row binding); a short switch interval keeps it from holding

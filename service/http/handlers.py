@@ -358,12 +358,15 @@ CAUTION = ("Scores are decision support. The certificate bounds the expected sub
 def _card(svc: Service, ing: Ingestor) -> dict:
     eng = ing.engine
     m = eng.model
+    diverged = eng.divergence()
     return ({
         "name": svc.config.name, "config": svc.config.resolved(), "updates": m.n_updates,
         "updates_since_restart": m.updates_since_restart, "counters": eng.counters(), "serving": eng.serving,
         "norms": {"raw": m.norm("raw"), "averaged": m.norm("averaged")}, "distance": m.distance(),
         "step_scale": m.step_scale, "grad_bound": m.grad_bound, "certificate": eng.certificate(),
-        "holdout_loss": eng.holdout_losses(), "baseline_loss": eng.baseline_loss, "warnings": eng.warnings,
+        "holdout_loss": eng.holdout_losses(), "baseline_loss": eng.baseline_loss,
+        "binary_metrics": eng.binary_metrics(), "diverged": diverged,
+        "warnings": eng.warnings + ([f"diverged: {diverged}"] if diverged else []),
         "state_digest": eng.state_digest,
         "journal": {"applied_seq": ing.applied_seq, "checkpoint_seq": ing.checkpoint_seq},
         "coefficients": {"raw": m.coefficients("raw"), "averaged": m.coefficients("averaged")},

@@ -15,8 +15,12 @@ iterates and applies the rules of ``rules.py``, where each is documented, in thi
 
 Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
 times the median of the older window events (a garbage target is far from both iterates, so it
-says nothing about which is better). Rejected-input bursts (a share above ``reject_burst_share`` of
-the last ``reject_window`` events) are incidents too, one per burst.
+says nothing about which is better), and losses that overflowed (not finite or above
+``models.losses.OVERFLOW_LOSS``), which would turn both means into inf or NaN. Rejected-input
+bursts (a share above ``reject_burst_share`` of the last ``reject_window`` events) are incidents
+too, one per burst.
+Every change of the step scale (a rollback multiplies it by ``rollback_shrink``, a restart sets it
+back to 1) is an incident of its own, ``step_scale``, with the old and the new factor.
 """
 
 from __future__ import annotations
@@ -28,6 +32,7 @@ from dataclasses import asdict
 import numpy as np
 
 from models import LinearModel, Rows
+from models.losses import overflowed
 from models.snapshot import pack, unpack
 
 from service.config import MonitorConfig
@@ -166,6 +171,9 @@ class Monitor:
         reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
         usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference if reference > 0 else \
             np.ones(len(new), dtype=bool)
+        # a loss that overflowed (a feature of 1e300, :data:`models.losses.OVERFLOW_LOSS`) would make both
+        # means inf or NaN: left out like garbage
+        usable &= ~overflowed(losses).any(axis=0)
         kept = losses if usable.all() else losses[:, usable]
         raw, avg = (kept.sum(axis=1) / kept.shape[1]).tolist() if kept.shape[1] else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
@@ -224,7 +232,7 @@ class Monitor:
                 self._trusted, self._trusted_event = copy_model(model), int(event)
             return False
         restore = self._trusted is not None and not refused
-        shrink = cfg.rollback_shrink
+        shrink, before = cfg.rollback_shrink, model.step_scale
         if restore:  # the shrink compounds: the copy's steps are scaled to the current ones times the shrink
             shrink *= model.step_scale / self._trusted.step_scale
             model = self._restored = copy_model(self._trusted)
@@ -236,6 +244,7 @@ class Monitor:
             evidence.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, distance=fig.distance,
                             allowance=fig.allowance, held_out=int(np.count_nonzero(fig.usable)))
         self._incident("rollback", event, ts, reason, evidence)
+        self._step_scale_changed(event, ts, before, model.step_scale, "rollback")
         record["action"] = "rollback"
         return True
 
@@ -262,6 +271,7 @@ class Monitor:
             self._detector.rearm()
 
     def _restart(self, model: LinearModel, event: int, ts, evidence: dict) -> None:
+        before = model.step_scale
         model.restart()
         self.window.drop_before(evidence["alarm_event"])
         state = self.state
@@ -274,6 +284,7 @@ class Monitor:
                        + (f"medians; {evidence['above']} of {evidence['n']} fresh events above the old median"
                           if evidence["test"] == "sign" else f"means of {evidence['n']} fresh events, Welch test")
                        + f", p = {evidence['p']:.2g}): the feed changed", evidence)
+        self._step_scale_changed(event, ts, before, model.step_scale, "restart")
 
     def _boundary_rule(self, model: LinearModel, event: int, ts) -> None:
         if not (self._ball and self._radius):
@@ -289,9 +300,21 @@ class Monitor:
         return model
 
     def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request") -> None:
+        before = model.step_scale
         model.rollback(self.cfg.rollback_shrink)
         self.state.worse_streak = 0
         self._incident("rollback", event, None, reason, {"step_scale": model.step_scale})
+        self._step_scale_changed(event, None, before, model.step_scale, "rollback")
+
+    def _step_scale_changed(self, event: int, ts, old: float, new: float, cause: str) -> None:
+        """An incident for every change of the factor on later steps (a rollback multiplies it by
+        ``rollback_shrink``, a restart sets it back to 1), with the old and the new factor."""
+        if old == new:
+            return
+        why = (f"a rollback multiplies every later step by {self.cfg.rollback_shrink:g}" if cause == "rollback"
+               else "a restart re-warms the step schedule at full size")
+        self._incident("step_scale", event, ts, f"step scale {old:.6g} -> {new:.6g}: {why}",
+                       {"old": old, "new": new, "cause": cause})
 
     def _incident(self, kind: str, event: int, ts, reason: str, evidence: dict) -> None:
         self.incidents.append({"kind": kind, "event": int(event), "ts": ts, "reason": reason,

@@ -106,6 +106,10 @@ class HeldOutWindow:
         """Forget the events held out before ``event`` (after a real change)."""
         self._keep_last(int(np.count_nonzero(self._events[self._lo:self._hi] >= event)))
 
+    def targets(self) -> np.ndarray:
+        """Targets of the kept events, oldest first (a copy)."""
+        return self._y[self._lo:self._hi].copy()
+
     def rows(self) -> Rows:
         """The window's rows, views of the buffers valid until the next :meth:`add` (``indptr`` points
         into the whole coordinate buffers, so it need not start at 0)."""
@@ -115,7 +119,8 @@ class HeldOutWindow:
         """Every kept event's loss under the raw and the averaged iterate of ``model``."""
         spec = model.spec
         margins = model.score_rows_both(self.rows())
-        losses = loss_value(spec.loss, margins, self._y[self._lo:self._hi], spec.huber_delta)
+        with np.errstate(over="ignore", invalid="ignore"):  # a blown-up model's losses are inf: the monitor counts them
+            losses = loss_value(spec.loss, margins, self._y[self._lo:self._hi], spec.huber_delta)
         return WindowLosses(losses, self._events[self._lo:self._hi])
 
     # ---------------------------------------------------------------- state

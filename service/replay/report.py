@@ -58,13 +58,16 @@ def _events(items: list[dict], limit: int = 6) -> str:
 
 
 def verdict(run: dict) -> str:
-    """A plain-words verdict: ``stable``, or what the monitor did and when.
+    """A plain-words verdict: ``stable``, ``diverged`` (the weights or the loss blew up, ``run["diverged"]``
+    says how), or what the monitor did and when.
 
     >>> verdict({"rollbacks": [], "restarts": [], "serving": "averaged"})
     'stable: no rollbacks or restarts; serving the averaged iterate'
     >>> verdict({"rollbacks": [{"event": 31608}, {"event": 32398}], "restarts": [{"event": 57800}],
     ...          "serving": "raw"})
     'rolled back 2 times at events 31,608, 32,398; restarted at event 57,800 after a change; serving the raw iterate'
+    >>> verdict({"rollbacks": [{"event": 500}], "restarts": [], "diverged": "the weights blew up", "serving": "raw"})
+    'diverged: the weights blew up; rolled back 1 time at event 500; serving the raw iterate'
     """
     rb, rs = run.get("rollbacks") or [], run.get("restarts") or []
     parts = []
@@ -78,7 +81,9 @@ def verdict(run: dict) -> str:
         parts.append(f"{len(bursts)} burst{'s' if len(bursts) > 1 else ''} of rejected input "
                      f"(from event {bursts[0]['event']:,})")
     ignored = run.get("alarms_ignored") or 0
-    if ignored:
+    if run.get("diverged"):
+        parts.insert(0, f"diverged: {run['diverged']}")
+    elif ignored:
         parts.insert(0, f"not stable: {ignored:,} rollback alarm{'s' if ignored > 1 else ''} that this config "
                         "does not act on (rollback = false)")
     elif _doubts(run):
@@ -144,6 +149,29 @@ def _table(runs: list[dict]) -> str:
             + "</tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>")
 
 
+def _binary_table(runs: list[dict]) -> str:
+    """Accuracy at 0.5, ROC AUC, Brier score, log loss and base rate of the binary runs, progressive
+    (each event scored before it was learned) and on the held-out window at the end; empty without any."""
+    head = ["run", "figure", "events", "accuracy at 0.5", "ROC AUC", "Brier score", "log loss (nats)", "base rate"]
+    rows = []
+    for r in runs:
+        metrics = r.get("binary_metrics")
+        if not metrics:
+            continue
+        for where, label in (("progressive", "progressive"), ("holdout", "held-out window")):
+            m = metrics.get(where) or {}
+            cells = [r["name"], f"{label} ({metrics.get('iterate', '-')} iterate)", _num(m.get("count")),
+                     _num(m.get("accuracy")), _num(m.get("roc_auc")), _num(m.get("brier")), _num(m.get("log_loss")),
+                     _num(m.get("base_rate"))]
+            rows.append("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in cells) + "</tr>")
+    if not rows:
+        return ""
+    return ("<h3>Binary metrics</h3><div class='wide'><table><thead><tr>"
+            + "".join(f"<th>{html.escape(h)}</th>" for h in head) + "</tr></thead><tbody>" + "".join(rows)
+            + "</tbody></table></div><p><small>The progressive ROC AUC is that of the probabilities rounded down "
+              "to 1/1024 (a running histogram); the held-out one is exact.</small></p>")
+
+
 def _warnings(run: dict) -> str:
     items = run.get("warnings") or []
     if not items:
@@ -151,12 +179,18 @@ def _warnings(run: dict) -> str:
     return "<ul class='warnings'>" + "".join(f"<li><b>Warning:</b> {html.escape(w)}</li>" for w in items) + "</ul>"
 
 
+def _scale(incident: dict) -> str:
+    """A rollback's new step scale (every later step is multiplied by it)."""
+    scale = incident.get("step_scale")
+    return f" (later steps now scaled by {scale:.4g})" if isinstance(scale, (int, float)) else ""
+
+
 def _incidents(run: dict) -> str:
     items = [("rollback", i) for i in run.get("rollbacks") or []] + [("restart", i) for i in run.get("restarts") or []]
     items.sort(key=lambda t: t[1]["event"])
     if not items:
         return "<p>No rollbacks or restarts.</p>"
-    lis = "".join(f"<li><b>{kind}</b> at event {i['event']:,}: {html.escape(i['reason'])}</li>"
+    lis = "".join(f"<li><b>{kind}</b> at event {i['event']:,}: {html.escape(i['reason'])}{_scale(i)}</li>"
                   for kind, i in items[:40])
     more = f"<li>... and {len(items) - 40} more (see summary.json)</li>" if len(items) > 40 else ""
     return f"<ul>{lis}{more}</ul>"
@@ -212,7 +246,8 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     for run, res, plot in zip(runs, results, plots):
         unit = _LOSS_UNITS.get(res.get("loss", "squared"), "loss")
         png = run_figure(run, plot, unit, notes)
-        acted = " acted" if run.get("rollbacks") or run.get("restarts") or run.get("warnings") else ""
+        acted = " acted" if (run.get("rollbacks") or run.get("restarts") or run.get("warnings")
+                             or run.get("diverged")) else ""
         sections.append(
             f"<h2>{html.escape(run['name'])}</h2><p class='verdict{acted}'>{html.escape(run['verdict'])}</p>"
             f"{_warnings(run)}{_img(png, 'loss with its baseline, step size and distance of run ' + run['name'])}"
@@ -227,11 +262,14 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     page = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>trimtab replay report</title>"
             f"<style>{_STYLE}</style></head><body><h1>Replay report</h1><p>Feed: <code>{feeds}</code></p>"
             f"<div class='caution'><b>Caution.</b> {html.escape(caution)}</div>"
-            f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}<ul>{verdicts}</ul>{compare}"
+            f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}{_binary_table(runs)}<ul>{verdicts}</ul>{compare}"
             f"{''.join(sections)}<p><small>Loss is the config's loss; the baseline predicts the running mean "
             "of the target (the base rate for a binary task) from the events learned so far, scored on the same "
-            "events. Events count the valid events applied, in feed order. Model coordinates are the features "
-            "after warm-up scaling. Details: summary.json and &lt;run&gt;/model.json next to this page."
+            "events. Events count the valid events applied, in feed order. &lt;run&gt;/model.json gives both iterates "
+            "in the features' own units (raw, averaged) and in the model's coordinates, the numeric features after "
+            "warm-up scaling (scaled), with the scaling's means and deviations (docs/model-file.md). Details: "
+            "summary.json and &lt;run&gt;/model.json next to this page; &lt;run&gt;/state.bin is the final state "
+            "that trimtab serve --start-from &lt;out&gt;/&lt;run&gt; continues from."
             "</small></p></body></html>")
     path = out / "report.html"
     path.write_text(page, encoding="utf-8")

@@ -3,7 +3,9 @@
 ``trimtab replay FEED... -c CONFIG [-c CONFIG ...] --out DIR`` reads the feeds in order (bounded
 chunks, see :mod:`service.feeds.files`), drops duplicate ids as the live service does, applies every
 chunk with :class:`~service.engine.Engine` (replay is only a different event source) and writes
-``DIR/summary.json``, ``DIR/<name>/model.json`` and ``DIR/report.html`` (README "Replay outputs").
+``DIR/summary.json``, ``DIR/<name>/model.json`` (:mod:`service.model_file`), ``DIR/<name>/state.bin`` with
+``state.json`` (the final state, which ``trimtab serve --start-from DIR/<name>`` starts from, see
+:mod:`service.storage.promote`) and ``DIR/report.html`` (README "Replay outputs").
 
 Each run is deterministic: the same feeds under the same config give the same ``state_digest``,
 whether the run is alone or beside others. Several configs run in parallel processes (forkserver
@@ -100,7 +102,7 @@ def _reader(pairs, out: queue.Queue, stop: threading.Event) -> None:
 
 
 def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0, counts: _Counts | None = None,
-               config_path: str | None = None, keep_state: bool = False, chunk_source=None) -> dict:
+               config_path: str | None = None, keep_state: bool = True, chunk_source=None) -> dict:
     """Replay ``feeds`` (paths, in order) under ``config``; return the run's results.
 
     ``workers`` threads parse ahead of the engine (0: one per core). ``chunk_source``, when given, is
@@ -108,10 +110,12 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
     for a config that prepares events the same way (a sweep's worker reuses them across runs).
 
     Returns ``{"summary": RUN, "model": model.json content, "trace": {key: list}, "incidents": [...]}``,
-    plus ``"state"`` (:meth:`Engine.to_bytes`, the final state) with ``keep_state=True``.
+    plus, with ``keep_state`` (the default), ``"state"`` (:meth:`Engine.to_bytes`, the final state in the
+    checkpoint format) and ``"config"`` (for :func:`service.storage.promote.write_run_state`).
     """
     from service.feeds.columns import take_prepared
     from service.engine import Engine
+    from service.model_file import model_file
     from service.idhash import IdSet
 
     engine = Engine(config, trace_limit=None)
@@ -171,12 +175,12 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
     summary = _summary(engine, config, feeds, config_path, seconds)
     summary.update(rejected=n_rejected, duplicates=n_dups, rejected_by_reason=dict(sorted(by_reason.items())),
                    bad_lines=bad, duplicate_lines=dups)
-    model = {"name": config.name, "state_digest": summary["state_digest"], "serving": engine.serving,
-             "raw": engine.model.coefficients("raw"), "averaged": engine.model.coefficients("averaged")}
+    model = model_file(engine, config)
     out = {"summary": summary, "model": model, "trace": trace, "incidents": _clean(engine.incidents),
            "loss": config.model.loss}
     if keep_state:
         out["state"] = engine.to_bytes()
+        out["config"] = config
     return out
 
 
@@ -199,10 +203,14 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "name": config.name, "config": config_path, "feed": feeds[0] if len(feeds) == 1 else feeds,
         "events": engine.events, "learned": engine.learned, "held_out": engine.held_out,
         "scored_only": engine.scored, "refused": engine.refused, "rejected": 0, "duplicates": 0,
+        "nonfinite_losses": engine.nonfinite_losses,
         "progressive_loss": engine.progressive_loss, "holdout_loss": engine.holdout_losses(),
+        "binary_metrics": engine.binary_metrics(),
+        "diverged": engine.divergence(),
         "baseline_loss": engine.baseline_loss, "warnings": engine.warnings, "serving": engine.serving,
         "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
-        "rollbacks": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "rollback"],
+        "rollbacks": [{"event": i["event"], "reason": i["reason"], "step_scale": i["evidence"].get("step_scale")}
+                      for i in incidents if i["kind"] == "rollback"],
         "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],
         "rejected_bursts": [{"event": i["event"], "reason": i["reason"]} for i in incidents
                             if i["kind"] == "rejected_burst"],
@@ -287,9 +295,12 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
 
 def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool = True, notes=None,
                   caution: str | None = None, painter=None) -> Path:
-    """Write ``summary.json``, ``<name>/model.json`` and (unless ``report=False``) ``report.html``
+    """Write ``summary.json``, ``<name>/model.json``, ``<name>/state.bin`` and ``state.json`` (for results
+    that carry their state) and (unless ``report=False``) ``report.html``
     (with ``caution``, or the general caution of :data:`service.replay.report.CAUTION`), drawn by
     ``painter`` (a :class:`service.replay.report.Painter` started earlier) or a fresh one."""
+    from service.storage.promote import write_run_state
+
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     feeds = [str(f) for f in feeds]
@@ -299,6 +310,8 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
         folder = out / r["summary"]["name"]
         folder.mkdir(exist_ok=True)
         (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
+        if "state" in r and "config" in r:  # the final state, for trimtab serve --start-from DIR/NAME
+            write_run_state(folder, r["state"], r["summary"], r["config"])
     (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
     if report:
         from service.replay.report import CAUTION, draw_in_child

@@ -29,8 +29,9 @@ from models import SnapshotError
 __all__ = ["FORMAT_VERSION", "MAGIC", "CheckpointFormatError", "read_sections", "write_sections"]
 
 MAGIC = b"TRIMTAB-CHECKPOINT\n"
-#: 1: sections meta, model, counters, trace and (with a monitor) monitor
-FORMAT_VERSION = 1
+#: 1: sections meta, model, counters, baseline, trace and (with a monitor) monitor;
+#: 2: a ``metrics`` section (the running binary metrics) and the counter ``nonfinite_losses``
+FORMAT_VERSION = 2
 
 _HEAD = struct.Struct("<II")
 _NAME = struct.Struct("<H")

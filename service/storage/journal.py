@@ -197,6 +197,17 @@ class Journal:
                                   "[model], [constraint], [steps], [averaging] or [monitor] differ); use a "
                                   "new data_dir", where="service.data_dir")
 
+    def mark_started_from(self, source: str) -> None:
+        """Record that this file's history starts from a state brought in from elsewhere (a replay's
+        final state, :mod:`service.storage.promote`): the journal alone cannot rebuild it."""
+        self._transaction(lambda db: db.execute("INSERT OR REPLACE INTO meta VALUES ('started_from', ?)", (source,)))
+
+    def started_from(self) -> str | None:
+        """What :meth:`mark_started_from` recorded (``None``: the history starts from an empty model)."""
+        with self._lock:
+            row = self._db.execute("SELECT value FROM meta WHERE key = 'started_from'").fetchone()
+        return None if row is None else row[0]
+
     def quick_check(self) -> list[str]:
         """``PRAGMA quick_check``: an empty list when the file is sound, else SQLite's findings."""
         with self._lock:

@@ -125,6 +125,13 @@ async def load_state(ing) -> tuple[Engine, int]:
         return engine, pos
     pruned = await ing.db(ing.journal.pruned_to)
     had = await ing.db(ing.journal.checkpoints)
+    source = await ing.db(ing.journal.started_from)
+    if source is not None:
+        reason = (f"no usable checkpoint, and this data dir started from {source}: the journal holds only the "
+                  "events after that state, so rebuilding from it would lose the state; the service stays not "
+                  "ready; restore a checkpoint or start a new data dir from the state again")
+        await ing.db(ing._incident, "history_incomplete", reason, {"started_from": source}, True)
+        raise RecoveryRefused(reason)
     if pruned != 0:
         where = f"up to position {pruned}" if pruned > 0 else "(up to an unknown position)"
         reason = (f"no usable checkpoint and the journal was pruned {where}: a model rebuilt from the rest "

@@ -151,7 +151,8 @@ class ServerThread:
 class ServeProcess:
     """``trimtab serve -c CONFIG --port 0 [ARGS]`` in a subprocess; ``url`` once it logs where it listens.
 
-    The subprocess has ``TOKEN`` in ``TRIMTAB_TEST_TOKEN`` unless ``env`` says otherwise.
+    The subprocess has ``TOKEN`` in ``TRIMTAB_TEST_TOKEN`` unless ``env`` says otherwise; ``args`` are
+    more ``trimtab serve`` options.
     """
 
     def __init__(self, config_path: Path, env: dict | None = None, args: tuple[str, ...] = ()) -> None:

@@ -180,7 +180,10 @@ def test_summary_and_model_files_follow_the_contract(tmp_path):
     assert set(run["holdout_loss"]) == {"raw", "averaged"}
     assert run["learned"] + run["held_out"] + run["scored_only"] == run["events"]
     assert sum(run["rejected_by_reason"].values()) == run["rejected"]
-    assert all(set(r) == {"event", "reason"} for r in run["rollbacks"] + run["restarts"])
+    assert all(set(r) == {"event", "reason", "step_scale"} for r in run["rollbacks"])
+    assert all(set(r) == {"event", "reason"} for r in run["restarts"])
+    assert run["diverged"] is None and run["binary_metrics"] is None and run["nonfinite_losses"] == 0
+    assert (tmp_path / "guarded" / "state.bin").is_file() and (tmp_path / "guarded" / "state.json").is_file()
     model = json.loads((tmp_path / "guarded" / "model.json").read_text())
     for it in ("raw", "averaged"):
         assert set(model[it]["numeric"]) == {"ambient_c", "compressor_duty", "door_open_s", "load_kg"}
