@@ -283,8 +283,9 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
     """Run every config over the feeds (in parallel processes when ``jobs > 1``); results in config order.
 
     The compiled kernels are made ready first (:mod:`service.warmup`; compiled on a first run,
-    loaded from the cache later), while the progress display says so: with several processes,
-    one compiles the model's kernels and another the reader's, at the same time.
+    loaded from the cache later), while the progress display says so: one process compiles the
+    learning kernel while another compiles the scorers and the reader's kernels (the run's worker
+    processes when ``jobs > 1``, a short-lived helper otherwise).
     """
     from service.warmup import COMPILING, LOADING, PARTS, is_cached, kernels_of, warm, warm_parallel
 
