@@ -34,12 +34,14 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["COMPILING", "LOADING", "PARTS", "is_cached", "kernels_of", "main", "warm", "warm_parallel"]
+__all__ = ["COMPILING", "LOADING", "PARTS", "STARTING", "is_cached", "kernels_of", "main", "warm", "warm_parallel"]
 
 #: What progress displays and ``/readyz`` say while the kernels compile.
 COMPILING = "compiling the learning kernels (first run only)"
 #: ... and while they load from numba's cache (fractions of a second on a quiet machine).
 LOADING = "loading the compiled kernels"
+#: The service's start-up states while its kernels get ready (``/readyz``), and what it says in them.
+STARTING = {"compiling": COMPILING, "loading": LOADING}
 #: The parts :func:`warm` knows.
 PARTS = ("learn", "read", "feeds")
 _ROOT = Path(__file__).resolve().parents[1]

@@ -30,7 +30,7 @@ from service.errors import (JournalUnavailable, NotReady, PayloadTooLarge, Unaut
                             error_response)
 from service.events import Event, EventValidator, Rejection, check_id, parse_ndjson
 from service.ingest import Ingestor, encode_event
-from service.warmup import COMPILING, LOADING
+from service.warmup import STARTING
 from service.storage.labels import LabelStore
 from service.http.metrics import CONTENT_TYPE, Metrics
 from service.http.schemas import EventIn, EventsBody, LabelIn, LabelsBody, RollbackRequest, ScoreRequest, envelope, parse_json
@@ -90,8 +90,8 @@ def _ready(svc: Service) -> Ingestor:
     if ing is None or not ing.ready:
         if svc.recovery_error or ing is None:
             state = svc.recovery_error or "starting"
-        elif ing.recovery["state"] in ("compiling", "loading"):
-            state = COMPILING if ing.recovery["state"] == "compiling" else LOADING
+        elif ing.recovery["state"] in STARTING:
+            state = STARTING[ing.recovery["state"]]
         else:
             r = ing.recovery
             state = (f"{r['state']} (checkpoint at position {r['checkpoint']}, "
