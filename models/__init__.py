@@ -8,8 +8,19 @@ from .certificate import certificate
 from .constraints import Constraint, project
 from .errors import InvalidInput, InvalidSettings, NonFiniteInput, SnapshotError, TrimtabError
 from .features import FeatureMapper, Rows, stable_hash64
-from .linear import ITERATES, LinearModel, Outcome
 from .spec import ModelSpec
+
+#: names served by :mod:`models.linear`, imported on first use: it loads numba (about 0.4 s of CPU),
+#: which settings, errors and the certificate do not need (``trimtab check-config`` uses only those)
+_LINEAR = ("ITERATES", "LinearModel", "Outcome")
+
+
+def __getattr__(name: str):
+    if name in _LINEAR:
+        from . import linear
+
+        return getattr(linear, name)
+    raise AttributeError(f"module 'models' has no attribute {name!r}")
 
 __all__ = [
     "Constraint",

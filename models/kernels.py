@@ -359,34 +359,26 @@ def _learn_dense(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y, cand):
     return True
 
 
-@_jit
-def _process(lazy, st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
-             out_pred, out_loss, out_code, start, stop, max_learn, xs, cand):
-    loss_code = int(prm[P_LOSS])
-    delta = prm[P_DELTA]
-    binary = loss_code == 2
-    learned = 0
-    i = start
-    while i < stop and learned < max_learn:
-        lo, hi = indptr[i], indptr[i + 1]
-        raw, avg, sq, dv = _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs)
-        m = avg if serve == 1 else raw
-        out_pred[i] = 0.5 * (1.0 + math.tanh(0.5 * m)) if binary else m
-        out_code[i] = SCORED
-        if mode[i] != 0:
-            out_loss[i] = _loss(loss_code, delta, m, y[i])
-            if mode[i] == 1:
-                if lazy:
-                    done = _learn_lazy(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
-                else:
-                    done = _learn_dense(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
-                out_code[i] = LEARNED if done else REFUSED
-                learned += 1
-        else:
-            out_loss[i] = math.nan
-        i += 1
-    return i
+@_inline
+def _serve_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, y, mode, serve, loss_code, delta,
+                 out_pred, out_loss, out_code, i, xs):
+    """Score event ``i`` (features ``lo..hi``) with the serving iterate and write its prediction, its
+    loss (NaN without a label) and the code ``SCORED``; return the raw margin, ``sum x^2`` and
+    ``<v, x>`` that learning it needs. ``loss_code`` and ``delta`` are read once per batch by the caller."""
+    raw, avg, sq, dv = _score_event(lazy, st, sc, prm, mean, std, indices, values, lo, hi, xs)
+    m = avg if serve == 1 else raw
+    out_pred[i] = 0.5 * (1.0 + math.tanh(0.5 * m)) if loss_code == 2 else m
+    out_code[i] = SCORED
+    if mode[i] != 0:
+        out_loss[i] = _loss(loss_code, delta, m, y[i])
+    else:
+        out_loss[i] = math.nan
+    return raw, sq, dv
 
+
+# The two loops below differ only in the learning step they call. They are written out twice, not
+# shared behind a ``lazy`` flag: numba compiles both branches of a test on an argument, so one shared
+# loop compiled the dense step into the lazy kernel (and back), about 40% of a first run's compiling.
 
 @_jit
 def lazy_process(st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
@@ -396,16 +388,38 @@ def lazy_process(st, sc, prm, mean, std, indptr, indices, values, y, mode, serve
     ``mode[i]``: 0 score only, 1 score and learn, 2 score and compute the loss but do not learn
     (held-out events). ``serve``: 0 raw iterate, 1 averaged. Returns the index of the next event.
     """
-    return _process(True, st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
-                    out_pred, out_loss, out_code, start, stop, max_learn, xs, cand)
+    loss_code, delta = int(prm[P_LOSS]), prm[P_DELTA]
+    learned = 0
+    i = start
+    while i < stop and learned < max_learn:
+        lo, hi = indptr[i], indptr[i + 1]
+        raw, sq, dv = _serve_event(True, st, sc, prm, mean, std, indices, values, lo, hi, y, mode, serve,
+                                   loss_code, delta, out_pred, out_loss, out_code, i, xs)
+        if mode[i] == 1:
+            done = _learn_lazy(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
+            out_code[i] = LEARNED if done else REFUSED
+            learned += 1
+        i += 1
+    return i
 
 
 @_jit
 def dense_process(st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
                   out_pred, out_loss, out_code, start, stop, max_learn, xs, cand):
     """Same contract as :func:`lazy_process` on the dense representation."""
-    return _process(False, st, sc, prm, mean, std, indptr, indices, values, y, mode, serve,
-                    out_pred, out_loss, out_code, start, stop, max_learn, xs, cand)
+    loss_code, delta = int(prm[P_LOSS]), prm[P_DELTA]
+    learned = 0
+    i = start
+    while i < stop and learned < max_learn:
+        lo, hi = indptr[i], indptr[i + 1]
+        raw, sq, dv = _serve_event(False, st, sc, prm, mean, std, indices, values, lo, hi, y, mode, serve,
+                                   loss_code, delta, out_pred, out_loss, out_code, i, xs)
+        if mode[i] == 1:
+            done = _learn_dense(st, sc, prm, indices, lo, hi, xs, sq, raw, dv, y[i], cand)
+            out_code[i] = LEARNED if done else REFUSED
+            learned += 1
+        i += 1
+    return i
 
 
 @_jit

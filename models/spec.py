@@ -7,7 +7,6 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from . import kernels as K
 from .averaging import averaging_code
 from .constraints import Constraint
 from .errors import InvalidSettings
@@ -105,6 +104,8 @@ class ModelSpec:
 
     def kernel_params(self) -> np.ndarray:
         """The parameter array the compiled kernels read (layout in ``kernels.P_*``)."""
+        from . import kernels as K  # here, not at the top: the settings alone do not need numba
+
         p = np.zeros(K.N_PARAMS)
         full_dim = self.dim() + (1 if self.fit_intercept else 0)
         p[K.P_LOSS] = loss_code(self.loss)

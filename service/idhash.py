@@ -44,25 +44,23 @@ _SIGMA = np.array([
 _H0 = np.uint64(0x6A09E667F3BCC908 ^ 0x01010008)
 
 
-@_jit
-def _rotr(x, n):
-    return (x >> np.uint64(n)) | (x << np.uint64(64 - n))
-
-
-@_jit
-def _mix(v, a, b, c, d, x, y):
-    v[a] = v[a] + v[b] + x
-    v[d] = _rotr(v[d] ^ v[a], 32)
-    v[c] = v[c] + v[d]
-    v[b] = _rotr(v[b] ^ v[c], 24)
-    v[a] = v[a] + v[b] + y
-    v[d] = _rotr(v[d] ^ v[a], 16)
-    v[c] = v[c] + v[d]
-    v[b] = _rotr(v[b] ^ v[c], 63)
+#: The (a, b, c, d) words of the eight mixings of a round, in order (RFC 7693, sec. 3.2).
+_LANES = np.array([[0, 4, 8, 12], [1, 5, 9, 13], [2, 6, 10, 14], [3, 7, 11, 15],
+                   [0, 5, 10, 15], [1, 6, 11, 12], [2, 7, 8, 13], [3, 4, 9, 14]], dtype=np.int64)
+_R16, _R24, _R32, _R40, _R48, _R63, _L1 = (np.uint64(k) for k in (16, 24, 32, 40, 48, 63, 1))
 
 
 @_jit
 def _compress(h, block, counter, last, m, v, iv, sigma):
+    """One BLAKE2b compression (RFC 7693, sec. 3.2) of ``block`` into ``h``.
+
+    The mixing function G is written out in a loop over the lanes rather than called with constant
+    word indices: a compiled helper taking constants would be compiled once per distinct call (eight
+    mixings, four rotations), which cost seconds on a first run for no speed. ``_LANES`` is read as
+    a global: numba freezes it into the code as a constant, so the loop over it runs as fast as the
+    written-out form (passed as an argument, it ran about 40% slower).
+    """
+    lanes = _LANES
     for w in range(16):
         acc = np.uint64(0)
         for k in range(8):
@@ -76,14 +74,22 @@ def _compress(h, block, counter, last, m, v, iv, sigma):
         v[14] = ~v[14]
     for r in range(12):
         s = sigma[r % 10]
-        _mix(v, 0, 4, 8, 12, m[s[0]], m[s[1]])
-        _mix(v, 1, 5, 9, 13, m[s[2]], m[s[3]])
-        _mix(v, 2, 6, 10, 14, m[s[4]], m[s[5]])
-        _mix(v, 3, 7, 11, 15, m[s[6]], m[s[7]])
-        _mix(v, 0, 5, 10, 15, m[s[8]], m[s[9]])
-        _mix(v, 1, 6, 11, 12, m[s[10]], m[s[11]])
-        _mix(v, 2, 7, 8, 13, m[s[12]], m[s[13]])
-        _mix(v, 3, 4, 9, 14, m[s[14]], m[s[15]])
+        for g in range(8):
+            a, b, c, d = lanes[g, 0], lanes[g, 1], lanes[g, 2], lanes[g, 3]
+            va, vb, vc, vd = v[a], v[b], v[c], v[d]
+            va = va + vb + m[s[2 * g]]
+            vd ^= va
+            vd = (vd >> _R32) | (vd << _R32)
+            vc = vc + vd
+            vb ^= vc
+            vb = (vb >> _R24) | (vb << _R40)
+            va = va + vb + m[s[2 * g + 1]]
+            vd ^= va
+            vd = (vd >> _R16) | (vd << _R48)
+            vc = vc + vd
+            vb ^= vc
+            vb = (vb >> _R63) | (vb << _L1)
+            v[a], v[b], v[c], v[d] = va, vb, vc, vd
     for i in range(8):
         h[i] ^= v[i] ^ v[i + 8]
 
@@ -113,13 +119,12 @@ def _hash_column(offsets, data, valid, prefix, iv, sigma, h0, out):
                 fill += 1
                 pos += 1
             last = pos >= total
-            if not last or fill == 128 and pos < total:
-                _compress(h, block, pos, False, m, v, iv, sigma)
-                continue
-            for k in range(fill, 128):
-                block[k] = 0
-            _compress(h, block, pos, True, m, v, iv, sigma)
-            break
+            if last:
+                for k in range(fill, 128):
+                    block[k] = 0
+            _compress(h, block, pos, last, m, v, iv, sigma)
+            if last:
+                break
         out[i] = h[0]
 
 
@@ -141,16 +146,27 @@ def hash_ids(offsets: np.ndarray, data: np.ndarray, valid: np.ndarray | None = N
     numpy.ndarray
         ``uint64`` values equal to ``models.stable_hash64(prefix.decode() + text)``.
     """
-    offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    offsets = _read_only(offsets, np.int64)
     n = offsets.shape[0] - 1
-    valid = np.ones(n, dtype=np.bool_) if valid is None else np.ascontiguousarray(valid, dtype=np.bool_)
+    valid = np.ones(n, dtype=np.bool_) if valid is None else valid
     out = np.zeros(n, dtype=np.uint64)
     if n:
-        data = np.ascontiguousarray(data, dtype=np.uint8)
-        if data.shape[0] == 0:
-            data = np.zeros(1, dtype=np.uint8)
-        _hash_column(offsets, data, valid, np.frombuffer(prefix, dtype=np.uint8), _IV, _SIGMA, _H0, out)
+        data = np.zeros(1, dtype=np.uint8) if len(data) == 0 else data
+        _hash_column(offsets, _read_only(data, np.uint8), _read_only(valid, np.bool_),
+                     np.frombuffer(prefix, dtype=np.uint8), _IV, _SIGMA, _H0, out)
     return out
+
+
+def _read_only(a, dtype) -> np.ndarray:
+    """``a`` as a contiguous read-only array of ``dtype`` (a view when it already is one).
+
+    numba compiles a function once per combination of argument types, and a read-only array
+    (``np.frombuffer`` of bytes, an Arrow buffer) is another type than a writable one: passing
+    every input read-only keeps the compiled functions here at one signature each.
+    """
+    view = np.ascontiguousarray(a, dtype=dtype).view()
+    view.flags.writeable = False
+    return view
 
 
 def hash_strings(texts, prefix: bytes = HOLDOUT_PREFIX) -> np.ndarray:
@@ -243,6 +259,5 @@ class IdSet:
             _rehash(self._table, grown)
             self._table = grown
         keep = np.ones(keys.shape[0], dtype=np.bool_)
-        self._count += _insert(self._table, np.ascontiguousarray(keys, dtype=np.uint64),
-                               np.ascontiguousarray(use, dtype=np.bool_), keep)
+        self._count += _insert(self._table, _read_only(keys, np.uint64), _read_only(use, np.bool_), keep)
         return keep

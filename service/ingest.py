@@ -45,6 +45,7 @@ from service.storage.journal import NOTE, ROLLBACK, Journal
 from service.storage.recovery import (RecoveryRefused, check_storage, encode_event, load_state, replay_rows,
                                       serving_view)
 from service.storage.seen import id_key, number_events
+from service.warmup import STARTING, is_cached, kernels_of, warm_parallel
 
 __all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
 
@@ -190,7 +191,8 @@ class Ingestor:
         """Claim room for ``n`` events *before* a body is parsed, so that refused requests cost no
         parsing and parsed-but-unqueued events count against ``service.queue_limit`` too."""
         if not self.ready or self.stopping:
-            raise NotReady("recovering from the journal" if not self.stopping else "shutting down", where="startup")
+            what = STARTING.get(self.recovery["state"], "recovering from the journal")
+            raise NotReady(what if not self.stopping else "shutting down", where="startup")
         if self.fault is not None:
             raise JournalUnavailable(f"writes are refused until the storage recovers: {self.fault}", where="storage")
         n = max(1, n)
@@ -375,10 +377,17 @@ class Ingestor:
 
     # ---------------------------------------------------------------- start and stop
     async def recover(self) -> None:
-        """Check the storage, load the newest usable checkpoint, re-apply the journal after it; then
-        start the stages. Raises :class:`RecoveryRefused` (the service stays not ready, with an
-        incident) when the storage is damaged or the acknowledged history cannot be rebuilt."""
+        """Compile (first run) or load the kernels, check the storage, load the newest usable
+        checkpoint, re-apply the journal after it; then start the stages. Raises
+        :class:`RecoveryRefused` (the service stays not ready, with an incident) when the storage
+        is damaged or the acknowledged history cannot be rebuilt."""
         t0 = time.perf_counter()
+        # compile (first run) or load the kernels before anything is applied: the first write after
+        # /readyz then runs at full speed instead of waiting seconds for the compiler
+        kernels = kernels_of([self.config])
+        self.recovery["state"] = "loading" if is_cached(("learn", "read"), kernels) else "compiling"
+        await self.learn(warm_parallel, [["learn"], ["read"]], kernels)
+        self.recovery["compile_seconds"] = round(time.perf_counter() - t0, 3)
         self.recovery["state"] = "recovering"
         self.incidents.extend(await self.db(self.journal.incidents))
         await check_storage(self)

@@ -61,7 +61,9 @@ def available() -> bool:
 _MAX_DIGITS = 15  # digits a double holds exactly, whatever parser reads them
 
 
-@numba.njit(cache=True, nogil=True)
+# inlined where it is called: as a compiled function of its own, numba compiled it twice (once for
+# the constant 0 that ``i`` starts from, once for an int64)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _utf8_len(buf, i, n):
     """Length of the strict UTF-8 sequence at ``buf[i]`` (a byte >= 0x80), 0 if it is invalid."""
     c = buf[i]

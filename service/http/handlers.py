@@ -32,6 +32,7 @@ from service.errors import (JournalUnavailable, NotReady, PayloadTooLarge, Unaut
 from service.events import Event, EventValidator, Rejection, check_id, parse_ndjson
 from service.ingest import Ingestor, encode_event
 from service.publish import take_snapshot
+from service.warmup import STARTING
 from service.storage.labels import LabelStore
 from service.http.health import model_health
 from service.http.metrics import CONTENT_TYPE, Metrics
@@ -97,6 +98,8 @@ def _ready(svc: Service) -> Ingestor:
     if ing is None or not ing.ready:
         if svc.recovery_error or ing is None:
             state = svc.recovery_error or "starting"
+        elif ing.recovery["state"] in STARTING:
+            state = STARTING[ing.recovery["state"]]
         else:
             r = ing.recovery
             state = (f"{r['state']} (checkpoint at position {r['checkpoint']}, "

@@ -52,8 +52,7 @@ def _feed(out: Path, events: int | None) -> tuple[Path, dict | None]:
 def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines") -> dict:
     """Replay the demo feed under both configs and write the report; return what it found."""
     from service.config import load_config
-    from service.replay.runner import _lean_arrow, run_all, write_outputs
-    from service.replay.scenario import ground_truth
+    from service.replay.runner import _lean_arrow, run_all
 
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -62,7 +61,22 @@ def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines")
     configs = [load_config(p) for p in config_paths]
     start = time.perf_counter()
     _lean_arrow()
-    results = run_all([feed], configs, [str(p) for p in config_paths], jobs=min(2, os.cpu_count() or 1), mode=mode)
+    from service.replay.report import Painter
+
+    with Painter() as painter:  # imports matplotlib in its own process while the kernels compile and the runs go
+        results = run_all([feed], configs, [str(p) for p in config_paths], jobs=min(2, os.cpu_count() or 1),
+                          mode=mode)
+        report, truth = _finish(out, feed, results, painter)
+    return {"feed": str(feed), "truth": truth, "report": str(report), "seconds": time.perf_counter() - start,
+            "runs": [r["summary"] for r in results]}
+
+
+def _finish(out: Path, feed: Path, results: list[dict], painter) -> tuple[Path, dict]:
+    """Mark the scenario's known events in the results and write the outputs; the report's path and the truth."""
+    from service.replay.report import DEMO_CAUTION
+    from service.replay.runner import write_outputs
+    from service.replay.scenario import ground_truth
+
     # the feed has no repeated ids, so the valid events are the generator's n_events (seed 7 throughout)
     t = ground_truth(results[0]["summary"]["events"])
     truth = {"events": t.n_events, "fault": (t.fault_start, t.fault_stop), "recalibration": t.recalibration_index}
@@ -70,11 +84,7 @@ def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines")
              {"event": t.recalibration_index, "label": "probe recalibration (a real change)"}]
     for r in results:
         r["summary"]["progressive_loss_outside_fault"] = outside_window(r["trace"], t.fault_start, t.fault_stop)
-    from service.replay.report import DEMO_CAUTION
-
-    report = write_outputs(out, [feed], results, notes=notes, caution=DEMO_CAUTION)
-    return {"feed": str(feed), "truth": truth, "report": str(report), "seconds": time.perf_counter() - start,
-            "runs": [r["summary"] for r in results]}
+    return write_outputs(out, [feed], results, notes=notes, caution=DEMO_CAUTION, painter=painter), truth
 
 
 def outside_window(trace: dict, start: int, stop: int) -> float | None:

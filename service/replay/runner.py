@@ -66,14 +66,27 @@ def reason_key(where: str, reason: str) -> str:
 
 
 class _Counts:
-    """Shared (events, fraction) per run: a local list, or a slot of an array shared with the parent."""
+    """Shared (events, fraction, time of the first event) per run: a local list, or a slot of an
+    array shared with the parent (see :class:`~service.replay.progress.Progress`)."""
+
+    WIDTH = 3
 
     def __init__(self, store, slot: int) -> None:
         self.store, self.slot = store, slot
 
+    def first_event(self) -> None:
+        """Stamp now (:func:`time.monotonic`, shared by processes) as the run's first event."""
+        if self.store[3 * self.slot + 2] == 0:
+            self.store[3 * self.slot + 2] = time.monotonic()
+
     def set(self, events: int, fraction: float) -> None:
-        self.store[2 * self.slot] = events
-        self.store[2 * self.slot + 1] = fraction
+        self.store[3 * self.slot] = events
+        self.store[3 * self.slot + 1] = fraction
+
+    @staticmethod
+    def reader(store, n: int):
+        """The ``state`` callable of :class:`Progress` for ``n`` runs in ``store``."""
+        return lambda: [tuple(store[3 * i:3 * i + 3]) for i in range(n)]
 
 
 def _read(feeds, config, columnar: bool, workers: int):
@@ -142,6 +155,8 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
             if isinstance(item, BaseException):
                 raise item
             k, chunk = item
+            if counts is not None:
+                counts.first_event()
             for line, rej in chunk.rejected:
                 key = reason_key(rej.where, rej.reason)
                 by_reason[key] = by_reason.get(key, 0) + 1
@@ -273,21 +288,38 @@ def _context():
 
 def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: str,
             columnar: bool = True) -> list[dict]:
-    """Run every config over the feeds (in parallel processes when ``jobs > 1``); results in config order."""
+    """Run every config over the feeds (in parallel processes when ``jobs > 1``); results in config order.
+
+    The compiled kernels are made ready first (:mod:`service.warmup`; compiled on a first run,
+    loaded from the cache later), while the progress display says so: one process compiles the
+    learning kernel while another compiles the scorers and the reader's kernels (the run's worker
+    processes when ``jobs > 1``, a short-lived helper otherwise).
+    """
+    from service.warmup import COMPILING, LOADING, PARTS, is_cached, kernels_of, warm, warm_parallel
+
     names = [c.name for c in configs]
+    kernels = kernels_of(configs)
+    # one process compiles the learning kernel, the other everything else (about as long)
+    groups = [["learn"], ["read", "feeds"]]
+    note = [LOADING if is_cached(PARTS, kernels) else COMPILING]
     if jobs <= 1 or len(configs) == 1:
-        store = [0.0] * (2 * len(configs))
+        store = [0.0] * (_Counts.WIDTH * len(configs))
         results = []
-        with Progress(names, lambda: [(store[2 * i], store[2 * i + 1]) for i in range(len(names))], mode):
+        with Progress(names, _Counts.reader(store, len(names)), mode, note=lambda: note[0]):
+            warm_parallel(groups, kernels)
+            note[0] = None
             for i, (cfg, path) in enumerate(zip(configs, paths)):
                 results.append(run_replay(feeds, cfg, columnar=columnar, counts=_Counts(store, i), config_path=path))
         return results
     ctx = _context()
-    shared = ctx.Array("d", 2 * len(configs), lock=False)
-    state = lambda: [(shared[2 * i], shared[2 * i + 1]) for i in range(len(names))]  # noqa: E731
+    shared = ctx.Array("d", _Counts.WIDTH * len(configs), lock=False)
     workers = max(1, (os.cpu_count() or 1) // jobs)
-    with Progress(names, state, mode), ProcessPoolExecutor(max_workers=jobs, mp_context=ctx,
-                                                           initializer=_init_worker, initargs=(shared,)) as pool:
+    with Progress(names, _Counts.reader(shared, len(names)), mode, note=lambda: note[0]), \
+            ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_init_worker,
+                                initargs=(shared,)) as pool:
+        for done in [pool.submit(warm, group, kernels) for group in groups]:
+            done.result()
+        note[0] = None
         futures = [pool.submit(_worker, list(feeds), cfg, i, columnar, workers, path)
                    for i, (cfg, path) in enumerate(zip(configs, paths))]
         return [f.result() for f in futures]
