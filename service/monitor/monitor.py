@@ -67,10 +67,10 @@ class Monitor:
 
     Notes
     -----
-    The engine feeds held-out events (:meth:`hold_out`), refused updates and rejected input, calls
-    :meth:`check` every ``check_every`` learned events and adopts the model :meth:`take_restored`
-    returns after a rollback. ``incidents`` lists ``{kind, event, ts, reason, evidence}``; the state
-    round-trips through :meth:`to_bytes` (no pickle).
+    The engine hands over each batch's held-out events before learning it (:meth:`hold_out`), reports
+    refused updates and rejected input, calls :meth:`check` every ``check_every`` learned events and
+    adopts the model :meth:`take_restored` returns after a rollback. ``incidents`` lists ``{kind,
+    event, ts, reason, evidence}``; the state round-trips through :meth:`to_bytes` (no pickle).
     """
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
@@ -124,10 +124,10 @@ class Monitor:
         fig = self._figures(model)
         return {"raw": None, "averaged": None} if fig is None else {"raw": fig.raw, "averaged": fig.averaged}
 
-    def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, start: int, stop: int, first: int) -> None:
-        """Keep the held-out events (``mode == 2``) among rows ``start..stop`` of a batch whose row 0 is
-        event ``first``."""
-        picked = start + np.flatnonzero(mode[start:stop] == 2)
+    def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, first: int) -> None:
+        """Keep the held-out events (``mode == 2``) of a batch whose row 0 is event ``first``, before the
+        batch is learned: a check scores only the events up to its own."""
+        picked = np.flatnonzero(mode == 2)
         self.window.add(rows, y, picked, first + picked)
 
     def note_refused(self, count: int) -> None:
@@ -150,46 +150,46 @@ class Monitor:
         elif share < self.cfg.reject_burst_share / 2:
             self._reject_open = False
 
-    def _figures(self, model: LinearModel) -> CheckFigures | None:
-        if not len(self.window):
+    def _figures(self, model: LinearModel, upto: int | None = None) -> CheckFigures | None:
+        """The window's figures up to event ``upto`` (``None``: all), garbage left out of the means."""
+        scored = self.window.losses(model, upto)
+        if scored is None:
             return None
-        scored = self.window.losses(model)
-        losses = scored.losses
-        new = scored.events > (self.state.checks[-1] if self.state.checks else -1)
-        older = losses[1, :len(new) - int(np.count_nonzero(new))]  # the window is in order: new events last
-        if len(older) < MIN_EVENTS:
-            older = losses[1]
-        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events: the events are
-        # exchangeable, so a new event still lands above it with probability 1/2 (at a quarter of the cost)
+        losses, events = scored
+        n_old = int(np.searchsorted(events, self.state.checks[-1] if self.state.checks else -1, "right"))
+        older = losses[1, :n_old] if n_old >= MIN_EVENTS else losses[1]
+        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (the events are
+        # exchangeable, so a new event still lands above it with probability 1/2); an odd sample's
+        # median is one element, found by a partition (np.median costs 40 us)
         sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
-        sample = sample[:len(sample) - 1 + len(sample) % 2]  # odd: its median is one element (np.median costs 40 us)
+        sample = sample[:len(sample) - 1 + len(sample) % 2]
         reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
-        usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference if reference > 0 else \
-            np.ones(len(new), dtype=bool)
-        kept = losses if usable.all() else losses[:, usable]
-        raw, avg = (kept.sum(axis=1) / kept.shape[1]).tolist() if kept.shape[1] else (math.nan, math.nan)
+        if reference > 0:
+            usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference
+        else:
+            usable = np.ones(len(events), dtype=bool)
+        n_usable = int(np.count_nonzero(usable))
+        kept = losses if n_usable == len(events) else losses[:, usable]
+        raw, avg = (kept.sum(axis=1) / n_usable).tolist() if n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
-        return CheckFigures(losses, scored.events, usable, new, reference, raw, avg, model.distance(), allowance)
+        return CheckFigures(losses, events, usable, n_usable, n_old, reference, losses[1, n_old:] > reference,
+                            raw, avg, model.distance(), allowance)
 
-    def check(self, model: LinearModel, event: int, ts: float | None = None, held: tuple | None = None) -> dict:
-        """Score the window, apply the rules, act; return the check's record. ``held``: ``(rows, y,
-        mode, start, stop, first)`` as for :meth:`hold_out`, kept first."""
-        if held is not None:
-            self.hold_out(*held)
+    def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
+        """Score the window up to ``event``, apply the rules, act; return the check's record."""
         cfg, state = self.cfg, self.state
         g = model.grad_bound  # the smallest since the restart: a burst inflates the estimate, not the noise
         if g and 0.0 < g * g < state.g2_min:
             state.g2_min = g * g
-        fig = self._figures(model)
+        fig = self._figures(model, event)
         record = {"event": int(event), "action": None, "holdout_raw": None, "holdout_avg": None, "held_out": 0,
                   "excluded": 0, "distance": model.distance() if fig is None else fig.distance}
         if fig is not None:
-            usable = int(np.count_nonzero(fig.usable))
             record.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, held_out=len(fig.events),
-                          excluded=len(fig.events) - usable, allowance=fig.allowance)
-            if np.any(fig.new) and len(fig.events) - np.count_nonzero(fig.new) >= MIN_EVENTS:
-                record["exceedance"] = float(np.mean(fig.losses[1, fig.new] > fig.reference))
+                          excluded=len(fig.events) - fig.n_usable, allowance=fig.allowance)
+            if len(fig.above) and fig.n_old >= MIN_EVENTS:
+                record["exceedance"] = np.count_nonzero(fig.above) / len(fig.above)
         rolled = self._rollback_rules(model, fig, event, ts, record)
         if fig is not None and self._detector is not None and not rolled:
             self._change_rules(model, fig, event, ts, record)
@@ -203,15 +203,15 @@ class Monitor:
     def _rollback_rules(self, model: LinearModel, fig: CheckFigures | None, event: int, ts, record: dict) -> bool:
         """Non-finite update, distance, rollback (held-out loss); act on the first that fires."""
         cfg, state = self.cfg, self.state
-        limit = cfg.divergence_radii * (self._radius if self._radius else max(model.norm("averaged"), 1.0))
         reason = rules.non_finite_update(state)
         refused, by_loss = state.refused, False
         state.refused = 0
         if reason is None and fig is not None:
+            limit = cfg.divergence_radii * (self._radius if self._radius else max(model.norm("averaged"), 1.0))
             reason = rules.too_far_from_average(fig, limit)
             if reason is None:
                 patience = state.checks[-cfg.rollback_patience] if len(state.checks) >= cfg.rollback_patience else -1
-                reason = rules.raw_persistently_worse(fig, state, cfg, fig.events > patience)
+                reason = rules.raw_persistently_worse(fig, state, cfg, fig.after(patience))
                 by_loss = reason is not None
         if reason is not None and not cfg.rollback:
             state.ignored += 1
@@ -234,7 +234,7 @@ class Monitor:
         evidence = {"step_scale": model.step_scale, "restored_from": self._trusted_event if restore else None}
         if fig is not None:
             evidence.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, distance=fig.distance,
-                            allowance=fig.allowance, held_out=int(np.count_nonzero(fig.usable)))
+                            allowance=fig.allowance, held_out=fig.n_usable)
         self._incident("rollback", event, ts, reason, evidence)
         record["action"] = "rollback"
         return True
@@ -243,7 +243,7 @@ class Monitor:
         """Feed the detector, open an alarm, confirm (restart) or dismiss an open one."""
         state = self.state
         if state.alarm_check < 0:
-            if len(fig.events) - np.count_nonzero(fig.new) >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
+            if fig.n_old >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
                 state.alarm_from = (state.checks[-1] + 1) if state.checks else 0
                 state.alarm_check, state.alarm_checks = int(event), 0
                 record["alarm"] = state.alarm_from
