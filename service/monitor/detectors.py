@@ -1,19 +1,14 @@
-"""river's change detectors (Page-Hinkley, ADWIN) behind one small interface whose state is plain data.
+"""river's change detectors behind one small interface whose state is plain data (no pickle).
 
-* Page-Hinkley: E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41, 100-115; river's
-  ``drift.PageHinkley``.
-* ADWIN: A. Bifet and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing",
-  SIAM International Conference on Data Mining; river's ``drift.ADWIN``.
+Page-Hinkley (E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41) and ADWIN (A. Bifet
+and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing", SIAM SDM) are
+river's own classes, loaded from their modules without ``river.drift``'s package import, which
+imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
 
-Both classes are river's own, loaded from their modules without running ``river.drift``'s package
-import, which imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, measured
-with ``python -X importtime``; the two modules need only ``river.stats`` and ``river.base``).
-
-State without pickle: Page-Hinkley is saved by its fields (a handful of floats). river's ADWIN keeps
-its buckets in compiled code that exposes no fields, so it is saved as the values fed to it since its
-last reset and rebuilt by feeding them again (it is a deterministic function of its input). That input
-is capped at ``ADWIN_MEMORY`` values: beyond it the detector is rebuilt from the newest half, the same
-way in a run that is checkpointed and one that is not.
+Page-Hinkley is saved by its fields. river's ADWIN keeps its buckets in compiled code that exposes no
+fields, so it is saved as the values fed to it since its last reset and rebuilt by feeding them again
+(it is a deterministic function of its input). That input is capped at ``ADWIN_MEMORY`` values:
+beyond it the detector is rebuilt from the newest half, alike with and without checkpoints.
 """
 
 from __future__ import annotations
@@ -46,17 +41,7 @@ def river_detector(name: str):
 
 class ChangeDetector:
     """A river detector, ``"page_hinkley"`` or ``"adwin"``; ``params`` go to river's class unchanged
-    (none: river's defaults). After a detection it starts afresh at the next value, as river's do.
-
-    Examples
-    --------
-    >>> import random
-    >>> rng = random.Random(12345)
-    >>> stream = rng.choices([0, 1], k=1000) + rng.choices(range(4, 8), k=1000)
-    >>> ph = ChangeDetector("page_hinkley")
-    >>> [i for i, x in enumerate(stream) if ph.update(x)]
-    [1006]
-    """
+    (none: river's defaults). After a detection it starts afresh at the next value, as river's do."""
 
     KINDS = ("adwin", "page_hinkley")
 

@@ -3,20 +3,20 @@
 The convergence guarantees of projected SGD hold in expectation on a stationary feed; live feeds
 change and labels are sometimes wrong. The monitor keeps the newest ``window`` held-out events
 (``window.py``, never learned); every ``check_every`` learned events it scores them with both
-iterates and applies the rules of ``rules.py``, where each is documented, in this order:
+iterates and applies the rules of ``rules.py`` (each documented there) in this order:
 
-1. *non-finite update*, *distance*, *rollback*: roll back to the newest *trusted copy* of the model
-   (taken every ``snapshot_every`` healthy checks in a row; a uniform average absorbs each astray
+1. *non-finite update*, *distance*, *rollback* -> roll back: restore the newest *trusted copy* of the
+   model (taken every ``snapshot_every`` healthy checks in a row: a uniform average absorbs each astray
    update at once, so raw := averaged alone would keep the damage), set its raw iterate to its
    averaged one and multiply every later step by ``rollback_shrink``;
-2. *change confirmed*: restart. The average starts again from the raw iterate, the step schedule
+2. *change confirmed* -> restart: the average starts again from the raw iterate, the step schedule
    and ``G`` re-warm, the held-out events from before the change and the trusted copy are dropped;
-3. *boundary pinned*: an incident and a standing warning (:attr:`Monitor.warnings`).
+3. *boundary pinned* -> an incident and a standing warning (:attr:`Monitor.warnings`).
 
 Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
-times the median of the older window events (a garbage target is far from both iterates, so it
-says nothing about which is better). Rejected-input bursts (a share above ``reject_burst_share`` of
-the last ``reject_window`` events) are incidents too, one per burst.
+times the median of the older window events (a garbage target is far from both iterates, so it says
+nothing about which is better). A burst of rejected input (a share above ``reject_burst_share`` of
+the last ``reject_window`` events) is an incident too, one per burst.
 """
 
 from __future__ import annotations
@@ -36,7 +36,7 @@ from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
 from service.monitor.window import HeldOutWindow
 
-__all__ = ["LAYOUT", "Monitor"]
+__all__ = ["LAYOUT", "Monitor", "copy_model"]
 
 #: the version of :meth:`Monitor.to_bytes`' layout; a state of another one is refused
 LAYOUT = 2
@@ -92,7 +92,7 @@ class Monitor:
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None
         self.incidents: list[dict] = []
-        self._rejects: list[list[int]] = []
+        self._rejects: list[list[int]] = []  # [rejected, total] per report, newest last
         self._reject_open = False
 
     @property
@@ -138,9 +138,8 @@ class Monitor:
         if total <= 0:
             return
         self._rejects.append([rejected, total])
-        # keep the newest reports that cover ``reject_window`` events
         while len(self._rejects) > 1 and sum(t for _, t in self._rejects[1:]) >= self.cfg.reject_window:
-            self._rejects.pop(0)
+            self._rejects.pop(0)  # the newest reports that cover ``reject_window`` events are enough
         bad, n = (sum(col) for col in zip(*self._rejects))
         share = bad / n
         if share > self.cfg.reject_burst_share and n >= min(self.cfg.reject_window, 50) and not self._reject_open:
@@ -156,9 +155,9 @@ class Monitor:
         if scored is None:
             return None
         losses, events = scored
-        n_old = int(np.searchsorted(events, self.state.checks[-1] if self.state.checks else -1, "right"))
+        n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
         older = losses[1, :n_old] if n_old >= MIN_EVENTS else losses[1]
-        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (the events are
+        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (they are
         # exchangeable, so a new event still lands above it with probability 1/2); an odd sample's
         # median is one element, found by a partition (np.median costs 40 us)
         sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
@@ -178,7 +177,7 @@ class Monitor:
 
     def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
         """Score the window up to ``event``, apply the rules, act; return the check's record."""
-        cfg, state = self.cfg, self.state
+        state = self.state
         g = model.grad_bound  # the smallest since the restart: a burst inflates the estimate, not the noise
         if g and 0.0 < g * g < state.g2_min:
             state.g2_min = g * g
@@ -193,21 +192,24 @@ class Monitor:
         rolled = self._rollback_rules(model, fig, event, ts, record)
         if fig is not None and self._detector is not None and not rolled:
             self._change_rules(model, fig, event, ts, record)
-        if cfg.serve == "better" and fig is not None and math.isfinite(fig.raw):
+        if self.cfg.serve == "better" and fig is not None and math.isfinite(fig.raw):
             state.raw_served = fig.raw < fig.averaged
-        self._boundary_rule(model, event, ts)
+        if self._ball and self._radius:
+            on = model.raw_norm() >= self._radius * (1.0 - 1e-3)  # within 0.1%: projected back there
+            if rules.boundary_pinned(state, on, self.cfg):
+                self._incident("boundary", event, ts, self.warnings[0],
+                               {"radius": self._radius, "norm_raw": model.raw_norm()})
         state.checks = (state.checks + [int(event)])[-_KEPT_CHECKS:]
         record["serving"] = self.serving
         return record
 
     def _rollback_rules(self, model: LinearModel, fig: CheckFigures | None, event: int, ts, record: dict) -> bool:
-        """Non-finite update, distance, rollback (held-out loss); act on the first that fires."""
+        """Non-finite update, distance, rollback (held-out loss): act on the first that fires."""
         cfg, state = self.cfg, self.state
-        reason = rules.non_finite_update(state)
-        refused, by_loss = state.refused, False
+        reason, refused, by_loss = rules.non_finite_update(state), state.refused, False
         state.refused = 0
         if reason is None and fig is not None:
-            limit = cfg.divergence_radii * (self._radius if self._radius else max(model.norm("averaged"), 1.0))
+            limit = cfg.divergence_radii * (self._radius or max(model.norm("averaged"), 1.0))
             reason = rules.too_far_from_average(fig, limit)
             if reason is None:
                 patience = state.checks[-cfg.rollback_patience] if len(state.checks) >= cfg.rollback_patience else -1
@@ -240,7 +242,7 @@ class Monitor:
         return True
 
     def _change_rules(self, model: LinearModel, fig: CheckFigures, event: int, ts, record: dict) -> None:
-        """Feed the detector, open an alarm, confirm (restart) or dismiss an open one."""
+        """Feed the detector and open an alarm, or confirm (restart) or dismiss the open one."""
         state = self.state
         if state.alarm_check < 0:
             if fig.n_old >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
@@ -250,38 +252,25 @@ class Monitor:
             return
         state.alarm_checks += 1
         evidence = rules.change_confirmed(fig, state, self.cfg)
-        if evidence is not None:
-            self._restart(model, event, ts, evidence)
-            record["action"] = "restart"
-        elif state.alarm_checks < self.cfg.drift_confirm:
+        if evidence is None and state.alarm_checks < self.cfg.drift_confirm:
             return
         state.alarm_from = state.alarm_check = -1
-        if evidence is not None:
-            self._detector.reset()
-        else:  # dismissed: the mean it learned before the alarm still holds (see ChangeDetector.rearm)
+        if evidence is None:  # dismissed: the mean it learned before the alarm still holds
             self._detector.rearm()
-
-    def _restart(self, model: LinearModel, event: int, ts, evidence: dict) -> None:
+            return
+        self._detector.reset()
         model.restart()
         self.window.drop_before(evidence["alarm_event"])
-        state = self.state
         state.g2_min, state.worse_streak, state.healthy, state.alert = math.inf, 0, 0, False
         state.restarted_at = int(event)
         self._trusted = self._trusted_event = None  # a copy from the old world must not come back
+        test = (f"medians; {evidence['above']} of {evidence['n']} fresh events above the old median"
+                if evidence["test"] == "sign" else f"means of {evidence['n']} fresh events, Welch test")
         self._incident("restart", event, ts,
                        f"after event {evidence['alarm_event']:,} the averaged iterate's held-out loss rose from "
-                       f"{evidence['before_averaged']:.4g} to {evidence['recent_averaged']:.4g} ("
-                       + (f"medians; {evidence['above']} of {evidence['n']} fresh events above the old median"
-                          if evidence["test"] == "sign" else f"means of {evidence['n']} fresh events, Welch test")
-                       + f", p = {evidence['p']:.2g}): the feed changed", evidence)
-
-    def _boundary_rule(self, model: LinearModel, event: int, ts) -> None:
-        if not (self._ball and self._radius):
-            return
-        on = model.raw_norm() >= self._radius * (1.0 - 1e-3)  # within 0.1%: projected back there
-        if rules.boundary_pinned(self.state, on, self.cfg):
-            self._incident("boundary", event, ts, self.warnings[0],
-                           {"radius": self._radius, "norm_raw": model.raw_norm()})
+                       f"{evidence['before_averaged']:.4g} to {evidence['recent_averaged']:.4g} ({test}, "
+                       f"p = {evidence['p']:.2g}): the feed changed", evidence)
+        record["action"] = "restart"
 
     def take_restored(self) -> LinearModel | None:
         """The model a rollback restored from the last trusted copy, once (the engine adopts it)."""
@@ -307,23 +296,20 @@ class Monitor:
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
                   "trusted_event": self._trusted_event, "incidents": self.incidents,
                   "rejects": self._rejects, "reject_open": self._reject_open}
-        arrays = {**self.window.to_arrays(), "detector_fed": fed,
-                  "trusted": np.frombuffer(trusted, dtype=np.uint8)}
+        arrays = {**self.window.to_arrays(), "detector_fed": fed, "trusted": np.frombuffer(trusted, dtype=np.uint8)}
         return pack(header, arrays, {})[0]
 
     def load_bytes(self, blob: bytes) -> None:
-        """Restore a state :meth:`to_bytes` wrote; a state of another layout (an older trimtab's) is
-        refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint or
-        replays the journal)."""
+        """Restore a state :meth:`to_bytes` wrote. A state of another layout (another trimtab version's)
+        is refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint
+        or replays the journal)."""
         try:
             header, arrays, _, _ = unpack(blob)
-        except Exception as exc:
-            raise ValueError(f"monitor state of another layout (unreadable: {exc}); this version writes "
-                             f"layout {LAYOUT}: it was written by another trimtab version") from None
+        except Exception as exc:  # not even the container: older than the layouts
+            header, arrays = {"layout": f"unreadable: {exc}"}, {}
         if header.get("format") != "monitor-state" or header.get("layout") != LAYOUT:
-            raise ValueError(f"monitor state of another layout ({header.get('format')!r}, layout "
-                             f"{header.get('layout')!r}; this version's is {LAYOUT}): it was written by another "
-                             "trimtab version")
+            raise ValueError(f"monitor state of another layout ({header.get('layout')!r}; this version's is "
+                             f"{LAYOUT}): it was written by another trimtab version")
         if self._detector is not None:
             self._detector.load_state(header["detector"], arrays["detector_fed"])
         self.window.load_arrays(arrays)

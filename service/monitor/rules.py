@@ -1,8 +1,7 @@
-"""The monitor's rules, one named function each, over the window's figures of one check.
+"""The monitor's rules, one named function each: what it watches, its threshold, its source.
 
-Each rule says what it watches, its threshold, and where the method comes from. ``Monitor.check``
-computes :class:`CheckFigures`, runs the rules in the order they appear here and acts on what they
-return (a rollback, a restart, an incident); the rules themselves change only :class:`RuleState`.
+``Monitor.check`` computes the :class:`CheckFigures` of a check, runs the rules in the order they
+appear here and acts on what they return; the rules themselves change only :class:`RuleState`.
 """
 
 from __future__ import annotations
@@ -84,17 +83,16 @@ def too_far_from_average(fig: CheckFigures, limit: float) -> str | None:
 
 
 def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, recent: int) -> str | None:
-    """**Rollback** (held-out loss). Watches the mean held-out loss of both iterates over the usable
-    window events. Threshold: ``L_raw > (1 + rollback_margin) L_avg + allowance`` on
-    ``rollback_patience`` checks in a row (one, right after a rollback by this rule, until
-    ``rollback_patience`` healthy checks have passed: the fault has shown itself), judged once
-    ``min_holdout`` usable events are kept. The allowance is the raw iterate's own noise,
-    ``noise_allowance * eta * G**2 / 4``: around the optimum the covariance ``C`` of ``w - w*`` under
-    steps ``eta`` solves ``H C + C H = eta Cov(g)`` to first order, so the expected excess loss
-    ``tr(H C) / 2`` is ``eta E||g||^2 / 4`` whatever the curvature (a derivation, not a citation; the
-    tests check it against scikit-learn's optimum). A check does not count when the raw iterate beats
-    the average on the usable events from index ``recent`` on (held out during the last
-    ``rollback_patience`` checks): it is then following a change, not diverging."""
+    """**Rollback** (held-out loss). Watches the mean loss of both iterates over the usable window
+    events, once ``min_holdout`` are kept. Threshold: ``L_raw > (1 + rollback_margin) L_avg +
+    allowance`` on ``rollback_patience`` checks in a row (one, right after a rollback by this rule,
+    until ``rollback_patience`` healthy checks have passed). The allowance is the raw iterate's own
+    noise, ``noise_allowance * eta * G**2 / 4``: near the optimum the covariance ``C`` of ``w - w*``
+    under steps ``eta`` solves ``H C + C H = eta Cov(g)`` to first order, so the excess loss ``tr(H C)
+    / 2`` is ``eta E||g||^2 / 4`` whatever the curvature (a derivation, not a citation; the tests
+    check it against scikit-learn's optimum). A check does not count when the raw iterate beats the
+    average on the usable events from index ``recent`` on (those of the last ``rollback_patience``
+    checks): it is then following a change, not diverging."""
     if fig.n_usable < cfg.min_holdout:
         return None
     worse = fig.raw > (1.0 + cfg.rollback_margin) * fig.averaged + fig.allowance
@@ -111,35 +109,32 @@ def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConf
 
 
 def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
-    """**Change alarm** (the first half of *change confirmed*). Watches, for every event held out since
-    the last check, whether its averaged-iterate loss exceeds the median of (a regular sample of at
-    most 500 of) the older window events: on a stationary feed the events are exchangeable and none
-    was learned, so this is a fair coin (slightly below 1/2 while the average still improves) whatever
-    the loss, noise or scale, and one setting fits every feed; after an abrupt change nearly every new
-    event lands above. The 0/1 sequence goes, one value per event, to river's Page-Hinkley test (Page
-    1954; mode "up", ``drift_delta`` tolerated rise, ``drift_threshold`` lambda, ``drift_min_events``)
-    or ADWIN (Bifet and Gavaldà 2007, ``adwin_delta``). With the defaults (delta 0.05, lambda 10) a
-    fair coin crosses lambda about once in 3,000 values (Siegmund's approximation of the average run
-    length; some 60,000 events at a 5% hold-out), a stream of 9 in 10 above in about 30 values (600
-    events), of 6 in 10 in about 200. Garbage events count too: an alarm only opens the question that
-    :func:`change_confirmed` answers."""
+    """**Change alarm** (the first half of *change confirmed*). Watches, per event held out since the
+    last check, whether its averaged-iterate loss exceeds the median of (a regular sample of at most
+    500 of) the older window events: on a stationary feed the events are exchangeable and none was
+    learned, so this is a fair coin (slightly below 1/2 while the average improves) whatever the loss,
+    noise or scale; after an abrupt change nearly every new event lands above. The 0/1 values go, one
+    per event, to river's Page-Hinkley test (Page 1954; mode "up", ``drift_delta`` tolerated rise,
+    ``drift_threshold`` lambda, ``drift_min_events``) or ADWIN (Bifet and Gavaldà 2007,
+    ``adwin_delta``). With delta 0.05 and lambda 10 a fair coin crosses lambda about once in 3,000
+    values (Siegmund's approximation of the average run length: some 60,000 events at a 5% hold-out),
+    9 in 10 above in about 30 values, 6 in 10 in about 200. Garbage counts too: an alarm only opens
+    the question that :func:`change_confirmed` answers."""
     return detector.feed(fig.above.astype(np.float64).tolist())
 
 
 def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) -> dict | None:
     """**Change confirmed** -> restart. Watches, once an alarm is open, the events held out *after* the
-    check that raised it (fresh evidence: the alarm's own events are not reused). Threshold: at least
-    ``MIN_FRESH`` (15) of them usable, fewer than half garbage (a burst of absurd labels is a rollback
-    matter; it ends, a change does not), and the averaged iterate worse on them than on the pre-alarm
-    events, at level ``drift_level`` and by more than ``rollback_margin``, by either of two tests: an
-    exact one-sided sign test against the pre-alarm median (robust, and the stronger one when most
-    events get worse), or, from 30 fresh events on, a one-sided Welch test of the means (B. L. Welch,
-    1947, "The generalization of Student's problem when several different population variances are
-    involved", Biometrika 34; the stronger one when a minority of events gets much worse, as when a
-    linear model misfits a nonlinear feed). Only the average must be worse: it is what a restart
-    replaces; the raw iterate usually follows the new feed within a few hundred updates. Returns the
-    evidence when confirmed, else ``None`` (the caller dismisses the alarm after ``drift_confirm``
-    checks)."""
+    check that raised it (fresh evidence). Threshold: at least ``MIN_FRESH`` of them usable, fewer
+    than half garbage (a burst of absurd labels is a rollback matter: it ends, a change does not), and
+    the averaged iterate worse on them than on the pre-alarm events, by more than ``rollback_margin``
+    and at level ``drift_level`` in either of two one-sided tests: the exact sign test against the
+    pre-alarm median (robust; the stronger when most events get worse) or, from 30 fresh events on,
+    Welch's test of the means (B. L. Welch, 1947, "The generalization of Student's problem when several
+    different population variances are involved", Biometrika 34; the stronger when a minority gets
+    much worse, as when a linear model misfits a nonlinear feed). Only the average must be worse: it
+    is what a restart replaces. Returns the evidence, or ``None`` (the caller dismisses the alarm after
+    ``drift_confirm`` checks)."""
     fresh = fig.after(state.alarm_check)
     early = int(np.searchsorted(fig.events, state.alarm_from, "left"))  # events[:early]: before the alarm
     pick, before = fig.usable[fresh:], fig.usable[:early]
@@ -178,13 +173,12 @@ def welch_pvalue(new: np.ndarray, old: np.ndarray) -> float:
 
 
 def boundary_pinned(state: RuleState, on_boundary: bool, cfg: MonitorConfig) -> bool | None:
-    """**Boundary pinned** -> incident and warning. Watches whether the raw iterate lies on the
-    constraint set's boundary (a ball: its norm within 0.1% of the radius) at each check; projected SGD
-    keeps it there when the unconstrained optimum lies outside the set. Threshold: on the boundary at
-    a share ``boundary_share`` or more of the last ``boundary_checks`` checks. Then the certificate's
-    bound holds for the best point *in the set*, which may be a poor model: the radius is probably
-    too small. Returns ``True`` when a pinned stretch begins, ``False`` when it ends (share below half
-    the threshold), else ``None``."""
+    """**Boundary pinned** -> incident and warning. Watches whether the raw iterate lies on the ball's
+    boundary (its norm within 0.1% of the radius) at each check, where projected SGD keeps it when the
+    unconstrained optimum lies outside. Threshold: a share ``boundary_share`` of the last
+    ``boundary_checks`` checks. The certificate then speaks of the best point *in the ball*, which may
+    be a poor model. Returns ``True`` when a pinned stretch begins, ``False`` when it ends (share
+    below half the threshold), else ``None``."""
     state.on_boundary = (state.on_boundary + [int(on_boundary)])[-cfg.boundary_checks:]
     share = sum(state.on_boundary) / cfg.boundary_checks
     if not state.boundary_open and share >= cfg.boundary_share:

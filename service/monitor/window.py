@@ -1,12 +1,11 @@
 """The held-out window: the newest held-out events (never learned) and their losses under both iterates.
 
-A batch's held-out events are kept when the batch arrives, before it is learned (they are never learned,
-so nothing about them changes): one copy per batch, not one per check. A check at event ``e`` then
-scores the newest ``size`` kept events up to ``e``. Events are kept as compressed sparse rows in
-event order, in buffers with room for twice the window; once full, the newest rows move to the front.
-What a check scores is therefore one contiguous slice, scored by one call of the model's own compiled
-scorer (``LinearModel.score_rows_both``, both iterates in one pass) and the loss in numpy: the losses
-are exactly the model's.
+A batch's held-out events are kept when it arrives, before it is learned (nothing about them changes
+later), and a check at event ``e`` scores the newest ``size`` kept events up to ``e``. They are kept
+as compressed sparse rows in event order, in buffers with room to spare (once full, the kept rows
+move to the front of new ones), so a check scores one contiguous slice with one call of the model's
+own compiled scorer (``LinearModel.score_rows_both``, both iterates in one pass) and the loss in
+numpy: the losses are exactly the model's.
 """
 
 from __future__ import annotations
@@ -20,13 +19,7 @@ __all__ = ["HeldOutWindow"]
 
 
 class HeldOutWindow:
-    """The newest ``size`` held-out events of a model, oldest first.
-
-    Parameters
-    ----------
-    size
-        Events a check scores.
-    """
+    """The newest ``size`` held-out events of a model (the events a check scores), oldest first."""
 
     def __init__(self, size: int) -> None:
         self.size = size
@@ -75,32 +68,22 @@ class HeldOutWindow:
         self._hi = hi + n
 
     def _make_room(self, rows: int, coords: int) -> None:
-        """Move the kept rows to the front when the buffers cannot take ``rows`` more; grow them when
-        even that is not enough (a batch larger than the window, or wider rows than before)."""
-        if self._hi + rows < len(self._ptr) and self._ptr[self._hi] + coords <= len(self._indices):
-            return
-        self._keep_last(self._hi - self._lo)
-        need_rows, need_coords = self._hi + rows, int(self._ptr[self._hi]) + coords
-        if need_rows >= len(self._ptr):
-            self._ptr = _grown(self._ptr, 2 * need_rows + 1)
-            self._y, self._events = _grown(self._y, 2 * need_rows), _grown(self._events, 2 * need_rows)
-        if need_coords > len(self._indices):
-            self._indices = _grown(self._indices, 2 * need_coords)
-            self._values = _grown(self._values, 2 * need_coords)
-
-    def _keep_last(self, keep: int) -> None:
-        """Keep only the newest ``keep`` rows, moved to the front of the buffers."""
-        lo, hi = self._hi - keep, self._hi
+        """When the buffers cannot take ``rows`` more rows of ``coords`` coordinates, move the kept rows
+        to the front of new ones with room for them (at least as large as before)."""
+        lo, hi = self._lo, self._hi
         first, last = int(self._ptr[lo]), int(self._ptr[hi])
-        self._ptr[:keep + 1] = self._ptr[lo:hi + 1] - first
-        self._y[:keep], self._events[:keep] = self._y[lo:hi], self._events[lo:hi]
-        self._indices[:last - first] = self._indices[first:last]
-        self._values[:last - first] = self._values[first:last]
-        self._lo, self._hi = 0, keep
+        if hi + rows < len(self._ptr) and last + coords <= len(self._indices):
+            return
+        room, coord_room = max(len(self._y), 2 * (hi - lo + rows)), max(len(self._indices), 2 * (last - first + coords))
+        self._ptr = _moved(self._ptr, lo, hi + 1, room + 1) - first
+        self._y, self._events = _moved(self._y, lo, hi, room), _moved(self._events, lo, hi, room)
+        self._indices = _moved(self._indices, first, last, coord_room)
+        self._values = _moved(self._values, first, last, coord_room)
+        self._lo, self._hi = 0, hi - lo
 
     def drop_before(self, event: int) -> None:
         """Forget the events held out before ``event`` (after a real change)."""
-        self._keep_last(int(np.count_nonzero(self._events[self._lo:self._hi] >= event)))
+        self._lo += int(np.count_nonzero(self._events[self._lo:self._hi] < event))
 
     def losses(self, model: LinearModel, upto: int | None = None) -> tuple[np.ndarray, np.ndarray] | None:
         """``(losses, events)`` of the window up to event ``upto``, oldest first: ``losses[0]`` under the
@@ -129,7 +112,8 @@ class HeldOutWindow:
         self.add(rows, arrays["window_y"], np.arange(len(lens)), arrays["window_events"])
 
 
-def _grown(a: np.ndarray, n: int) -> np.ndarray:
-    out = np.zeros(n, dtype=a.dtype)
-    out[:len(a)] = a
+def _moved(a: np.ndarray, lo: int, hi: int, size: int) -> np.ndarray:
+    """``a[lo:hi]`` at the front of a new zeroed array of ``size`` elements."""
+    out = np.zeros(size, dtype=a.dtype)
+    out[:hi - lo] = a[lo:hi]
     return out
