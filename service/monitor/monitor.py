@@ -1,9 +1,9 @@
 """The stability monitor: held-out loss, rollback to the averaged model, restart after a real change.
 
-The convergence guarantees of projected SGD hold in expectation on a stationary feed; live feeds
-change and labels are sometimes wrong. The monitor keeps the newest ``window`` held-out events
-(``window.py``, never learned); every ``check_every`` learned events it scores them with both
-iterates and applies the rules of ``rules.py`` (each documented there) in this order:
+Projected SGD's guarantees hold on a stationary feed; live feeds change and labels are sometimes
+wrong. The monitor keeps the newest ``window`` held-out events (``window.py``, never learned); every
+``check_every`` learned events it scores them with both iterates and applies the rules of
+``rules.py`` (each documented there) in this order:
 
 1. *non-finite update*, *distance*, *rollback* -> roll back: restore the newest *trusted copy* of the
    model (taken every ``snapshot_every`` healthy checks in a row: a uniform average absorbs each astray
@@ -67,10 +67,9 @@ class Monitor:
 
     Notes
     -----
-    The engine hands over each batch's held-out events before learning it (:meth:`hold_out`), reports
-    refused updates and rejected input, calls :meth:`check` every ``check_every`` learned events and
-    adopts the model :meth:`take_restored` returns after a rollback. ``incidents`` lists ``{kind,
-    event, ts, reason, evidence}``; the state round-trips through :meth:`to_bytes` (no pickle).
+    The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events,
+    and adopts the model :meth:`take_restored` returns after a rollback. ``incidents`` lists ``{kind,
+    event, ts, reason, evidence}``.
     """
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
@@ -157,9 +156,8 @@ class Monitor:
         losses, events = scored
         n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
         older = losses[1, :n_old] if n_old >= MIN_EVENTS else losses[1]
-        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (they are
-        # exchangeable, so a new event still lands above it with probability 1/2); an odd sample's
-        # median is one element, found by a partition (np.median costs 40 us)
+        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (exchangeable, so a new
+        # event still lands above it with probability 1/2); odd, so a partition finds it (np.median: 40 us)
         sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
         sample = sample[:len(sample) - 1 + len(sample) % 2]
         reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
@@ -288,9 +286,8 @@ class Monitor:
                                             for k, v in evidence.items()}})
 
     def to_bytes(self) -> bytes:
-        """The monitor's state: a JSON header (layout version, rule state, detector fields, incidents)
-        and raw arrays (the window, ADWIN's input, the trusted copy's bytes), in ``models.snapshot``'s
-        checksummed container. No pickle."""
+        """The state, no pickle: a JSON header (layout, rule state, detector fields, incidents) and arrays
+        (the window, ADWIN's input, the trusted copy's bytes) in ``models.snapshot``'s container."""
         fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
         trusted = self._trusted.to_bytes() if self._trusted is not None else b""
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
@@ -300,9 +297,8 @@ class Monitor:
         return pack(header, arrays, {})[0]
 
     def load_bytes(self, blob: bytes) -> None:
-        """Restore a state :meth:`to_bytes` wrote. A state of another layout (another trimtab version's)
-        is refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint
-        or replays the journal)."""
+        """Restore a state :meth:`to_bytes` wrote; one of another layout is refused with ``ValueError``
+        before anything changes (recovery then uses an older checkpoint or replays the journal)."""
         try:
             header, arrays, _, _ = unpack(blob)
         except Exception as exc:  # not even the container: older than the layouts

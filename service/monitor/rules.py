@@ -63,7 +63,7 @@ class CheckFigures:
 
     def after(self, event: int) -> int:
         """Index of the first window event held out after ``event``."""
-        return int(np.searchsorted(self.events, event, "right"))
+        return int(self.events.searchsorted(event, "right"))
 
 
 def non_finite_update(state: RuleState) -> str | None:
@@ -136,7 +136,7 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     is what a restart replaces. Returns the evidence, or ``None`` (the caller dismisses the alarm after
     ``drift_confirm`` checks)."""
     fresh = fig.after(state.alarm_check)
-    early = int(np.searchsorted(fig.events, state.alarm_from, "left"))  # events[:early]: before the alarm
+    early = int(fig.events.searchsorted(state.alarm_from))  # events[:early]: before the alarm
     pick, before = fig.usable[fresh:], fig.usable[:early]
     n = int(np.count_nonzero(pick))
     garbage = len(pick) - n
