@@ -96,7 +96,6 @@ class ChangeDetector:
         for x in values:  # on past a detection, as the first time
             self.feed((x,))
 
-    # ---------------------------------------------------------------- state
     def state(self) -> tuple[dict, np.ndarray]:
         """``(fields, values)``: Page-Hinkley's fields, or the values ADWIN was fed since its reset."""
         if self._fed is not None:

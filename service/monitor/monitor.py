@@ -161,10 +161,7 @@ class Monitor:
         sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
         sample = sample[:len(sample) - 1 + len(sample) % 2]
         reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
-        if reference > 0:
-            usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference
-        else:
-            usable = np.ones(len(events), dtype=bool)
+        usable = np.minimum(losses[0], losses[1]) <= (self._absurd * reference if reference > 0 else math.inf)
         n_usable = int(np.count_nonzero(usable))
         kept = losses if n_usable == len(events) else losses[:, usable]
         raw, avg = (kept.sum(axis=1) / n_usable).tolist() if n_usable else (math.nan, math.nan)

@@ -92,7 +92,6 @@ class HeldOutWindow:
         spec = model.spec
         return loss_value(spec.loss, margins, self._y[lo:hi], spec.huber_delta), self._events[lo:hi]
 
-    # ---------------------------------------------------------------- state
     def to_arrays(self) -> dict[str, np.ndarray]:
         """The window's events only (a restored window continues identically)."""
         lo, hi = self.span()
