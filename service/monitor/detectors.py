@@ -5,10 +5,10 @@ and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing
 river's own classes, loaded from their modules without ``river.drift``'s package import, which
 imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
 
-Page-Hinkley is saved by its fields. river's ADWIN keeps its buckets in compiled code that exposes no
-fields, so it is saved as the values fed to it since its last reset and rebuilt by feeding them again
-(it is a deterministic function of its input). That input is capped at ``ADWIN_MEMORY`` values:
-beyond it the detector is rebuilt from the newest half, alike with and without checkpoints.
+Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
+the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
+most ``ADWIN_MEMORY`` of them: beyond, it is rebuilt from the newest half, alike with and without
+checkpoints.
 """
 
 from __future__ import annotations
@@ -57,11 +57,9 @@ class ChangeDetector:
         self._fed: list[float] | None = [] if self.kind == "adwin" else None  # ADWIN's input since its reset
 
     def rearm(self) -> None:
-        """Look for a change again after an alarm that was dismissed. Page-Hinkley keeps the running mean
-        it learned (the alarm was no change, so it still describes the feed) and starts its cumulative
-        sums afresh: a fresh start would learn its mean from whatever comes next, and a change that
-        began while the alarm was open would then look normal. ADWIN starts afresh (its window already
-        dropped what it judged to be the past)."""
+        """Look for a change again after a dismissed alarm. Page-Hinkley keeps the mean it learned (it still
+        describes the feed; a fresh start would learn it from whatever comes next, so a change that began
+        while the alarm was open would look normal) and restarts its sums; ADWIN starts afresh."""
         if self.kind == "adwin":
             self.reset()
             return

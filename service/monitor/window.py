@@ -1,11 +1,10 @@
 """The held-out window: the newest held-out events (never learned) and their losses under both iterates.
 
 A batch's held-out events are kept when it arrives, before it is learned (nothing about them changes
-later), and a check at event ``e`` scores the newest ``size`` kept events up to ``e``. They are kept
-as compressed sparse rows in event order, in buffers with room to spare (once full, the kept rows
-move to the front of new ones), so a check scores one contiguous slice with one call of the model's
-own compiled scorer (``LinearModel.score_rows_both``, both iterates in one pass) and the loss in
-numpy: the losses are exactly the model's.
+later); a check at event ``e`` scores the newest ``size`` of them up to ``e``. They are kept as sparse
+rows in event order in buffers with room to spare, so a check scores one contiguous slice with the
+model's own compiled scorer (``LinearModel.score_rows_both``, both iterates in one pass) and the loss
+in numpy: the losses are exactly the model's.
 """
 
 from __future__ import annotations
