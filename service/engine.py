@@ -176,6 +176,8 @@ class Engine:
         first = self.events
         actions = []
         self.baseline.update(y, mode)
+        if self.monitor is not None:  # held-out events are never learned: the window takes them all now
+            self.monitor.hold_out(rows, y, mode, first)
         i = 0
         while i < n:
             budget = self._check_every - self._since_check
@@ -194,16 +196,13 @@ class Engine:
             if self.monitor is not None and refused:
                 self.monitor.note_refused(refused)
             self.refused += refused
-            segment = (rows, y, mode, i, nxt, first)
             i = nxt
             if self._since_check >= self._check_every:
                 self._since_check = 0
-                record = self._check(first + i - 1, batch.ts[i - 1], segment)  # the check keeps its held-out rows
+                record = self._check(first + i - 1, batch.ts[i - 1])
                 record["baseline_holdout"] = self.baseline.holdout_at(i)
                 if record.get("action"):
                     actions.append(record)
-            elif self.monitor is not None:
-                self.monitor.hold_out(*segment)
         learned = int(np.count_nonzero(mode == 1))
         held = int(np.count_nonzero(mode == 2))
         self.events += n
@@ -220,11 +219,11 @@ class Engine:
             self._tally.update(target, pred)
         return Applied(out, first, learned, held, n - learned - held, int(np.count_nonzero(out.code == 2)), actions)
 
-    def _check(self, event: int, ts: float, held: tuple | None = None) -> dict:
+    def _check(self, event: int, ts: float) -> dict:
         ts = None if np.isnan(ts) else float(ts)
         record = {"event": event}
         if self.monitor is not None:
-            record = self.monitor.check(self.model, event, ts, held)
+            record = self.monitor.check(self.model, event, ts)
             restored = self.monitor.take_restored()
             if restored is not None:  # a rollback went back to the last trusted state
                 self.model = restored

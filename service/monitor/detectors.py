@@ -1,20 +1,14 @@
-"""river's change detectors (Page-Hinkley, ADWIN) behind one small interface whose state is plain data.
+"""river's change detectors behind one small interface whose state is plain data (no pickle).
 
-* Page-Hinkley: E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41, 100-115; river's
-  ``drift.PageHinkley`` (running mean, forgetting factor ``alpha``, tolerance ``delta``, ``threshold``).
-* ADWIN: A. Bifet and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing",
-  SIAM International Conference on Data Mining; river's ``drift.ADWIN``.
+Page-Hinkley (E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41) and ADWIN (A. Bifet
+and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing", SIAM SDM) are
+river's own classes, loaded from their modules without ``river.drift``'s package import, which
+imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
 
-Both classes are river's own. They are loaded from their modules without running ``river.drift``'s
-package import, which imports ``river.datasets`` and through it scikit-learn (1.9 s of a replay's
-start, measured with ``python -X importtime``; the two detector modules need only ``river.stats``
-and ``river.base``, about 0.2 s).
-
-State without pickle: Page-Hinkley is saved by its fields (a handful of floats). river's ADWIN keeps
-its buckets inside compiled code that exposes no fields, so it is saved as the values fed to it since
-its last reset and rebuilt by feeding them again (a deterministic function of its input). That input
-is capped at ``ADWIN_MEMORY`` values: beyond it the detector is rebuilt from the newest half, the
-same way in a run that is checkpointed and one that is not.
+Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
+the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
+most ``ADWIN_MEMORY`` of them: beyond, it is rebuilt from the newest half, alike with and without
+checkpoints.
 """
 
 from __future__ import annotations
@@ -26,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["ADWIN_MEMORY", "ChangeDetector", "river_detector", "sign_test_pvalue"]
+__all__ = ["ADWIN_MEMORY", "ChangeDetector", "river_detector"]
 
 ADWIN_MEMORY = 1 << 16
 _PH_FIELDS = ("_sum_increase", "_sum_decrease", "_min_increase", "_max_decrease")
@@ -45,26 +39,9 @@ def river_detector(name: str):
     return getattr(loaded, name)
 
 
-def sign_test_pvalue(above: int, n: int) -> float:
-    """One-sided sign test: ``P(Binomial(n, 1/2) >= above)``."""
-    return sum(math.comb(n, i) for i in range(above, n + 1)) / 2.0**n if n else 1.0
-
-
 class ChangeDetector:
-    """A river detector (``"page_hinkley"`` or ``"adwin"``) behind ``update(x) -> bool``.
-
-    ``params`` go to river's class unchanged (none: river's defaults). After a detection the
-    detector starts afresh at the next value, as river's do.
-
-    Examples
-    --------
-    >>> import random
-    >>> rng = random.Random(12345)
-    >>> stream = rng.choices([0, 1], k=1000) + rng.choices(range(4, 8), k=1000)
-    >>> ph = ChangeDetector("page_hinkley")
-    >>> [i for i, x in enumerate(stream) if ph.update(x)]
-    [1006]
-    """
+    """A river detector, ``"page_hinkley"`` or ``"adwin"``; ``params`` go to river's class unchanged
+    (none: river's defaults). After a detection it starts afresh at the next value, as river's do."""
 
     KINDS = ("adwin", "page_hinkley")
 
@@ -73,20 +50,16 @@ class ChangeDetector:
             raise ValueError(f"Invalid detector {kind!r}. Valid values are: {', '.join(self.KINDS)}")
         self.kind = kind
         self.params = dict(params)
-        self._fed: list[float] = []  # ADWIN only: the values since its last reset
         self.reset()
 
     def reset(self) -> None:
-        cls = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")
-        self._det = cls(**self.params)
-        self._fed = []
+        self._det = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+        self._fed: list[float] | None = [] if self.kind == "adwin" else None  # ADWIN's input since its reset
 
     def rearm(self) -> None:
-        """Look for a change again after an alarm that was dismissed. Page-Hinkley keeps the running mean
-        it learned (the alarm was no change, so it still describes the feed) and starts its cumulative
-        sums afresh; a fresh start would learn its mean from whatever comes next, and a change that
-        happened while the alarm was open would then look normal. ADWIN starts afresh (its window
-        already dropped what it judged to be the past)."""
+        """Look for a change again after a dismissed alarm. Page-Hinkley keeps the mean it learned (it still
+        describes the feed; a fresh start would learn it from whatever comes next, so a change that began
+        while the alarm was open would look normal) and restarts its sums; ADWIN starts afresh."""
         if self.kind == "adwin":
             self.reset()
             return
@@ -97,27 +70,35 @@ class ChangeDetector:
 
     def update(self, x: float) -> bool:
         """Feed one value; ``True`` when the detector signals a change at this value."""
-        x = float(x)
-        if self._det.drift_detected:
-            self.reset()
-        if self.kind == "adwin":
-            if len(self._fed) >= ADWIN_MEMORY:
-                self._refeed(self._fed[len(self._fed) // 2:])
-            self._fed.append(x)
-        self._det.update(x)
-        return bool(self._det.drift_detected)
+        return self.feed([float(x)])
 
-    def _refeed(self, values) -> None:
+    def feed(self, values) -> bool:
+        """Feed ``values`` in order up to the first that signals a change (``True``; the rest are not fed)."""
+        det = self._det
+        for x in values:
+            if det.drift_detected:
+                self.reset()
+                det = self._det
+            if self._fed is not None:
+                if len(self._fed) >= ADWIN_MEMORY:
+                    self._refeed(self._fed[len(self._fed) // 2:])
+                    det = self._det
+                self._fed.append(x)
+            det.update(x)
+            if det.drift_detected:
+                return True
+        return False
+
+    def _refeed(self, values: list[float]) -> None:
         self.reset()
-        for v in values:
-            self.update(v)
+        for x in values:  # on past a detection, as the first time
+            self.feed((x,))
 
-    # ---------------------------------------------------------------- state
     def state(self) -> tuple[dict, np.ndarray]:
         """``(fields, values)``: Page-Hinkley's fields, or the values ADWIN was fed since its reset."""
-        det = self._det
-        if self.kind == "adwin":
+        if self._fed is not None:
             return {"kind": "adwin"}, np.asarray(self._fed, dtype=np.float64)
+        det = self._det
         fields = {k: float(getattr(det, k)) for k in _PH_FIELDS}
         fields.update(kind="page_hinkley", n=float(det._x_mean.n), mean=float(det._x_mean._mean),
                       detected=bool(det._drift_detected))
@@ -127,7 +108,7 @@ class ChangeDetector:
         if fields.get("kind") != self.kind:
             raise ValueError(f"detector state of kind {fields.get('kind')!r}, this config's is {self.kind!r}")
         self.reset()
-        if self.kind == "adwin":
+        if self._fed is not None:
             self._refeed(values.tolist())
             return
         det = self._det

@@ -1,26 +1,25 @@
 """The stability monitor: held-out loss, rollback to the averaged model, restart after a real change.
 
-The convergence guarantees of projected SGD hold in expectation on a stationary feed; live feeds
-change and labels are sometimes wrong. The monitor keeps the newest ``window`` held-out events
-(``window.py``, never learned); every ``check_every`` learned events it scores them with both
-iterates and applies the rules of ``rules.py``, where each is documented, in this order:
+Projected SGD's guarantees hold on a stationary feed; live feeds change and labels are sometimes
+wrong. The monitor keeps the newest ``window`` held-out events (``window.py``, never learned); every
+``check_every`` learned events it scores them with both iterates and applies the rules of
+``rules.py`` (each documented there) in this order:
 
-1. *non-finite update*, *distance*, *rollback*: roll back to the newest *trusted copy* of the model
-   (taken every ``snapshot_every`` healthy checks in a row; a uniform average absorbs each astray
+1. *non-finite update*, *distance*, *rollback* -> roll back: restore the newest *trusted copy* of the
+   model (taken every ``snapshot_every`` healthy checks in a row: a uniform average absorbs each astray
    update at once, so raw := averaged alone would keep the damage), set its raw iterate to its
    averaged one and multiply every later step by ``rollback_shrink``;
-2. *change confirmed*: restart. The average starts again from the raw iterate, the step schedule
+2. *change confirmed* -> restart: the average starts again from the raw iterate, the step schedule
    and ``G`` re-warm, the held-out events from before the change and the trusted copy are dropped;
-3. *boundary pinned*: an incident and a standing warning (:attr:`Monitor.warnings`).
+3. *boundary pinned* -> an incident and a standing warning (:attr:`Monitor.warnings`).
 
 Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
-times the median of the older window events (a garbage target is far from both iterates, so it
-says nothing about which is better), and losses that overflowed (not finite or above
-``models.losses.OVERFLOW_LOSS``), which would turn both means into inf or NaN. Rejected-input
-bursts (a share above ``reject_burst_share`` of the last ``reject_window`` events) are incidents
-too, one per burst.
-Every change of the step scale (a rollback multiplies it by ``rollback_shrink``, a restart sets it
-back to 1) is an incident of its own, ``step_scale``, with the old and the new factor.
+times the median of the older window events (a garbage target is far from both iterates, so it says
+nothing about which is better), and losses that overflowed (not finite or above
+``models.losses.OVERFLOW_LOSS``), which would turn both means into inf or NaN. A burst of rejected
+input (a share above ``reject_burst_share`` of the last ``reject_window`` events) is an incident too,
+one per burst. Every change of the step scale (a rollback multiplies it by ``rollback_shrink``, a
+restart sets it back to 1) is an incident of its own, ``step_scale``, with the old and the new factor.
 """
 
 from __future__ import annotations
@@ -41,7 +40,7 @@ from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
 from service.monitor.window import HeldOutWindow
 
-__all__ = ["LAYOUT", "Monitor"]
+__all__ = ["LAYOUT", "Monitor", "copy_model"]
 
 #: the version of :meth:`Monitor.to_bytes`' layout; a state of another one is refused
 LAYOUT = 2
@@ -72,10 +71,9 @@ class Monitor:
 
     Notes
     -----
-    The engine feeds held-out events (:meth:`hold_out`), refused updates and rejected input, calls
-    :meth:`check` every ``check_every`` learned events and adopts the model :meth:`take_restored`
-    returns after a rollback. ``incidents`` lists ``{kind, event, ts, reason, evidence}``; the state
-    round-trips through :meth:`to_bytes` (no pickle).
+    The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events,
+    and adopts the model :meth:`take_restored` returns after a rollback. ``incidents`` lists ``{kind,
+    event, ts, reason, evidence}``.
     """
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
@@ -97,7 +95,7 @@ class Monitor:
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None
         self.incidents: list[dict] = []
-        self._rejects: list[list[int]] = []
+        self._rejects: list[list[int]] = []  # [rejected, total] per report, newest last
         self._reject_open = False
 
     @property
@@ -129,10 +127,10 @@ class Monitor:
         fig = self._figures(model)
         return {"raw": None, "averaged": None} if fig is None else {"raw": fig.raw, "averaged": fig.averaged}
 
-    def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, start: int, stop: int, first: int) -> None:
-        """Keep the held-out events (``mode == 2``) among rows ``start..stop`` of a batch whose row 0 is
-        event ``first``."""
-        picked = start + np.flatnonzero(mode[start:stop] == 2)
+    def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, first: int) -> None:
+        """Keep the held-out events (``mode == 2``) of a batch whose row 0 is event ``first``, before the
+        batch is learned: a check scores only the events up to its own."""
+        picked = np.flatnonzero(mode == 2)
         self.window.add(rows, y, picked, first + picked)
 
     def note_refused(self, count: int) -> None:
@@ -143,9 +141,8 @@ class Monitor:
         if total <= 0:
             return
         self._rejects.append([rejected, total])
-        # keep the newest reports that cover ``reject_window`` events
         while len(self._rejects) > 1 and sum(t for _, t in self._rejects[1:]) >= self.cfg.reject_window:
-            self._rejects.pop(0)
+            self._rejects.pop(0)  # the newest reports that cover ``reject_window`` events are enough
         bad, n = (sum(col) for col in zip(*self._rejects))
         share = bad / n
         if share > self.cfg.reject_burst_share and n >= min(self.cfg.reject_window, 50) and not self._reject_open:
@@ -155,71 +152,68 @@ class Monitor:
         elif share < self.cfg.reject_burst_share / 2:
             self._reject_open = False
 
-    def _figures(self, model: LinearModel) -> CheckFigures | None:
-        if not len(self.window):
+    def _figures(self, model: LinearModel, upto: int | None = None) -> CheckFigures | None:
+        """The window's figures up to event ``upto`` (``None``: all), garbage left out of the means."""
+        scored = self.window.losses(model, upto)
+        if scored is None:
             return None
-        scored = self.window.losses(model)
-        losses = scored.losses
-        new = scored.events > (self.state.checks[-1] if self.state.checks else -1)
-        older = losses[1, :len(new) - int(np.count_nonzero(new))]  # the window is in order: new events last
-        if len(older) < MIN_EVENTS:
-            older = losses[1]
-        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events: the events are
-        # exchangeable, so a new event still lands above it with probability 1/2 (at a quarter of the cost)
+        losses, events = scored
+        n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
+        older = losses[1, :n_old] if n_old >= MIN_EVENTS else losses[1]
+        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (exchangeable, so a new
+        # event still lands above it with probability 1/2); odd, so a partition finds it (np.median: 40 us)
         sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
-        sample = sample[:len(sample) - 1 + len(sample) % 2]  # odd: its median is one element (np.median costs 40 us)
+        sample = sample[:len(sample) - 1 + len(sample) % 2]
         reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
-        usable = np.minimum(losses[0], losses[1]) <= self._absurd * reference if reference > 0 else \
-            np.ones(len(new), dtype=bool)
-        # a loss that overflowed (a feature of 1e300, :data:`models.losses.OVERFLOW_LOSS`) would make both
-        # means inf or NaN: left out like garbage
-        usable &= ~overflowed(losses).any(axis=0)
-        kept = losses if usable.all() else losses[:, usable]
-        raw, avg = (kept.sum(axis=1) / kept.shape[1]).tolist() if kept.shape[1] else (math.nan, math.nan)
+        usable = np.minimum(losses[0], losses[1]) <= (self._absurd * reference if reference > 0 else math.inf)
+        usable &= ~overflowed(losses).any(axis=0)  # a loss of 1e300 would make both means inf or NaN
+        n_usable = int(np.count_nonzero(usable))
+        kept = losses if n_usable == len(events) else losses[:, usable]
+        raw, avg = (kept.sum(axis=1) / n_usable).tolist() if n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
-        return CheckFigures(losses, scored.events, usable, new, reference, raw, avg, model.distance(), allowance)
+        return CheckFigures(losses, events, usable, n_usable, n_old, reference, losses[1, n_old:] > reference,
+                            raw, avg, model.distance(), allowance)
 
-    def check(self, model: LinearModel, event: int, ts: float | None = None, held: tuple | None = None) -> dict:
-        """Score the window, apply the rules, act; return the check's record. ``held``: ``(rows, y,
-        mode, start, stop, first)`` as for :meth:`hold_out`, kept first."""
-        if held is not None:
-            self.hold_out(*held)
-        cfg, state = self.cfg, self.state
+    def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
+        """Score the window up to ``event``, apply the rules, act; return the check's record."""
+        state = self.state
         g = model.grad_bound  # the smallest since the restart: a burst inflates the estimate, not the noise
         if g and 0.0 < g * g < state.g2_min:
             state.g2_min = g * g
-        fig = self._figures(model)
+        fig = self._figures(model, event)
         record = {"event": int(event), "action": None, "holdout_raw": None, "holdout_avg": None, "held_out": 0,
                   "excluded": 0, "distance": model.distance() if fig is None else fig.distance}
         if fig is not None:
-            usable = int(np.count_nonzero(fig.usable))
             record.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, held_out=len(fig.events),
-                          excluded=len(fig.events) - usable, allowance=fig.allowance)
-            if np.any(fig.new) and len(fig.events) - np.count_nonzero(fig.new) >= MIN_EVENTS:
-                record["exceedance"] = float(np.mean(fig.losses[1, fig.new] > fig.reference))
+                          excluded=len(fig.events) - fig.n_usable, allowance=fig.allowance)
+            if len(fig.above) and fig.n_old >= MIN_EVENTS:
+                record["exceedance"] = np.count_nonzero(fig.above) / len(fig.above)
         rolled = self._rollback_rules(model, fig, event, ts, record)
         if fig is not None and self._detector is not None and not rolled:
             self._change_rules(model, fig, event, ts, record)
-        if cfg.serve == "better" and fig is not None and math.isfinite(fig.raw):
+        if self.cfg.serve == "better" and fig is not None and math.isfinite(fig.raw):
             state.raw_served = fig.raw < fig.averaged
-        self._boundary_rule(model, event, ts)
+        if self._ball and self._radius:
+            on = model.raw_norm() >= self._radius * (1.0 - 1e-3)  # within 0.1%: projected back there
+            if rules.boundary_pinned(state, on, self.cfg):
+                self._incident("boundary", event, ts, self.warnings[0],
+                               {"radius": self._radius, "norm_raw": model.raw_norm()})
         state.checks = (state.checks + [int(event)])[-_KEPT_CHECKS:]
         record["serving"] = self.serving
         return record
 
     def _rollback_rules(self, model: LinearModel, fig: CheckFigures | None, event: int, ts, record: dict) -> bool:
-        """Non-finite update, distance, rollback (held-out loss); act on the first that fires."""
+        """Non-finite update, distance, rollback (held-out loss): act on the first that fires."""
         cfg, state = self.cfg, self.state
-        limit = cfg.divergence_radii * (self._radius if self._radius else max(model.norm("averaged"), 1.0))
-        reason = rules.non_finite_update(state)
-        refused, by_loss = state.refused, False
+        reason, refused, by_loss = rules.non_finite_update(state), state.refused, False
         state.refused = 0
         if reason is None and fig is not None:
+            limit = cfg.divergence_radii * (self._radius or max(model.norm("averaged"), 1.0))
             reason = rules.too_far_from_average(fig, limit)
             if reason is None:
                 patience = state.checks[-cfg.rollback_patience] if len(state.checks) >= cfg.rollback_patience else -1
-                reason = rules.raw_persistently_worse(fig, state, cfg, fig.events > patience)
+                reason = rules.raw_persistently_worse(fig, state, cfg, fig.after(patience))
                 by_loss = reason is not None
         if reason is not None and not cfg.rollback:
             state.ignored += 1
@@ -242,57 +236,44 @@ class Monitor:
         evidence = {"step_scale": model.step_scale, "restored_from": self._trusted_event if restore else None}
         if fig is not None:
             evidence.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, distance=fig.distance,
-                            allowance=fig.allowance, held_out=int(np.count_nonzero(fig.usable)))
+                            allowance=fig.allowance, held_out=fig.n_usable)
         self._incident("rollback", event, ts, reason, evidence)
         self._step_scale_changed(event, ts, before, model.step_scale, "rollback")
         record["action"] = "rollback"
         return True
 
     def _change_rules(self, model: LinearModel, fig: CheckFigures, event: int, ts, record: dict) -> None:
-        """Feed the detector, open an alarm, confirm (restart) or dismiss an open one."""
+        """Feed the detector and open an alarm, or confirm (restart) or dismiss the open one."""
         state = self.state
         if state.alarm_check < 0:
-            if len(fig.events) - np.count_nonzero(fig.new) >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
+            if fig.n_old >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
                 state.alarm_from = (state.checks[-1] + 1) if state.checks else 0
                 state.alarm_check, state.alarm_checks = int(event), 0
                 record["alarm"] = state.alarm_from
             return
         state.alarm_checks += 1
         evidence = rules.change_confirmed(fig, state, self.cfg)
-        if evidence is not None:
-            self._restart(model, event, ts, evidence)
-            record["action"] = "restart"
-        elif state.alarm_checks < self.cfg.drift_confirm:
+        if evidence is None and state.alarm_checks < self.cfg.drift_confirm:
             return
         state.alarm_from = state.alarm_check = -1
-        if evidence is not None:
-            self._detector.reset()
-        else:  # dismissed: the mean it learned before the alarm still holds (see ChangeDetector.rearm)
+        if evidence is None:  # dismissed: the mean it learned before the alarm still holds
             self._detector.rearm()
-
-    def _restart(self, model: LinearModel, event: int, ts, evidence: dict) -> None:
+            return
+        self._detector.reset()
         before = model.step_scale
         model.restart()
         self.window.drop_before(evidence["alarm_event"])
-        state = self.state
         state.g2_min, state.worse_streak, state.healthy, state.alert = math.inf, 0, 0, False
         state.restarted_at = int(event)
         self._trusted = self._trusted_event = None  # a copy from the old world must not come back
+        test = (f"medians; {evidence['above']} of {evidence['n']} fresh events above the old median"
+                if evidence["test"] == "sign" else f"means of {evidence['n']} fresh events, Welch test")
         self._incident("restart", event, ts,
                        f"after event {evidence['alarm_event']:,} the averaged iterate's held-out loss rose from "
-                       f"{evidence['before_averaged']:.4g} to {evidence['recent_averaged']:.4g} ("
-                       + (f"medians; {evidence['above']} of {evidence['n']} fresh events above the old median"
-                          if evidence["test"] == "sign" else f"means of {evidence['n']} fresh events, Welch test")
-                       + f", p = {evidence['p']:.2g}): the feed changed", evidence)
+                       f"{evidence['before_averaged']:.4g} to {evidence['recent_averaged']:.4g} ({test}, "
+                       f"p = {evidence['p']:.2g}): the feed changed", evidence)
         self._step_scale_changed(event, ts, before, model.step_scale, "restart")
-
-    def _boundary_rule(self, model: LinearModel, event: int, ts) -> None:
-        if not (self._ball and self._radius):
-            return
-        on = model.raw_norm() >= self._radius * (1.0 - 1e-3)  # within 0.1%: projected back there
-        if rules.boundary_pinned(self.state, on, self.cfg):
-            self._incident("boundary", event, ts, self.warnings[0],
-                           {"radius": self._radius, "norm_raw": model.raw_norm()})
+        record["action"] = "restart"
 
     def take_restored(self) -> LinearModel | None:
         """The model a rollback restored from the last trusted copy, once (the engine adopts it)."""
@@ -307,8 +288,7 @@ class Monitor:
         self._step_scale_changed(event, None, before, model.step_scale, "rollback")
 
     def _step_scale_changed(self, event: int, ts, old: float, new: float, cause: str) -> None:
-        """An incident for every change of the factor on later steps (a rollback multiplies it by
-        ``rollback_shrink``, a restart sets it back to 1), with the old and the new factor."""
+        """An incident for every change of the factor on later steps, with the old and the new factor."""
         if old == new:
             return
         why = (f"a rollback multiplies every later step by {self.cfg.rollback_shrink:g}" if cause == "rollback"
@@ -322,31 +302,26 @@ class Monitor:
                                             for k, v in evidence.items()}})
 
     def to_bytes(self) -> bytes:
-        """The monitor's state: a JSON header (layout version, rule state, detector fields, incidents)
-        and raw arrays (the window, ADWIN's input, the trusted copy's bytes), in ``models.snapshot``'s
-        checksummed container. No pickle."""
+        """The state, no pickle: a JSON header (layout, rule state, detector fields, incidents) and arrays
+        (the window, ADWIN's input, the trusted copy's bytes) in ``models.snapshot``'s container."""
         fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
         trusted = self._trusted.to_bytes() if self._trusted is not None else b""
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
                   "trusted_event": self._trusted_event, "incidents": self.incidents,
                   "rejects": self._rejects, "reject_open": self._reject_open}
-        arrays = {**self.window.to_arrays(), "detector_fed": fed,
-                  "trusted": np.frombuffer(trusted, dtype=np.uint8)}
+        arrays = {**self.window.to_arrays(), "detector_fed": fed, "trusted": np.frombuffer(trusted, dtype=np.uint8)}
         return pack(header, arrays, {})[0]
 
     def load_bytes(self, blob: bytes) -> None:
-        """Restore a state :meth:`to_bytes` wrote; a state of another layout (an older trimtab's) is
-        refused with ``ValueError`` before anything changes (recovery then uses an older checkpoint or
-        replays the journal)."""
+        """Restore a state :meth:`to_bytes` wrote; one of another layout is refused with ``ValueError``
+        before anything changes (recovery then uses an older checkpoint or replays the journal)."""
         try:
             header, arrays, _, _ = unpack(blob)
-        except Exception as exc:
-            raise ValueError(f"monitor state of another layout (unreadable: {exc}); this version writes "
-                             f"layout {LAYOUT}: it was written by another trimtab version") from None
+        except Exception as exc:  # not even the container: older than the layouts
+            header, arrays = {"layout": f"unreadable: {exc}"}, {}
         if header.get("format") != "monitor-state" or header.get("layout") != LAYOUT:
-            raise ValueError(f"monitor state of another layout ({header.get('format')!r}, layout "
-                             f"{header.get('layout')!r}; this version's is {LAYOUT}): it was written by another "
-                             "trimtab version")
+            raise ValueError(f"monitor state of another layout ({header.get('layout')!r}; this version's is "
+                             f"{LAYOUT}): it was written by another trimtab version")
         if self._detector is not None:
             self._detector.load_state(header["detector"], arrays["detector_fed"])
         self.window.load_arrays(arrays)

@@ -1,9 +1,7 @@
-"""The monitor's rules, one named function each, over the window's figures of one check.
+"""The monitor's rules, one named function each: what it watches, its threshold, its source.
 
-Each rule says what it watches, its threshold, and where the method comes from. ``Monitor.check``
-(``monitor.py``) computes :class:`CheckFigures`, runs the rules in the order they appear here, and acts
-on what they return (a rollback, a restart, an incident); the rules themselves change only
-:class:`RuleState`.
+``Monitor.check`` computes the :class:`CheckFigures` of a check, runs the rules in the order they
+appear here and acts on what they return; the rules themselves change only :class:`RuleState`.
 """
 
 from __future__ import annotations
@@ -14,11 +12,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from service.config import MonitorConfig
-from service.monitor.detectors import ChangeDetector, sign_test_pvalue
+from service.monitor.detectors import ChangeDetector
 
 __all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "non_finite_update",
-           "raw_persistently_worse", "too_far_from_average",
-           "welch_pvalue"]
+           "raw_persistently_worse", "sign_test_pvalue", "too_far_from_average", "welch_pvalue"]
 
 #: fewest usable events a comparison is made on (a sign test at level 0.001 needs 10 of 10 above)
 MIN_EVENTS = 10
@@ -49,17 +46,24 @@ class RuleState:
 
 @dataclass
 class CheckFigures:
-    """The window's figures at one check: per-event losses and what the rules compare."""
+    """The window's figures at one check. The window is in event order: ``events[:n_old]`` were held
+    out before the last check, the rest (``above``'s events) since."""
 
-    losses: np.ndarray  # (2, n): raw and averaged loss of each kept event, oldest first
+    losses: np.ndarray  # (2, n): raw and averaged loss of each window event, oldest first
     events: np.ndarray
-    usable: np.ndarray  # not garbage: under at least one iterate below ``absurd_factor`` reference medians
-    new: np.ndarray  # held out since the last check
-    reference: float  # median averaged-iterate loss of the events held out before this check
+    usable: np.ndarray  # not garbage: under at least one iterate within ``absurd_factor`` references
+    n_usable: int
+    n_old: int
+    reference: float  # median averaged-iterate loss of (a sample of) the events held out before
+    above: np.ndarray  # per new event: its averaged-iterate loss is above ``reference``
     raw: float  # mean loss over the usable events, raw iterate
     averaged: float
-    distance: float
-    allowance: float
+    distance: float  # ||w_raw - w_avg||
+    allowance: float  # the raw iterate's noise allowance (see raw_persistently_worse)
+
+    def after(self, event: int) -> int:
+        """Index of the first window event held out after ``event``."""
+        return int(self.events.searchsorted(event, "right"))
 
 
 def non_finite_update(state: RuleState) -> str | None:
@@ -78,25 +82,24 @@ def too_far_from_average(fig: CheckFigures, limit: float) -> str | None:
     return None
 
 
-def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, recent: np.ndarray) -> str | None:
-    """**Rollback** (held-out loss). Watches the mean held-out loss of both iterates over the usable
-    window events. Threshold: ``L_raw > (1 + rollback_margin) L_avg + allowance`` on
-    ``rollback_patience`` checks in a row (one, right after a rollback by this rule, until
-    ``rollback_patience`` healthy checks have passed: the fault has shown itself), judged once
-    ``min_holdout`` usable events are kept. The allowance is the raw iterate's own noise,
-    ``noise_allowance * eta * G**2 / 4``: around the optimum the covariance ``C`` of ``w - w*`` under
-    steps ``eta`` solves ``H C + C H = eta Cov(g)`` to first order, so the expected excess loss
-    ``tr(H C) / 2`` is ``eta E||g||^2 / 4`` whatever the curvature (a derivation, not a citation; the
-    tests check it against scikit-learn's optimum). A check does not count when the raw iterate beats
-    the average on the usable ``recent`` events (held out during the last ``rollback_patience``
+def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, recent: int) -> str | None:
+    """**Rollback** (held-out loss). Watches the mean loss of both iterates over the usable window
+    events, once ``min_holdout`` are kept. Threshold: ``L_raw > (1 + rollback_margin) L_avg +
+    allowance`` on ``rollback_patience`` checks in a row (one, right after a rollback by this rule,
+    until ``rollback_patience`` healthy checks have passed). The allowance is the raw iterate's own
+    noise, ``noise_allowance * eta * G**2 / 4``: near the optimum the covariance ``C`` of ``w - w*``
+    under steps ``eta`` solves ``H C + C H = eta Cov(g)`` to first order, so the excess loss ``tr(H C)
+    / 2`` is ``eta E||g||^2 / 4`` whatever the curvature (a derivation, not a citation; the tests
+    check it against scikit-learn's optimum). A check does not count when the raw iterate beats the
+    average on the usable events from index ``recent`` on (those of the last ``rollback_patience``
     checks): it is then following a change, not diverging."""
-    if np.count_nonzero(fig.usable) < cfg.min_holdout:
+    if fig.n_usable < cfg.min_holdout:
         return None
     worse = fig.raw > (1.0 + cfg.rollback_margin) * fig.averaged + fig.allowance
     if worse:
-        pick = recent & fig.usable
+        pick = fig.usable[recent:]
         if np.count_nonzero(pick) >= MIN_EVENTS:
-            worse = fig.losses[0, pick].mean() >= fig.losses[1, pick].mean()
+            worse = fig.losses[0, recent:][pick].mean() >= fig.losses[1, recent:][pick].mean()
     state.worse_streak = state.worse_streak + 1 if worse else 0
     if state.worse_streak < (1 if state.alert else cfg.rollback_patience):
         return None
@@ -106,58 +109,61 @@ def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConf
 
 
 def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
-    """**Change alarm** (the first half of *change confirmed*). Watches, for every event held out since
-    the last check, whether its averaged-iterate loss exceeds the median of (a regular sample of at
-    most 500 of) the older window events: on a stationary feed the events are exchangeable and none
-    was learned, so this is a fair coin (slightly below 1/2 while the average still improves)
-    whatever the loss, noise or scale, and one setting fits every feed. After an abrupt change nearly every new event lands above. The 0/1
-    sequence goes to river's Page-Hinkley test (Page 1954; mode "up", ``drift_delta`` tolerated rise,
+    """**Change alarm** (the first half of *change confirmed*). Watches, per event held out since the
+    last check, whether its averaged-iterate loss exceeds the median of (a regular sample of at most
+    500 of) the older window events: on a stationary feed the events are exchangeable and none was
+    learned, so this is a fair coin (slightly below 1/2 while the average improves) whatever the loss,
+    noise or scale; after an abrupt change nearly every new event lands above. The 0/1 values go, one
+    per event, to river's Page-Hinkley test (Page 1954; mode "up", ``drift_delta`` tolerated rise,
     ``drift_threshold`` lambda, ``drift_min_events``) or ADWIN (Bifet and Gavaldà 2007,
-    ``adwin_delta``). With the defaults (delta 0.05, lambda 10) a fair coin crosses lambda about
-    once in 3,000 values (Siegmund's approximation of the average run length; some 60,000 events at a
-    5% hold-out), a stream of 9 in 10 above in about 30 values (600 events), of 6 in 10 in about 200.
-    Garbage events count too: an alarm only opens the question that :func:`change_confirmed` answers."""
-    for above in (fig.losses[1, fig.new] > fig.reference).tolist():
-        if detector.update(1.0 if above else 0.0):
-            return True  # the alarm opens here; feeding on would restart the detector from scratch
-    return False
+    ``adwin_delta``). With delta 0.05 and lambda 10 a fair coin crosses lambda about once in 3,000
+    values (Siegmund's approximation of the average run length: some 60,000 events at a 5% hold-out),
+    9 in 10 above in about 30 values, 6 in 10 in about 200. Garbage counts too: an alarm only opens
+    the question that :func:`change_confirmed` answers."""
+    return detector.feed(fig.above.astype(np.float64).tolist())
 
 
 def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) -> dict | None:
     """**Change confirmed** -> restart. Watches, once an alarm is open, the events held out *after* the
-    check that raised it (fresh evidence: the alarm's own events are not reused). Threshold: at least
-    ``MIN_FRESH`` (15) of them usable, fewer than half garbage (a burst of absurd labels is a rollback
-    matter; it ends, a change does not), and the averaged iterate worse on them than on the pre-alarm events, at level
-    ``drift_level`` and by more than ``rollback_margin``, by either of two tests: an exact one-sided
-    sign test against the pre-alarm median (robust, and the stronger one when most events get worse),
-    or, from 30 fresh events on, a one-sided Welch test of the means (B. L. Welch, 1947, "The
-    generalization of Student's problem when several different population variances are involved",
-    Biometrika 34; the stronger one when a minority of events gets much worse, as when a linear model
-    misfits a nonlinear feed). Only the average must be worse: it is what a restart replaces;
-    the raw iterate usually follows the new feed within a few hundred updates. Returns the evidence
-    when confirmed, else ``None`` (the caller dismisses the alarm after ``drift_confirm`` checks)."""
-    fresh = fig.events > state.alarm_check
-    before = (fig.events < state.alarm_from) & fig.usable
-    pick = fresh & fig.usable
-    n, garbage = int(np.count_nonzero(pick)), int(np.count_nonzero(fresh & ~fig.usable))
+    check that raised it (fresh evidence). Threshold: at least ``MIN_FRESH`` of them usable, fewer
+    than half garbage (a burst of absurd labels is a rollback matter: it ends, a change does not), and
+    the averaged iterate worse on them than on the pre-alarm events, by more than ``rollback_margin``
+    and at level ``drift_level`` in either of two one-sided tests: the exact sign test against the
+    pre-alarm median (robust; the stronger when most events get worse) or, from 30 fresh events on,
+    Welch's test of the means (B. L. Welch, 1947, "The generalization of Student's problem when several
+    different population variances are involved", Biometrika 34; the stronger when a minority gets
+    much worse, as when a linear model misfits a nonlinear feed). Only the average must be worse: it
+    is what a restart replaces. Returns the evidence, or ``None`` (the caller dismisses the alarm after
+    ``drift_confirm`` checks)."""
+    fresh = fig.after(state.alarm_check)
+    early = int(fig.events.searchsorted(state.alarm_from))  # events[:early]: before the alarm
+    pick, before = fig.usable[fresh:], fig.usable[:early]
+    n = int(np.count_nonzero(pick))
+    garbage = len(pick) - n
     if n < MIN_FRESH or garbage * 2 >= n + garbage or np.count_nonzero(before) < MIN_EVENTS:
         return None
-    avg, raw, rise = fig.losses[1], fig.losses[0], 1.0 + cfg.rollback_margin
-    ref, now = float(np.median(avg[before])), float(np.median(avg[pick]))
-    above = int(np.count_nonzero(avg[pick] > ref))
+    raw, avg = fig.losses
+    old, new = avg[:early][before], avg[fresh:][pick]
+    rise = 1.0 + cfg.rollback_margin
+    ref, now = float(np.median(old)), float(np.median(new))
+    above = int(np.count_nonzero(new > ref))
     p_sign = sign_test_pvalue(above, n) if now > rise * ref else 1.0
-    old, new = avg[before], avg[pick]
     p_mean = welch_pvalue(new, old) if n >= 30 and new.mean() > rise * old.mean() else 1.0
     if min(p_sign, p_mean) > cfg.drift_level:
         return None
     test = "sign" if p_sign <= p_mean else "means"
+    centre = np.median if test == "sign" else np.mean
     if test == "means":
-        ref, now, raw_before, raw_now = float(old.mean()), float(new.mean()), raw[before].mean(), raw[pick].mean()
-    else:
-        raw_before, raw_now = np.median(raw[before]), np.median(raw[pick])
+        ref, now = float(old.mean()), float(new.mean())
     return {"alarm_event": state.alarm_from, "checks": state.alarm_checks, "n": n, "above": above,
             "p": min(p_sign, p_mean), "test": test, "before_averaged": ref, "recent_averaged": now,
-            "before_raw": float(raw_before), "recent_raw": float(raw_now), "garbage": garbage}
+            "before_raw": float(centre(raw[:early][before])), "recent_raw": float(centre(raw[fresh:][pick])),
+            "garbage": garbage}
+
+
+def sign_test_pvalue(above: int, n: int) -> float:
+    """One-sided sign test: ``P(Binomial(n, 1/2) >= above)``."""
+    return sum(math.comb(n, i) for i in range(above, n + 1)) / 2.0**n if n else 1.0
 
 
 def welch_pvalue(new: np.ndarray, old: np.ndarray) -> float:
@@ -167,12 +173,12 @@ def welch_pvalue(new: np.ndarray, old: np.ndarray) -> float:
 
 
 def boundary_pinned(state: RuleState, on_boundary: bool, cfg: MonitorConfig) -> bool | None:
-    """**Boundary pinned** -> incident and warning. Watches whether the raw iterate lies on the
-    constraint set's boundary (a ball: its norm within 0.1% of the radius) at each check (projected SGD keeps it there when the unconstrained
-    optimum lies outside the set). Threshold: on the boundary at a share ``boundary_share`` or more of
-    the last ``boundary_checks`` checks. Then the bound of the certificate holds for the best point
-    *in the set*, which may be a poor model: the radius is probably too small. Returns ``True`` when a
-    pinned stretch begins, ``False`` when it ends (share below half the threshold), else ``None``."""
+    """**Boundary pinned** -> incident and warning. Watches whether the raw iterate lies on the ball's
+    boundary (its norm within 0.1% of the radius) at each check, where projected SGD keeps it when the
+    unconstrained optimum lies outside. Threshold: a share ``boundary_share`` of the last
+    ``boundary_checks`` checks. The certificate then speaks of the best point *in the ball*, which may
+    be a poor model. Returns ``True`` when a pinned stretch begins, ``False`` when it ends (share
+    below half the threshold), else ``None``."""
     state.on_boundary = (state.on_boundary + [int(on_boundary)])[-cfg.boundary_checks:]
     share = sum(state.on_boundary) / cfg.boundary_checks
     if not state.boundary_open and share >= cfg.boundary_share:

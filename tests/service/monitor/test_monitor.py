@@ -25,7 +25,8 @@ from models.losses import loss_value
 from service.config import ConfigError, config_from_dict
 from service.engine import Engine
 from models.snapshot import pack, unpack
-from service.monitor.detectors import ChangeDetector, sign_test_pvalue
+from service.monitor.detectors import ChangeDetector
+from service.monitor.rules import sign_test_pvalue
 from service.monitor.monitor import LAYOUT, copy_model
 
 from . import monitor_feeds as feeds
