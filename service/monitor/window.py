@@ -36,6 +36,10 @@ class HeldOutWindow:
             hi = self._lo + int(np.searchsorted(self._events[self._lo:hi], upto, "right"))
         return max(self._lo, hi - self.size), hi
 
+    def __len__(self) -> int:
+        lo, hi = self.span()
+        return hi - lo
+
     def events(self) -> np.ndarray:
         """Event indices of the window's events, oldest first."""
         lo, hi = self.span()
