@@ -58,7 +58,8 @@ log = logging.getLogger("trimtab.service")
 
 _POLL_S = 0.005  # how often the publication file is checked between requests (each request checks too)
 _EXIT_S = 5.0  # longest a stopping scorer waits for answers in progress
-_HOP = frozenset({"connection", "keep-alive", "transfer-encoding", "content-length", "content-encoding", "host",
+#: hop-by-hop headers, not passed on (an answer's Content-Encoding is end to end: gzip bytes stay labelled)
+_HOP = frozenset({"connection", "keep-alive", "transfer-encoding", "content-length", "host",
                   "expect", "te", "trailer", "upgrade", "proxy-authorization", "proxy-connection", "date", "server"})
 _BUCKETS = (0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.25, 1.0)
 
@@ -206,7 +207,8 @@ async def _forward(request: web.Request, body: bytes) -> web.Response:
 
 
 def _passed(headers) -> dict:
-    return {k: v for k, v in headers.items() if k.lower() not in _HOP}
+    # the scorer has already undone the request body's Content-Encoding (to hold it to the size limits)
+    return {k: v for k, v in headers.items() if k.lower() not in _HOP and k.lower() != "content-encoding"}
 
 
 async def _ask_learner(request: web.Request, method: str, path: str, body: bytes, headers: dict):

@@ -217,3 +217,32 @@ def test_scorers_zero_is_one_process_and_readiness_shows_the_role(tmp_path):
         front.close()
     finally:
         assert server.stop() == 0
+
+
+def test_compressed_bodies_pass_through_a_scorer_both_ways(tmp_path):
+    """Content-Encoding is end to end (RFC 9110, section 8.4): a gzip request body a scorer passes to the
+    learner keeps its label (so the learner can undo it), and a gzip answer keeps its label too (a
+    browser decodes the page's health route only with it)."""
+    import gzip
+    import urllib.request
+
+    import orjson
+
+    from tests.service.servicekit import AUTH
+
+    _, server = start_serve(tmp_path, scorers=1)
+    try:
+        body = gzip.compress(b"\n".join(orjson.dumps(e) for e in demo_events(300, tag="gz")))
+        req = urllib.request.Request(server.url + "/v1/events", data=body, method="POST", headers={
+            **AUTH, "Content-Type": "application/x-ndjson", "Content-Encoding": "gzip"})
+        with urllib.request.urlopen(req, timeout=30) as r:
+            assert r.status == 200 and orjson.loads(r.read())["accepted"] == 300
+        req = urllib.request.Request(server.url + "/v1/health", headers={**AUTH, "Accept-Encoding": "gzip"})
+        with urllib.request.urlopen(req, timeout=30) as r:
+            raw = r.read()
+            encoding = r.headers.get("Content-Encoding")
+        health = orjson.loads(gzip.decompress(raw) if encoding == "gzip" else raw)
+        assert encoding == "gzip" and raw[:2] == b"\x1f\x8b"  # the learner compresses this route
+        assert health["model"] and health["version"]
+    finally:
+        assert server.stop() == 0
