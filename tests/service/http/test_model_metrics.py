@@ -58,7 +58,9 @@ def _binary_events(n: int) -> list[dict]:
 async def test_every_model_family_is_exported_and_agrees_with_the_model_card(aiohttp_client, tmp_path):
     client = await aiohttp_client(create_app(make_config(tmp_path), token=TOKEN), headers=AUTH)
     await wait_ready(client)
-    assert (await client.post("/v1/events", json=demo_events(3000))).status == 200
+    events = demo_events(3000)
+    for k in range(0, 3000, 1000):  # bodies under aiohttp's 1 MiB client warning
+        assert (await client.post("/v1/events", json=events[k:k + 1000])).status == 200
     fams = await _families(client)
     assert not [name for name in FAMILIES if name not in fams]
     assert not [name for name in BINARY_FAMILIES if name in fams]  # a regression task has none
