@@ -24,7 +24,7 @@ import pytest
 
 from service.config import FeedConfig
 from service.replay.runner import run_replay
-from tests.service.faults.faultkit import STARTED, Client, write_config
+from tests.service.faults.faultkit import Client, write_config
 from tests.service.faults.faultkit import start as start_serve
 from tests.service.rediskit import REDIS_MISSING, RedisServer
 from tests.service.servicekit import demo_events, toml_text
@@ -34,22 +34,6 @@ redis = pytest.importorskip("redis")
 pytestmark = [REDIS_MISSING]
 
 STREAM, GROUP = "coldchain.events", "trimtab"
-
-
-@pytest.fixture(autouse=True)
-def _no_server_left():
-    yield
-    while STARTED:
-        server = STARTED.pop()
-        if server.proc.poll() is None:
-            server.kill()
-
-
-@pytest.fixture
-def aof_redis(tmp_path):
-    server = RedisServer(tmp_path / "redis", appendonly=True)
-    yield server
-    server.stop()
 
 
 def _feed_config(tmp_path, url: str, **feed):

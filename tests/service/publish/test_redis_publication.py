@@ -24,7 +24,7 @@ from service.publish import take_snapshot
 from service.publish.redis_channel import RedisPublisher, RedisReader
 from tests.service.faults.faultkit import STARTED, Client
 from tests.service.faults.faultkit import start as start_serve
-from tests.service.rediskit import REDIS_MISSING, RedisServer
+from tests.service.rediskit import REDIS_MISSING
 from tests.service.servicekit import ServeProcess, demo_events, make_config, toml_text
 
 redis = pytest.importorskip("redis")
@@ -34,27 +34,11 @@ pytestmark = [REDIS_MISSING]
 PROBES = [e["features"] for e in demo_events(40, tag="p", start=5000)]
 
 
-@pytest.fixture(autouse=True)
-def _no_server_left():
-    yield
-    while STARTED:
-        server = STARTED.pop()
-        if server.proc.poll() is None:
-            server.kill()
-
-
-@pytest.fixture
-def redis_server(tmp_path):
-    server = RedisServer(tmp_path / "redis", appendonly=True)
-    yield server
-    server.stop()
-
-
 def _bits(scores) -> list[int]:
     return np.asarray(scores, dtype=np.float64).view(np.uint64).tolist()
 
 
-def test_readers_never_see_a_torn_model(tmp_path, redis_server):
+def test_readers_never_see_a_torn_model(tmp_path, aof_redis):
     """2,000 versions handed to the Redis publisher (several hundred reach Redis: its mailbox keeps the
     newest) while a reader reads continuously: every copy it reads scores exactly as the learner's
     engine did in the state whose digest the copy names, and versions never go back."""
@@ -62,8 +46,8 @@ def test_readers_never_see_a_torn_model(tmp_path, redis_server):
     v = EventValidator(cfg)
     engine = Engine(cfg)
     events = [v.validate(e) for e in demo_events(6000, tag="t")]
-    publisher = RedisPublisher(redis_server.url, "torn.test", heartbeat_s=0.5)
-    reader = RedisReader(redis_server.url, "torn.test")
+    publisher = RedisPublisher(aof_redis.url, "torn.test", heartbeat_s=0.5)
+    reader = RedisReader(aof_redis.url, "torn.test")
     expected: dict[str, list[int]] = {}
     seen: list[tuple[int, str, list[int]]] = []
     done = threading.Event()
@@ -161,12 +145,12 @@ def _until(pred, timeout: float = 60.0, what: str = ""):
     raise AssertionError(f"timed out waiting for {what}")
 
 
-def test_remote_scorers_follow_the_learner_and_outlive_it(tmp_path, redis_server):
+def test_remote_scorers_follow_the_learner_and_outlive_it(tmp_path, aof_redis):
     """One learner publishing to Redis, two remote scorers: both serve each new version within a
     measured delay, score bit for bit as the learner for that version, refuse writes, and keep
     serving the last version when the learner is SIGKILLed, with /readyz 503 and the staleness metric
     past ``publish.max_model_age_s``; a restarted learner's next version reaches them again."""
-    cfg, conf = _configs(tmp_path, redis_server.url)
+    cfg, conf = _configs(tmp_path, aof_redis.url)
     learner = start_serve(conf)
     lc = Client(learner.url)
     lc.events(demo_events(400, tag="w"))
@@ -229,12 +213,12 @@ def test_remote_scorers_follow_the_learner_and_outlive_it(tmp_path, redis_server
     assert learner.stop() == 0
 
 
-def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
+def test_redis_restart_between_learner_and_scorer(tmp_path, aof_redis):
     """``redis-server`` SIGKILLed under a learner (with one local scorer process: it publishes to both
     channels) and a remote scorer: the remote scorer keeps answering from its last version and shows
     the lost connection; after the restart (append-only file) both reconnect on their own and the
     learner's next version reaches the remote scorer."""
-    _, conf = _configs(tmp_path, redis_server.url, scorers=1)
+    _, conf = _configs(tmp_path, aof_redis.url, scorers=1)
     learner = start_serve(conf)
     lc = Client(learner.url)
     lc.events(demo_events(300, tag="a"))
@@ -243,7 +227,7 @@ def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
     first = lc.card()["state_digest"]
     _until(lambda: _serving(scorer.url).get("state_digest") == first, 30, "the first version")
 
-    redis_server.kill()
+    aof_redis.kill()
     _until(lambda: _metric(scorer.url, "trimtab_remote_redis_connected") == 0.0, 30, "the scorer to see the loss")
     _until(lambda: orjson.loads(_get(learner.url, "/readyz")[1])["redis_publication"]["error"], 30,
            "the learner to report the lost server")
@@ -251,7 +235,7 @@ def test_redis_restart_between_learner_and_scorer(tmp_path, redis_server):
     assert status == 200 and got["version"]["digest"] == first
     lc.events(demo_events(50, tag="b"))  # learned while Redis is away: publication waits for it
 
-    redis_server.start()
+    aof_redis.start()
     second = lc.card()["state_digest"]
     assert second != first
     _until(lambda: _serving(scorer.url).get("state_digest") == second, 60, "the version made while Redis was away")
