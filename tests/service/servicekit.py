@@ -83,6 +83,7 @@ def demo_events(n: int, tag: str = "e", start: int = 0) -> list[dict]:
     out = []
     for k in range(start, start + n):
         e = dict(_DEMO[k % len(_DEMO)])
+        e["features"] = dict(e["features"])  # a test that edits its events must not edit the next test's
         e["id"] = f"{tag}{k}"
         out.append(e)
     return out
