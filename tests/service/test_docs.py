@@ -186,7 +186,7 @@ def test_every_document_a_text_points_to_exists():
         code = src.read_text(encoding="utf-8")
         for m in _PY_DOC.finditer(code):
             if code[max(0, m.start() - 3):m.start()] in ('/ "', "/ '"):
-                continue  # the last part of a path built with pathlib (ROOT / "docs" / "x.md"), not a path
+                continue  # the last part of a path built with pathlib (ROOT / "docs" / name), not a path
             ref = m.group(1)
             seen += 1
             if not _exists(ref, src.parent):

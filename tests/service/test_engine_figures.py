@@ -141,7 +141,7 @@ def test_an_overflowing_loss_is_counted_not_summed():
 def _blowup_config(monitor: dict | None = None):
     """Squared loss, no constraint, a constant step of 5 on warm-up-scaled features: each update
     multiplies the error by about |1 - 5 ||x||^2|| > 1 (gradient descent on an L-smooth loss needs
-    a step below 2 / L; Nesterov, "Introductory Lectures on Convex Optimization", 2004, Thm 2.1.14),
+    a step below 2 / L; Yu. Nesterov, his 2004 textbook on convex optimization (Kluwer), Thm 2.1.14),
     and the monitor's rollbacks cannot halve it back fast enough."""
     return _config(constraint={"set": "none"}, steps={"rule": "constant", "base": 5.0}, monitor=monitor or {})
 
