@@ -28,6 +28,7 @@ import orjson
 from aiohttp import web
 
 from service.http import handlers as h
+from service.http import timeline
 from service.http.modelmetrics import ModelHealthCollector
 from service.http.pulse import PULSE, Pulse, pulse_context
 from service.http.bodies import BodyReader
@@ -208,7 +209,7 @@ def create_app(config: Config, *, data_dir: str | None = None, token: str | None
     expect = svc.bodies.expect  # size and encoding checked before "100 Continue" asks for the body
     for method, path, handler in _ROUTES:  # add_get answers HEAD too, as a GET route should
         add = app.router.add_get if method == "GET" else app.router.add_post
-        add(path, getattr(h, handler), expect_handler=expect)
+        add(path, getattr(h, handler, None) or getattr(timeline, handler), expect_handler=expect)
     app[PULSE] = Pulse()
     svc.metrics.registry.register(ModelHealthCollector(svc, app[PULSE]))
     app.cleanup_ctx.append(_lifecycle)

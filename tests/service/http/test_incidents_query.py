@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 
 from models import InvalidInput
 from service.http.app import create_app
-from service.http.handlers import _query_number, merge_incidents
+from service.http.timeline import _query_number, merge_incidents
 from tests.service.servicekit import AUTH, TOKEN, demo_events, make_config, wait_ready
 
 
