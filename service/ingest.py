@@ -299,14 +299,28 @@ class Ingestor:
             with self.lock:
                 self.engine.note_rejected(*it.note)
         if it.action is not None and it.action[0] == "rollback":
-            with self.lock:
-                self.engine.rollback(it.action[1])
+            self._operator_rollback(it.action[1])
         last = r.extra_seq if r.extra_seq is not None else (r.seq_range() or [None, None])[1]
         with self.lock:  # the position always describes the engine state under the same lock
             if last is not None:
                 self.applied_seq = last
             self.set_view()
         r.applied_seq = self.applied_seq
+
+    def _operator_rollback(self, reason: str) -> None:
+        """Learner thread: an operator's rollback. The monitor records its own incidents; without one the
+        service keeps them (in the journal, so they outlive a restart; a replayed journal adds none)."""
+        with self.lock:
+            before = self.engine.model.step_scale
+            self.engine.rollback(reason)
+            after = self.engine.model.step_scale
+        if self.engine.monitor is None:
+            shrink = self.config.monitor.rollback_shrink
+            self._incident("rollback", reason, {"step_scale": after, "monitor": "off"}, persist=True)
+            if after != before:
+                self._incident("step_scale", f"step scale {before:.6g} -> {after:.6g}: a rollback multiplies "
+                               f"every later step by {shrink:g}", {"old": before, "new": after, "cause": "rollback"},
+                               persist=True)
 
     async def _learner(self) -> None:
         while True:

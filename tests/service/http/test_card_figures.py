@@ -109,3 +109,30 @@ async def test_operator_rollback_records_the_step_scale(aiohttp_client, tmp_path
     last = [i for i in incidents if i["kind"] == "step_scale"][-1]
     assert (last["evidence"]["old"], last["evidence"]["new"]) == (before, before * 0.5)
     assert (await _card(client))["step_scale"] == before * 0.5
+
+
+async def test_operator_rollback_with_the_monitor_off_is_an_incident_that_outlives_a_restart(aiohttp_client, tmp_path):
+    """With the monitor off nothing else records an operator rollback: the service keeps the rollback
+    and its step-scale change in the journal, once, across a restart (the journal's replay adds none)."""
+    config = _config(tmp_path, monitor={"enabled": False})
+    client = await aiohttp_client(create_app(config, token=TOKEN), headers=AUTH)
+    await wait_ready(client)
+    await _post(client, demo_events(300, tag="m"))
+    before = (await _card(client))["step_scale"]
+    assert (await client.post("/v1/model/rollback", json={"reason": "drill, monitor off"})).status == 200
+
+    def kinds(incidents):
+        return [(i["kind"], i["reason"]) for i in incidents if i["kind"] in ("rollback", "step_scale")]
+
+    first = (await (await client.get("/v1/incidents")).json())["incidents"]
+    assert [k for k, _ in kinds(first)] == ["rollback", "step_scale"]
+    assert kinds(first)[0][1] == "drill, monitor off"
+    change = [i for i in first if i["kind"] == "step_scale"][0]["evidence"]
+    assert (change["old"], change["new"], change["cause"]) == (before, before * 0.5, "rollback")
+    await client.close()
+
+    again = await aiohttp_client(create_app(config, token=TOKEN), headers=AUTH)
+    await wait_ready(again)
+    after = (await (await again.get("/v1/incidents")).json())["incidents"]
+    assert kinds(after) == kinds(first)
+    assert (await _card(again))["step_scale"] == before * 0.5
