@@ -16,6 +16,7 @@ from __future__ import annotations
 import importlib.util
 import math
 import sys
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -23,19 +24,21 @@ import numpy as np
 __all__ = ["ADWIN_MEMORY", "ChangeDetector", "river_detector"]
 
 ADWIN_MEMORY = 1 << 16
+_LOADING = threading.Lock()
 _PH_FIELDS = ("_sum_increase", "_sum_decrease", "_min_increase", "_max_decrease")
 
 
 def river_detector(name: str):
     """river's detector class ``name`` (``"PageHinkley"`` or ``"ADWIN"``), see the module docstring."""
     module = {"PageHinkley": "page_hinkley", "ADWIN": "adwin"}[name]
-    loaded = sys.modules.get(f"river.drift.{module}") or sys.modules.get(f"_trimtab_river_{module}")
-    if loaded is None:
-        path = Path(importlib.util.find_spec("river").origin).parent / "drift" / f"{module}.py"
-        spec = importlib.util.spec_from_file_location(f"_trimtab_river_{module}", path)
-        loaded = importlib.util.module_from_spec(spec)
-        sys.modules[spec.name] = loaded
-        spec.loader.exec_module(loaded)
+    with _LOADING:  # parse threads build engines at once: none may see a module still executing
+        loaded = sys.modules.get(f"river.drift.{module}") or sys.modules.get(f"_trimtab_river_{module}")
+        if loaded is None:
+            path = Path(importlib.util.find_spec("river").origin).parent / "drift" / f"{module}.py"
+            spec = importlib.util.spec_from_file_location(f"_trimtab_river_{module}", path)
+            loaded = importlib.util.module_from_spec(spec)
+            spec.loader.exec_module(loaded)
+            sys.modules[spec.name] = loaded
     return getattr(loaded, name)
 
 
