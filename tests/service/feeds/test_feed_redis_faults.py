@@ -121,16 +121,23 @@ def _finish(tmp_path, cfg, server, producer: Producer, client) -> dict:
         return orjson.loads(r.read())["feed"]
 
 
+def _mid_stream(tmp_path, url: str, tag: str, fault: str):
+    """A served learner on a stream that a producer is filling, 800 events learned, the producer held
+    back (its gate set) so that the ``fault`` falls mid-stream: ``(cfg, path, server, client, producer)``."""
+    cfg, path = _feed_config(tmp_path, url)
+    server = start_serve(path)
+    client = redis.Redis.from_url(url)
+    producer = Producer(url, demo_events(3000, tag=tag))
+    producer.start()
+    _until(lambda: _learned(server) >= 800, what=f"800 events learned before the {fault}")
+    producer.gate.set()
+    return cfg, path, server, client, producer
+
+
 def test_redis_restart_mid_stream_loses_nothing(tmp_path, aof_redis):
     """SIGKILL of redis-server while entries flow; restarted from its append-only file on the same port,
     the learner reconnects and ends on the offline replay's digest with nothing pending."""
-    cfg, path = _feed_config(tmp_path, aof_redis.url)
-    server = start_serve(path)
-    client = redis.Redis.from_url(aof_redis.url)
-    producer = Producer(aof_redis.url, demo_events(3000, tag="r"))
-    producer.start()
-    _until(lambda: _learned(server) >= 800, what="800 events learned before the restart")
-    producer.gate.set()
+    cfg, path, server, client, producer = _mid_stream(tmp_path, aof_redis.url, "r", "restart")
     aof_redis.kill()
     assert producer.sent < len(producer.events), "the stream ended before the restart"
     time.sleep(0.5)
@@ -146,13 +153,7 @@ def test_learner_sigkill_mid_stream_learns_each_entry_once(tmp_path, aof_redis):
     """SIGKILL of ``trimtab serve`` while it consumes the stream; started again on the same data folder,
     it recovers from its journal, re-reads what it had not acknowledged, and ends on the offline
     replay's digest (no entry learned twice, none lost) with nothing pending."""
-    cfg, path = _feed_config(tmp_path, aof_redis.url)
-    server = start_serve(path)
-    client = redis.Redis.from_url(aof_redis.url)
-    producer = Producer(aof_redis.url, demo_events(3000, tag="k"))
-    producer.start()
-    _until(lambda: _learned(server) >= 800, what="800 events learned before the kill")
-    producer.gate.set()
+    cfg, path, server, client, producer = _mid_stream(tmp_path, aof_redis.url, "k", "kill")
     server.kill()
     assert producer.sent < len(producer.events), "the stream ended before the kill"
     server = start_serve(path)
