@@ -134,7 +134,7 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
     engine = Engine(config, trace_limit=None)
     bucket = engine.model.mapper.bucket
     feeds = [str(f) for f in feeds]
-    seen = IdSet()
+    seen = IdSet(capacity=_expected_events(feeds))
     trace = {k: [] for k in _TRACE_KEYS + ("serving", "action")}
     by_reason: dict[str, int] = {}
     bad, dups = [], []
@@ -197,6 +197,18 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
         out["state"] = engine.to_bytes()
         out["config"] = config
     return out
+
+
+def _expected_events(feeds) -> int:
+    """A guess of the events in plain NDJSON or CSV ``feeds`` (a line per ~128 bytes), to size the id
+    set once instead of doubling it as it fills (each doubling re-inserts every id seen, about a
+    twentieth of a 400,000-event replay); the default size for other feeds or files not found."""
+    total = 0
+    for feed in feeds:
+        if feed.lower().endswith((".ndjson", ".jsonl", ".json", ".csv")):
+            with contextlib.suppress(OSError):
+                total += os.path.getsize(feed) // 128
+    return min(max(total, 1 << 16), 1 << 24)
 
 
 def _drain(engine, trace: dict) -> None:
