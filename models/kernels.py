@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import math
 
-import numba
+from .jit import numba
 import numpy as np
 
 __all__ = [

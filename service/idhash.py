@@ -16,7 +16,7 @@ open-addressing table kept between a quarter and a half full, i.e. 16 to 32 byte
 
 from __future__ import annotations
 
-import numba
+from models.jit import numba
 import numpy as np
 
 __all__ = ["HOLDOUT_PREFIX", "IdSet", "hash_ids", "hash_strings", "holdout_fractions"]

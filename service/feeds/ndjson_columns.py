@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import re
 
-import numba
+from models.jit import numba
 import numpy as np
 
 from models import InvalidInput
