@@ -233,7 +233,10 @@ class EventValidator:
                 else:
                     raise InvalidInput(f"expected a number, got {_kind(v)}", where=f"{p}features.{name}")
             elif name in categorical:
-                clean[name] = v if v.__class__ is str and len(v) <= short else self._categorical(v, f"{p}features.{name}")
+                if v.__class__ is str and len(v) <= short:
+                    clean[name] = v
+                else:
+                    clean[name] = self._categorical(v, f"{p}features.{name}")
             elif self.reject_unknown:
                 raise InvalidInput("unknown feature (not declared in the config's [features])",
                                    where=f"{p}features.{_short(name)}")
