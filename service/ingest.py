@@ -235,10 +235,14 @@ class Ingestor:
         for it, ks in zip(items, keys):
             seqs, new = number_events(ks, known, seq)
             it.receipt.seqs = seqs
-            run = [(e.id, p) for e, p, s in zip(it.events, it.payloads, seqs) if s is not None]
-            if run:
-                parts.append((seq, [r[0] for r in run], [r[1] for r in run]))
-                seq += len(run)
+            if len(new) == len(ks):  # the common case: every event has an id and is new (keeps them all)
+                ids, payloads = [e.id for e in it.events], it.payloads
+            else:
+                keep = [k for k, s in enumerate(seqs) if s is not None]
+                ids, payloads = [it.events[k].id for k in keep], [it.payloads[k] for k in keep]
+            if payloads:
+                parts.append((seq, ids, payloads))
+                seq += len(payloads)
             pairs += new
             if it.note is not None or (it.action and it.action[0] == "rollback"):
                 kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
