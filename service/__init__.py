@@ -10,7 +10,7 @@ The folders are the architecture:
 
 At the top: ``config``, ``errors``, the event boundary (``events``), id hashing (``idhash``), the
 engine shared by the live service and replay (``engine``) with the baseline it scores beside the model
-(``baseline``), ingestion (``ingest``) and the command line
+(``baseline``), ingestion (``ingest``) with its start-up (``startup``) and the command line
 (``cli``). The package faces stay empty on purpose: importing one part (a replay worker, say) must not
 load the HTTP stack.
 """

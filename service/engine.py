@@ -150,18 +150,13 @@ class Engine:
     # ---------------------------------------------------------------- learning
     def prepare(self, events: list[Event]) -> PreparedBatch:
         """Map validated events to rows and decide each event's mode (no state changes)."""
-        n = len(events)
         rows = self.model.rows([e.features for e in events])
-        y = np.full(n, np.nan)
-        mode = np.zeros(n, dtype=np.int8)
-        ts = np.full(n, np.nan)
+        # a missing ts or target becomes NaN (numpy converts None so in a float array)
+        ts = np.array([e.ts for e in events], dtype=np.float64)
+        y = np.array([e.target for e in events], dtype=np.float64)
         share = self._share
-        for k, e in enumerate(events):
-            if e.ts is not None:
-                ts[k] = e.ts
-            if e.target is not None:
-                y[k] = e.target
-                mode[k] = 2 if share > 0.0 and holdout_fraction(e.id) < share else 1
+        mode = np.array([0 if e.target is None else 2 if share > 0.0 and holdout_fraction(e.id) < share else 1
+                         for e in events], dtype=np.int8)
         return PreparedBatch([e.id for e in events], ts, rows, y, mode)
 
     def apply_events(self, events: list[Event]) -> Applied:

@@ -42,10 +42,10 @@ from service.events import Event
 from service.storage.guard import StorageGuard
 from service.storage.health import storage_fault
 from service.storage.journal import NOTE, ROLLBACK, Journal
-from service.storage.recovery import (RecoveryRefused, check_storage, encode_event, load_state, replay_rows,
-                                      serving_view)
+from service.startup import recover
+from service.storage.recovery import encode_event, serving_view
 from service.storage.seen import id_key, number_events
-from service.warmup import STARTING, is_cached, kernels_of, warm_parallel
+from service.warmup import STARTING
 
 __all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
 
@@ -235,10 +235,14 @@ class Ingestor:
         for it, ks in zip(items, keys):
             seqs, new = number_events(ks, known, seq)
             it.receipt.seqs = seqs
-            run = [(e.id, p) for e, p, s in zip(it.events, it.payloads, seqs) if s is not None]
-            if run:
-                parts.append((seq, [r[0] for r in run], [r[1] for r in run]))
-                seq += len(run)
+            if len(new) == len(ks):  # the common case: every event has an id and is new (keeps them all)
+                ids, payloads = [e.id for e in it.events], it.payloads
+            else:
+                keep = [k for k, s in enumerate(seqs) if s is not None]
+                ids, payloads = [it.events[k].id for k in keep], [it.payloads[k] for k in keep]
+            if payloads:
+                parts.append((seq, ids, payloads))
+                seq += len(payloads)
             pairs += new
             if it.note is not None or (it.action and it.action[0] == "rollback"):
                 kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
@@ -391,41 +395,11 @@ class Ingestor:
 
     # ---------------------------------------------------------------- start and stop
     async def recover(self) -> None:
-        """Compile (first run) or load the kernels, check the storage, load the newest usable
-        checkpoint, re-apply the journal after it; then start the stages. Raises
-        :class:`RecoveryRefused` (the service stays not ready, with an incident) when the storage
-        is damaged or the acknowledged history cannot be rebuilt."""
-        t0 = time.perf_counter()
-        # compile (first run) or load the kernels before anything is applied: the first write after
-        # /readyz then runs at full speed instead of waiting seconds for the compiler
-        kernels = kernels_of([self.config])
-        self.recovery["state"] = "loading" if is_cached(("learn", "read"), kernels) else "compiling"
-        await self.learn(warm_parallel, [["learn"], ["read"]], kernels)
-        self.recovery["compile_seconds"] = round(time.perf_counter() - t0, 3)
-        self.recovery["state"] = "recovering"
-        self.incidents.extend(await self.db(self.journal.incidents))
-        await check_storage(self)
-        engine, pos = await load_state(self)
-        with self.lock:
-            self.engine, self.applied_seq = engine, pos  # the checkpoint's position is where the engine is
-            self.set_view()
-        self.checkpoint_seq = pos
-        self.recovery["checkpoint"] = pos
-        replayed, after = 0, pos
-        while True:
-            rows = await self.db(self.journal.rows_after, after, 5000)
-            if not rows:
-                break
-            if rows[0][0] != after + 1:
-                raise RecoveryRefused(f"the journal continues at position {rows[0][0]} after the state at "
-                                      f"position {after}: rows are missing")
-            await self.learn(replay_rows, self, rows)
-            replayed += len(rows)
-            after = rows[-1][0]
-            self.recovery["replayed"] = replayed
-            self.metrics.replayed.inc(len(rows))
-        self._next_seq = max(after, await self.db(self.journal.last_seq)) + 1
-        self.recovery.update(state="ready", seconds=round(time.perf_counter() - t0, 3))
+        """Compile or load the kernels, check the storage, load the newest usable checkpoint and
+        re-apply the journal after it (:func:`service.startup.recover`); then start the stages.
+        Raises :class:`service.storage.recovery.RecoveryRefused` (the service stays not ready, with
+        an incident) when the storage is damaged or the acknowledged history cannot be rebuilt."""
+        pos, replayed, self._next_seq = await recover(self)
         self._tasks = [asyncio.create_task(self._committer(), name="trimtab-committer"),
                        asyncio.create_task(self._learner(), name="trimtab-learner")]
         self.ready = True
@@ -433,7 +407,7 @@ class Ingestor:
             with self.lock:
                 self.set_view(force=True)
         log.info("recovered: checkpoint at position %d, %d journal rows re-applied, position %d",
-                 pos, replayed, after)
+                 pos, replayed, self.applied_seq)
 
     async def drain(self, timeout: float = 30.0) -> None:
         """Stop taking writes and wait until every queued item is applied."""

@@ -9,7 +9,8 @@ Tables:
   rollback (``{"reason": ...}``). Replaying the rows in ``seq`` order through :meth:`Engine.apply`
   rebuilds the engine bit for bit.
 * ``seen(h, seq)``: the deduplication index over the whole history (:mod:`service.storage.seen`);
-  never pruned.
+  never pruned. A Bloom filter of its keys (:mod:`service.storage.keyfilter`), built at open and
+  kept up to date by every commit, lets most new ids skip the index lookup.
 * ``checkpoints(id, seq, created, digest, state_digest, blob)``: ``blob`` is a checkpoint in the
   format of :mod:`service.storage.checkpoint` after applying every row up to ``seq``; ``digest`` is
   the SHA-256 of the blob, checked on load so a corrupt or truncated checkpoint is detected and an
@@ -44,6 +45,7 @@ import time
 from contextlib import suppress
 from pathlib import Path
 
+import numpy as np
 import orjson
 
 from models import TrimtabError
@@ -52,6 +54,7 @@ from service.config import ConfigError
 from service.storage import seen
 from service.storage.dirlock import DataDirLock
 from service.storage.health import scan_wal, storage_fault
+from service.storage.keyfilter import KeyFilter
 
 __all__ = ["EVENT", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable", "fingerprint"]
 
@@ -143,6 +146,7 @@ class Journal:
             self._db = sqlite3.connect(":memory:", check_same_thread=False, isolation_level=None)
             self._db.executescript(_SCHEMA)
             self._buffer = set()
+            self._filter = KeyFilter()
         except BaseException:
             self.dir_lock.release()
             raise
@@ -173,6 +177,18 @@ class Journal:
         self._buffer = seen.load_buffer(self._db)  # the unindexed tail of the index, mirrored in memory
         if "journal" in tables and "seen" not in tables:
             self._index_retained_ids()
+        self._filter = self._key_filter()
+
+    def _key_filter(self) -> KeyFilter:
+        """A Bloom filter of every key in the index (``seen`` and ``seen_new``), sized at open for twice
+        as many (it keeps that size while the file is open; see :mod:`service.storage.keyfilter`)."""
+        n = self._db.execute("SELECT (SELECT count(*) FROM seen) + (SELECT count(*) FROM seen_new)").fetchone()[0]
+        keys = KeyFilter.sized_for(n)
+        for table in ("seen", "seen_new"):
+            cur = self._db.execute(f"SELECT h FROM {table}")  # noqa: S608 (a fixed table name)
+            while rows := cur.fetchmany(65_536):
+                keys.add([r[0] for r in rows])
+        return keys
 
     def _index_retained_ids(self) -> None:
         """A journal written before the ``seen`` table existed: index the ids it still holds."""
@@ -249,9 +265,11 @@ class Journal:
 
     # ---------------------------------------------------------------- deduplication
     def known(self, keys: list[bytes]) -> set[bytes]:
-        """Which id keys (:func:`service.storage.seen.id_key`) were ever journaled."""
+        """Which id keys (:func:`service.storage.seen.id_key`) were ever journaled. Keys the Bloom
+        filter rules out are new without a lookup; the others are looked up in the index."""
         with self._lock:
-            return seen.known_keys(self._db, self._buffer, keys)
+            maybe = np.flatnonzero(self._filter.maybe(keys)).tolist()
+            return seen.known_keys(self._db, self._buffer, [keys[i] for i in maybe])
 
     def last_seq(self) -> int:
         with self._lock:
@@ -284,10 +302,13 @@ class Journal:
                     db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
             return seen.insert_keys(db, self._buffer, keys)
 
-        if self._transaction(body):
-            self._buffer = set()
-        else:
-            self._buffer.update(k for k, _ in keys)
+        moved = self._transaction(body)
+        with self._lock:  # only once the keys are committed: the filter must never hold back a key
+            if moved:
+                self._buffer = set()
+            else:
+                self._buffer.update(k for k, _ in keys)
+            self._filter.add([k for k, _ in keys])
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """Up to ``limit`` rows with a position above ``seq``, in order."""

@@ -7,8 +7,9 @@ It is keyed by ``id_key(id)``, the 16-byte BLAKE2b digest of the id's UTF-8 byte
 * ids are compared as bytes, never through SQLite's text or JSON functions (an id holding U+0000 is
   an id like any other);
 * a row costs about the same whatever the id's length (measured in ``benchmarks/dedup.py``);
-* memory stays bounded: lookups go through SQLite's page cache (a fixed size) and a buffer of at
-  most :data:`BUFFER_KEYS` recent keys, not a dict of every id.
+* memory stays bounded: lookups go through SQLite's page cache (a fixed size), a buffer of at
+  most :data:`BUFFER_KEYS` recent keys and a Bloom filter of 8-32 MiB that rules out most new ids
+  before any lookup (:mod:`service.storage.keyfilter`), not a dict of every id.
 
 Two levels keep the writes small. New keys are appended to ``seen_new``, a table in insertion
 order without an index (a commit writes only its tail pages), and mirrored in memory for lookups.
