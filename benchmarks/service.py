@@ -17,7 +17,9 @@ Prints ratios against baselines measured in the same run; the last line is one J
   processes) in the same run: ``score_p99_ms_idle``, ``score_p99_ms_under_ingest`` (1,000 scores/s,
   latency from the scheduled send time, while a producer posts 500-event bodies as fast as
   acknowledged; goal <= 5 ms), ``ingest_events_per_s`` meanwhile (goal >= 60,000), the load
-  generators' CPU, GC pauses and send lateness, the server processes' CPU seconds,
+  generators' CPU, GC pauses and send lateness (the score client is lean: plain asyncio protocol
+  connections kept alive, the request bytes built once; ``--load rate-aiohttp`` is the earlier
+  client on aiohttp's, for comparison), the server processes' CPU seconds,
   ``publish_to_serve_ms`` (goal <= 20 ms) and peak RSS per process.
 
 Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers]``. The goals are the issue's; the machine has
@@ -29,6 +31,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import collections
+import contextlib
 import gzip
 import json
 import os
@@ -351,6 +354,12 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
     client is lean (:class:`_LeanScorer`); its CPU share and its own send lateness are reported."""
     import gc
 
+    # the score client stands in for clients on other machines: when permitted it runs ahead of the
+    # server processes and anything else on this machine (nice -5), so its own sends keep their schedule
+    nice = 0
+    with contextlib.suppress(OSError):
+        os.setpriority(os.PRIO_PROCESS, 0, -5)
+        nice = -5
     c = _LeanScorer(url)
     await c.warm(16)
     for _ in range(50):  # warm the server's paths
@@ -379,7 +388,8 @@ async def _rate(url: str, seconds: float, rps: float) -> dict:
     lat, late = sorted(c.lat), sorted(c.late)
     return {"n": len(lat), "errors": c.errors + (n - len(lat)), "p50_ms": 1e3 * lat[len(lat) // 2],
             "p99_ms": 1e3 * lat[int(0.99 * len(lat))], "max_ms": 1e3 * lat[-1], "most_in_flight": c.most,
-            "client_send_late_p99_ms": round(1e3 * late[int(0.99 * len(late))], 3), **own.report()}
+            "client_send_late_p99_ms": round(1e3 * late[int(0.99 * len(late))], 3), "client_nice": nice,
+            **own.report()}
 
 
 async def _ingest(url: str, seconds: float, conns: int, tag: str, n_bodies: int, per_s: float = 0.0,
