@@ -306,13 +306,13 @@ class _LeanScorer:
         self.most = 0
 
     async def _open(self) -> _ScoreConn:
-        self.opened += 1
         loop = asyncio.get_running_loop()
         _, conn = await loop.create_connection(lambda: _ScoreConn(self), self.host, self.port)
         conn.transport.get_extra_info("socket").setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
         return conn
 
     async def warm(self, conns: int) -> None:
+        self.opened += conns
         self.free = [await self._open() for _ in range(conns)]
 
     def fire(self, due: float) -> None:
@@ -323,6 +323,7 @@ class _LeanScorer:
             self.in_flight += 1
             self.most = max(self.most, self.in_flight)
         elif self.opened < _MOST_CONNS:  # every connection busy: open one more (its setup counts as lateness)
+            self.opened += 1
             asyncio.ensure_future(self._fire_new(due))
         else:  # as many connections as a client should hold: the request waits its turn (lateness again)
             self.waiting.append(due)
