@@ -16,7 +16,7 @@ It never opens the journal and holds no state of its own but the newest model it
   confirmed by the learner for ``[publish] max_model_age_s`` (a learner down, the Redis server out of
   reach); scores are still answered, from the last good version;
 * ``GET /metrics``: this scorer's own exposition (``trimtab_remote_*``, the model's age and
-  staleness among them); ``/healthz``, ``/v1/openapi.json``;
+  staleness among them); ``/healthz``; ``/v1/openapi.json``, which lists only the routes above;
 * anything else (writes, operator actions, the model card) is answered 404 naming the learner as
   the place to send it.
 
