@@ -279,8 +279,10 @@ async def _serve(config: Config, token: str | None) -> None:
         fleet.start()
         svc.metrics.watch("trimtab_scorers_running", lambda: len(fleet.pids))
         svc.metrics.watch("trimtab_scorer_restarts", lambda: fleet.restarts)
-        lower_learner_priority()  # after the fleet's thread started: replacements keep the scorers' priority
-        log.info("learner on local socket unix:@%s; %d scorer processes on the address", name[1:], scorers)
+        # after the fleet's thread started, and not for it: replacements keep the scorers' priority
+        lowered = lower_learner_priority(keep=(fleet.watcher_id(),))
+        log.info("learner on local socket unix:@%s; %d scorer processes on the address; learner threads: %s",
+                 name[1:], scorers, lowered)
     # the objects alive now (modules, the recovered engine) never become garbage: move them out of
     # the collector's sight, and collect less often, so a full collection does not stall scoring for
     # 100+ ms while bodies are parsed (common practice for latency-bound CPython services)

@@ -13,8 +13,9 @@ learner holds. A scorer exits when:
 :class:`ScorerFleet` watches its scorers from one thread and starts a replacement for one that
 exits while the service runs (after 0.2 s, doubling up to 5 s while replacements keep dying within
 2 s). That thread keeps the scheduling priority the learner started with; the learner then lowers
-its own (:func:`lower_learner_priority`), so that replacements, which inherit the priority of the
-thread that starts them, still run ahead of the learner's work.
+its own threads' (:func:`lower_learner_priority`: a higher nice value and, on Linux, the
+``SCHED_BATCH`` policy), so that replacements, which inherit the priority of the thread that starts
+them, still run ahead of the learner's work.
 """
 
 from __future__ import annotations
@@ -31,12 +32,16 @@ from dataclasses import dataclass, field
 
 import orjson
 
-__all__ = ["LEARNER_NICE", "ScorerFleet", "ScorerSetup", "auto_scorers", "lower_learner_priority"]
+__all__ = ["LEARNER_NICE", "LEARNER_POLICY", "ScorerFleet", "ScorerSetup", "auto_scorers", "lower_learner_priority"]
 
 log = logging.getLogger("trimtab.service")
 
 #: how much lower the learner's threads are scheduled than the scorers (a Linux nice value per thread)
 LEARNER_NICE = 5
+#: the Linux scheduling policy of the learner's threads: "batch", "idle" or "normal" (see lower_learner_priority)
+LEARNER_POLICY = "batch"
+#: the environment variable that overrides LEARNER_POLICY (for measuring one against another)
+POLICY_ENV = "TRIMTAB_LEARNER_POLICY"
 #: the environment variable that carries a scorer's setup (JSON) from the learner to the child
 SETUP_ENV = "TRIMTAB_SCORER_SETUP"
 
@@ -47,12 +52,33 @@ def auto_scorers() -> int:
     return max(1, cpus - 1)
 
 
-def lower_learner_priority() -> None:
-    """Lower the calling thread's priority (and so that of the threads it starts later) by :data:`LEARNER_NICE`."""
-    if hasattr(os, "setpriority"):
-        with suppress(OSError):
-            me = threading.get_native_id()
-            os.setpriority(os.PRIO_PROCESS, me, os.getpriority(os.PRIO_PROCESS, me) + LEARNER_NICE)
+def lower_learner_priority(keep: tuple[int, ...] = ()) -> str:
+    """Schedule the learner's threads behind the scorers; return what was done (for the log).
+
+    Every thread of this process but those in ``keep`` (native thread ids: the fleet's watcher,
+    whose children must start at the scorers' priority) is lowered by :data:`LEARNER_NICE` and put
+    under the policy :data:`LEARNER_POLICY` names (Linux); threads started later inherit both from
+    the thread that starts them. ``"batch"`` (``SCHED_BATCH``): the learner's threads never preempt
+    a scorer that wakes up with a request, and take their turns in longer slices; ``"idle"``
+    (``SCHED_IDLE``): they run only on a CPU nothing else wants (ingest stalls on a saturated
+    machine); ``"normal"``: the nice value alone."""
+    policy = os.environ.get(POLICY_ENV, LEARNER_POLICY)
+    kind = {"batch": getattr(os, "SCHED_BATCH", None), "idle": getattr(os, "SCHED_IDLE", None)}.get(policy)
+    tids = [int(t) for t in os.listdir("/proc/self/task")] if os.path.isdir("/proc/self/task") \
+        else [threading.get_native_id()]
+    done = f"nice +{LEARNER_NICE}"
+    for tid in tids:
+        if tid in keep:
+            continue
+        if hasattr(os, "setpriority"):
+            with suppress(OSError):
+                os.setpriority(os.PRIO_PROCESS, tid, min(19, os.getpriority(os.PRIO_PROCESS, tid) + LEARNER_NICE))
+        if kind is not None:
+            try:
+                os.sched_setscheduler(tid, kind, os.sched_param(0))
+            except OSError:
+                kind = None  # not permitted here: the nice value alone
+    return done + (f", {policy.upper()} scheduling" if kind is not None else "")
 
 
 @dataclass
@@ -104,6 +130,10 @@ class ScorerFleet:
     _thread: threading.Thread | None = None
     _life_w: int = -1
     _lock: threading.Lock = field(default_factory=threading.Lock)
+
+    def watcher_id(self) -> int:
+        """Native id of the thread that watches and replaces the scorers (0 before :meth:`start`)."""
+        return self._thread.native_id or 0 if self._thread is not None else 0
 
     def start(self) -> None:
         """Create the life pipe, start the scorers and the thread that watches them."""

@@ -10,7 +10,7 @@ from collections.abc import Callable
 
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 
-__all__ = ["CONTENT_TYPE", "Metrics"]
+__all__ = ["CONTENT_TYPE", "Metrics", "RequestCounts"]
 
 CONTENT_TYPE = CONTENT_TYPE_LATEST
 
@@ -18,15 +18,43 @@ _FAST = (0.0005, 0.001, 0.002, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.
 _SLOW = (0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 
 
+class RequestCounts:
+    """Requests counted by route and status, and their time to answer by route: one counter and one
+    histogram, with their children cached (``labels()`` is the costly part of counting a request).
+
+    Parameters
+    ----------
+    requests, latency
+        A counter labelled ``[*fixed, "route", "status"]`` and a histogram labelled ``[*fixed, "route"]``.
+    fixed
+        Values of the leading labels every request shares (a scorer's index), if any.
+    """
+
+    def __init__(self, requests: Counter, latency: Histogram, fixed: tuple[str, ...] = ()) -> None:
+        self._requests, self._latency, self._fixed = requests, latency, fixed
+        self._children: dict = {}
+
+    def observe(self, route: str, status: int, seconds: float) -> None:
+        """Count one answered request."""
+        pair = self._children.get((route, status))
+        if pair is None:
+            pair = (self._requests.labels(*self._fixed, route, str(status)), self._latency.labels(*self._fixed, route))
+            self._children[(route, status)] = pair
+        pair[0].inc()
+        pair[1].observe(seconds)
+
+
 class Metrics:
     """The service's counters, gauges and histograms."""
 
     def __init__(self) -> None:
         r = self.registry = CollectorRegistry()
-        self._requests = Counter("trimtab_http_requests", "HTTP requests answered, by route and status",
-                                 ["route", "status"], registry=r)
-        self._latency = Histogram("trimtab_http_request_seconds", "Time to answer a request, by route",
-                                  ["route"], buckets=_FAST, registry=r)
+        self.requests = RequestCounts(
+            Counter("trimtab_http_requests", "HTTP requests answered, by route and status", ["route", "status"],
+                    registry=r),
+            Histogram("trimtab_http_request_seconds", "Time to answer a request, by route", ["route"],
+                      buckets=_FAST, registry=r))
+        self.observe = self.requests.observe
         self.events = Counter("trimtab_events", "Events by outcome: accepted (journaled), duplicate, rejected",
                               ["outcome"], registry=r)
         self.commit_seconds = Histogram("trimtab_journal_commit_seconds", "Time to commit one chunk to the journal",
@@ -54,20 +82,10 @@ class Metrics:
                 ("trimtab_scorers_running", "Scorer processes running"),
                 ("trimtab_scorer_restarts", "Scorer processes started to replace one that exited"),
             )}
-        self._children: dict = {}
 
     def watch(self, name: str, fn: Callable[[], float]) -> None:
         """Read gauge ``name`` from ``fn`` at every scrape."""
         self._gauges[name].set_function(fn)
-
-    def observe(self, route: str, status: int, seconds: float) -> None:
-        """Count one answered request (child metrics cached: labels() is the costly part)."""
-        key = (route, status)
-        pair = self._children.get(key)
-        if pair is None:
-            pair = self._children[key] = (self._requests.labels(route, str(status)), self._latency.labels(route))
-        pair[0].inc()
-        pair[1].observe(seconds)
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)

@@ -16,7 +16,7 @@ It never opens the journal and holds no state of its own but the newest model it
   confirmed by the learner for ``[publish] max_model_age_s`` (a learner down, the Redis server out of
   reach); scores are still answered, from the last good version;
 * ``GET /metrics``: this scorer's own exposition (``trimtab_remote_*``, the model's age and
-  staleness among them); ``/healthz``, ``/v1/openapi.json``;
+  staleness among them); ``/healthz``; ``/v1/openapi.json``, which lists only the routes above;
 * anything else (writes, operator actions, the model card) is answered 404 naming the learner as
   the place to send it.
 
@@ -46,7 +46,7 @@ from service.backoff import Backoff
 from service.http import handlers as h
 from service.http.bodies import BodyReader
 from service.http.handlers import SERVICE, Service
-from service.http.metrics import CONTENT_TYPE
+from service.http.metrics import CONTENT_TYPE, RequestCounts
 from service.http.schemas import openapi_document
 from service.http.transport import GuardedRunner, handler_options
 from service.publish.redis_channel import RedisReader
@@ -149,10 +149,11 @@ class RemoteMetrics:
 
     def __init__(self, follower: ModelFollower) -> None:
         r = self.registry = CollectorRegistry()
-        self._requests = Counter("trimtab_remote_http_requests", "Requests answered, by route and status",
-                                 ["route", "status"], registry=r)
-        self._latency = Histogram("trimtab_remote_http_request_seconds", "Time to answer, by route", ["route"],
-                                  buckets=_BUCKETS, registry=r)
+        self.observe = RequestCounts(
+            Counter("trimtab_remote_http_requests", "Requests answered, by route and status", ["route", "status"],
+                    registry=r),
+            Histogram("trimtab_remote_http_request_seconds", "Time to answer, by route", ["route"],
+                      buckets=_BUCKETS, registry=r)).observe
         self.publish_to_serve = Histogram("trimtab_remote_publish_to_serve_seconds", "From the learner taking a "
                                           "version to this scorer serving it (learner's and this machine's clocks)",
                                           buckets=_BUCKETS, registry=r)
@@ -170,15 +171,6 @@ class RemoteMetrics:
               registry=r).set_function(lambda: follower.reconnects)
         Gauge("trimtab_remote_refused_copies", "Copies of the model that did not decode (each re-read later)",
               registry=r).set_function(lambda: follower.reader.refused)
-        self._children: dict = {}
-
-    def observe(self, route: str, status: int, seconds: float) -> None:
-        key = (route, status)
-        pair = self._children.get(key)
-        if pair is None:
-            pair = self._children[key] = (self._requests.labels(route, str(status)), self._latency.labels(route))
-        pair[0].inc()
-        pair[1].observe(seconds)
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)
@@ -254,16 +246,19 @@ def create_remote_scorer_app(config, token: str | None, follower: ModelFollower)
                   metrics=None, bodies=BodyReader(config.service))
     svc.metrics = RemoteMetrics(follower)
     follower.on_swap = lambda snap: svc.metrics.publish_to_serve.observe(max(0.0, time.time() - snap.published_at))
-    svc.openapi = orjson.dumps(openapi_document(config, learner_app.version_text()))
     app = web.Application(middlewares=[learner_app.error_middleware], client_max_size=config.service.max_body_bytes,
                           handler_args=handler_options(config.service))
     app[SERVICE] = svc
     app[FOLLOWER] = follower
     expect = svc.bodies.expect
     app.router.add_post("/v1/score", score, expect_handler=expect)
-    for path, handler in (("/v1/model/serving", serving_model), ("/readyz", readyz), ("/healthz", h.healthz),
-                          ("/v1/openapi.json", h.openapi), ("/metrics", metrics)):
+    gets = (("/v1/model/serving", serving_model), ("/readyz", readyz), ("/healthz", h.healthz),
+            ("/v1/openapi.json", h.openapi), ("/metrics", metrics))
+    for path, handler in gets:
         app.router.add_get(path, handler, expect_handler=expect)
+    # the document lists what this role answers, not the learner's routes (those are refused here)
+    served = {"/v1/score": ("post",), **{path: ("get",) for path, _ in gets}}
+    svc.openapi = orjson.dumps(openapi_document(config, learner_app.version_text(), served=served))
     app.router.add_route("*", "/{tail:.*}", learner_only, expect_handler=expect)
 
     async def lifecycle(app: web.Application):

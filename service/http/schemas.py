@@ -212,8 +212,11 @@ def _op(summary: str, req: str | None, resp: str, write: bool, codes=(400, 401, 
     return op
 
 
-def openapi_document(config, version: str) -> dict:
-    """The OpenAPI 3.1 document; JSON schemas come from the models above (JSON Schema 2020-12)."""
+def openapi_document(config, version: str, served: dict[str, tuple[str, ...]] | None = None) -> dict:
+    """The OpenAPI 3.1 document; JSON schemas come from the models above (JSON Schema 2020-12).
+
+    ``served``: path -> methods (lower case) of a role that answers only those (a remote scorer);
+    default: every route of the learner."""
     models = [EventIn, LabelIn, ScoreRequest, RollbackRequest, ErrorResponse, IngestResponse, ScoreResponse]
     _, defs = models_json_schema([(m, "validation") for m in models], ref_template="#/components/schemas/{model}")
     schemas = dict(defs["$defs"])
@@ -261,6 +264,8 @@ def openapi_document(config, version: str) -> dict:
     paths["/v1/incidents"]["get"]["responses"]["422"] = paths["/v1/incidents"]["get"]["responses"]["401"]
     if not reads:  # the token is optional for scoring, and required with "remember": true
         paths["/v1/score"]["post"]["security"] = [{}, *_BEARER]
+    if served is not None:
+        paths = {p: {m: op for m, op in ops.items() if m in served[p]} for p, ops in paths.items() if p in served}
     return {"openapi": "3.1.0", "info": {"title": f"trimtab service ({config.name})", "version": version},
             "paths": paths, "components": {"schemas": schemas, "securitySchemes": {
                 "bearer": {"type": "http", "scheme": "bearer"}}}}

@@ -46,7 +46,7 @@ from service.http import handlers as h
 from service.http.bodies import BodyReader
 from service.http.fleet import SETUP_ENV, ScorerSetup
 from service.http.handlers import SERVICE, Service
-from service.http.metrics import CONTENT_TYPE
+from service.http.metrics import CONTENT_TYPE, RequestCounts
 from service.http.schemas import openapi_document
 from service.http.transport import GuardedRunner, handler_options
 from service.publish.shared import SharedReader
@@ -74,10 +74,11 @@ class ScorerMetrics:
     def __init__(self, index: int, state: ScorerState) -> None:
         r = self.registry = CollectorRegistry()
         lab = {"scorer": str(index)}
-        self._requests = Counter("trimtab_scorer_http_requests", "Requests this scorer answered or forwarded, "
-                                 "by route and status", ["scorer", "route", "status"], registry=r)
-        self._latency = Histogram("trimtab_scorer_http_request_seconds", "Time to answer, by route",
-                                  ["scorer", "route"], buckets=_BUCKETS, registry=r)
+        self.observe = RequestCounts(
+            Counter("trimtab_scorer_http_requests", "Requests this scorer answered or forwarded, by route and status",
+                    ["scorer", "route", "status"], registry=r),
+            Histogram("trimtab_scorer_http_request_seconds", "Time to answer, by route", ["scorer", "route"],
+                      buckets=_BUCKETS, registry=r), fixed=(str(index),)).observe
         self.publish_to_serve = Histogram("trimtab_scorer_publish_to_serve_seconds", "From the learner taking a "
                                           "version to this scorer serving it", ["scorer"], buckets=_BUCKETS,
                                           registry=r).labels(**lab)
@@ -88,17 +89,6 @@ class ScorerMetrics:
         Gauge("trimtab_scorer_torn_reads", "Copies of the publication file refused because the learner was "
               "writing that slot (each retried)", ["scorer"], registry=r).labels(**lab).set_function(
                   lambda: state.reader.torn)
-        self._label = str(index)
-        self._children: dict = {}
-
-    def observe(self, route: str, status: int, seconds: float) -> None:
-        key = (route, status)
-        pair = self._children.get(key)
-        if pair is None:
-            pair = self._children[key] = (self._requests.labels(self._label, route, str(status)),
-                                          self._latency.labels(self._label, route))
-        pair[0].inc()
-        pair[1].observe(seconds)
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)
