@@ -74,8 +74,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="a running Dask scheduler (tcp://host:port) instead of a local cluster; its workers "
                         "need trimtab installed and must reach the feeds")
     w.add_argument("--parse-each-run", action="store_true",
-                   help="every run parses the feeds itself; by default a worker parses them once and keeps the "
-                        "chunks in memory for its later runs (feeds up to 1 GiB)")
+                   help="every run parses the feeds itself; by default the sweep parses them once and sends every "
+                        "worker a copy of the chunks (feeds up to 1 GiB)")
     w.add_argument("--no-progress", action="store_true", help="no progress lines on stderr")
     w.add_argument("--no-report", action="store_true", help="write sweep.json and the runs' files, not sweep.html")
 

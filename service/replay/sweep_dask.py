@@ -2,7 +2,10 @@
 
 Each config is one Dask task, :func:`run_task`: the worker validates the config again, replays the
 feeds through :func:`service.replay.runner.run_replay` (the engine every replay and the live service
-use) and returns the run's results with its final engine state. A run's result depends only on the
+use) and returns the run's results with its final engine state. Before the runs, one task per group
+of runs that prepare events alike (:func:`parse_task`) parses the feeds with all the cores of its
+machine, and a copy of the chunks goes to every worker: the runs then learn from memory, and the
+scheduler spreads them by load rather than sending them all to the one worker holding the chunks. A run's result depends only on the
 feeds and the config, never on the worker or the order, so a sweep gives the same ``state_digest``
 per run on a local cluster, a remote one or one process.
 
@@ -74,38 +77,11 @@ def _reachable(feed: str, scratch: Path, k: int) -> str:
     return str(target)
 
 
-class _ParsedFeed:
-    """The chunks of the feeds, read once per worker process and reused by the sweep's later runs.
-
-    Parsing is most of a run's time, and the chunks depend only on the feeds and on the settings
-    that prepare events (:data:`_PREPARING`), not on the learning settings a sweep usually varies;
-    the engine never writes into a chunk. One entry is kept, for one sweep (its ``tag``), and only
-    for feeds small enough to hold in memory.
-    """
-
-    def __init__(self) -> None:
-        self.key: str | None = None
-        self.chunks: list | None = None
-
-    @staticmethod
-    def key_of(tag: str, feeds: list[str], config_data: dict) -> str:
-        parts = {section: config_data.get(section) for section in _PREPARING}
-        parts["monitor"] = {k: (config_data.get("monitor") or {}).get(k) for k in ("enabled", "holdout_share")}
-        return json.dumps([tag, feeds, parts], sort_keys=True)
-
-    def recording(self, key: str, local: list[str], config, threads: int):
-        """The chunks read from ``local``, kept under ``key`` once the whole feed was read."""
-        from service.feeds.files import read_feed
-
-        self.key, self.chunks = None, None  # an earlier sweep's chunks are not needed any more
-        kept = [] if sum(_size(f) for f in local) <= _cache_limit() else None
-        for k, feed in enumerate(local):
-            for chunk in read_feed(feed, config, workers=threads):
-                if kept is not None:
-                    kept.append((k, chunk))
-                yield k, chunk
-        if kept is not None:
-            self.key, self.chunks = key, kept
+def _prep_key(feeds: list[str], config_data: dict) -> str:
+    """Runs with equal keys get equal chunks: the feeds and the settings that prepare events."""
+    parts = {section: config_data.get(section) for section in _PREPARING}
+    parts["monitor"] = {k: (config_data.get("monitor") or {}).get(k) for k in ("enabled", "holdout_share")}
+    return json.dumps([feeds, parts], sort_keys=True)
 
 
 def _cache_limit() -> int:
@@ -122,10 +98,36 @@ def _size(path: str) -> int:
     return size * 8 if path.endswith(".gz") else size  # what it takes once decompressed, roughly
 
 
-_PARSED = _ParsedFeed()
+def parse_task(feeds: list[str], configs: list[dict], parse_threads: int) -> list:
+    """The ``(feed index, chunk)`` pairs of ``feeds``, read once for every run of a sweep that prepares
+    events the same way; a Dask worker executes it and the runs' workers receive a copy.
+
+    ``configs`` are those runs' configs: the first one that validates prepares the events (all
+    prepare them alike). Raises ``ValueError`` when none validates: each run then reports its own reason.
+    """
+    from service.config import config_from_dict
+    from service.engine import Engine
+    from service.feeds.files import read_feed
+
+    for data in configs:
+        try:
+            config = config_from_dict(data, source=f"run {data.get('name')}")
+            break
+        except Exception:  # noqa: BLE001 - the run itself reports the reason
+            continue
+    else:
+        raise ValueError("no config of these runs validates; each run reads the feeds itself")
+    Engine(config, trace_limit=1)  # loads the drift detectors once, before the parsing threads need them
+    threads = parse_threads or os.cpu_count() or 1
+    remote = any(urllib.parse.urlsplit(f).scheme in _URL_SCHEMES for f in feeds)
+    with tempfile.TemporaryDirectory(prefix="trimtab-sweep-feed-") if remote else nullcontext() as scratch:
+        local = [_reachable(f, Path(scratch or "."), k) for k, f in enumerate(feeds)]
+        if sum(_size(f) for f in local) > _cache_limit():
+            raise ValueError("feeds too large to hold in each worker's memory; each run reads them itself")
+        return [(k, chunk) for k, feed in enumerate(local) for chunk in read_feed(feed, config, workers=threads)]
 
 
-def run_task(feeds: list[str], config_data: dict, parse_threads: int, tag: str = "") -> dict:
+def run_task(feeds: list[str], config_data: dict, parse_threads: int, chunks: list | None = None) -> dict:
     """One run of the grid, where a Dask worker (or any process) executes it.
 
     Parameters
@@ -136,35 +138,38 @@ def run_task(feeds: list[str], config_data: dict, parse_threads: int, tag: str =
         The derived config as plain data; validated again here, as any config is.
     parse_threads
         Threads parsing ahead of the engine (0: one per core of this machine).
-    tag
-        The sweep's identity: runs of one sweep on one worker parse the feeds once.
+    chunks
+        The feeds' chunks from :func:`parse_task` (the sweep parsed them once); ``None``: this run
+        reads the feeds itself.
 
     Returns
     -------
     dict
         :func:`~service.replay.runner.run_replay`'s results with ``state`` (the final engine state),
-        ``worker`` (host and process that ran it) and ``parsed`` (``"read"`` or ``"reused"``).
+        ``worker`` (host and process that ran it, when it started, its seconds) and ``parsed``
+        (``"read"``: by this run, or ``"shared"``: once for the sweep).
     """
     from service.config import config_from_dict
     from service.replay.runner import run_replay
 
+    began, clock = time.time(), time.perf_counter()
     config = config_from_dict(config_data, source=f"run {config_data.get('name')}")
-    key = _PARSED.key_of(tag, list(feeds), config_data) if tag else None
-    remote = any(urllib.parse.urlsplit(f).scheme in _URL_SCHEMES for f in feeds)
-    # a folder only for downloaded feeds: a worker killed mid-run leaves it behind
-    with tempfile.TemporaryDirectory(prefix="trimtab-sweep-feed-") if remote else nullcontext() as scratch:
-        if key is not None and key == _PARSED.key:
-            local, source, parsed = list(feeds), _PARSED.chunks, "reused"
-        else:
+    if chunks is not None:
+        result = run_replay(list(feeds), config, workers=parse_threads, keep_state=True, chunk_source=chunks)
+        parsed = "shared"
+    else:
+        remote = any(urllib.parse.urlsplit(f).scheme in _URL_SCHEMES for f in feeds)
+        # a folder only for downloaded feeds: a worker killed mid-run leaves it behind
+        with tempfile.TemporaryDirectory(prefix="trimtab-sweep-feed-") if remote else nullcontext() as scratch:
             local = [_reachable(f, Path(scratch or "."), k) for k, f in enumerate(feeds)]
-            source = _PARSED.recording(key, local, config, parse_threads or os.cpu_count() or 1) if key else None
-            parsed = "read"
-        result = run_replay(local, config, workers=parse_threads, keep_state=True, chunk_source=source)
-    summary, names = result["summary"], dict(zip(local, feeds))
-    summary["feed"] = feeds[0] if len(feeds) == 1 else list(feeds)
-    for item in summary.get("bad_lines", []) + summary.get("duplicate_lines", []):
-        item["feed"] = names.get(item["feed"], item["feed"])  # the URL, not this worker's copy of it
-    result["worker"] = {"host": socket.gethostname(), "pid": os.getpid()}
+            result = run_replay(local, config, workers=parse_threads, keep_state=True)
+        summary, names = result["summary"], dict(zip(local, feeds))
+        summary["feed"] = feeds[0] if len(feeds) == 1 else list(feeds)
+        for item in summary.get("bad_lines", []) + summary.get("duplicate_lines", []):
+            item["feed"] = names.get(item["feed"], item["feed"])  # the URL, not this worker's copy of it
+        parsed = "read"
+    result["worker"] = {"host": socket.gethostname(), "pid": os.getpid(), "started": round(began, 3),
+                        "seconds": round(time.perf_counter() - clock, 3)}
     result["parsed"] = parsed
     return result
 
@@ -205,13 +210,39 @@ def _connect(address: str | None, workers: int, quiet: bool):
     return client, None, 0, {"kind": "cluster", "address": address, "workers": n}
 
 
+def _parse_once(client, feeds: list[str], grid: list, tag: str, local: bool, quiet: bool) -> dict:
+    """Grid index -> a finished :func:`parse_task` future held by every worker, for the runs that get one.
+
+    One parse per group of runs preparing events alike, on one worker with all its machine's cores
+    (on the local cluster the other workers have nothing to do meanwhile); then a copy of the chunks
+    goes to every worker, so the scheduler places runs by load and not by where the chunks are.
+    A group whose parse fails (a feed unreadable, no config valid) is left out: its runs read the
+    feeds themselves and report their own reasons.
+    """
+    from distributed import wait
+
+    groups: dict[str, list[int]] = {}
+    for k, run in enumerate(grid):
+        groups.setdefault(_prep_key(list(feeds), run.data()), []).append(k)
+    threads = (os.cpu_count() or 1) if local else 0
+    futures = {key: client.submit(parse_task, list(feeds), [grid[k].data() for k in ks], threads, pure=False,
+                                  key=f"trimtab-sweep-{tag}-parse-{n}")
+               for n, (key, ks) in enumerate(groups.items())}
+    wait(list(futures.values()))
+    good = [f for f in futures.values() if f.status == "finished"]
+    if good and len(client.scheduler_info().get("workers", {})) > 1:
+        client.replicate(good)
+    _say(f"feeds parsed once for {len(good)} group{'s' if len(good) != 1 else ''} of runs", quiet)
+    return {k: fut for key, fut in futures.items() if fut.status == "finished" for k in groups[key]}
+
+
 def execute(feeds: list[str], grid: list, *, address: str | None = None, workers: int = 1,
             quiet: bool = False, reuse: bool = True) -> tuple[list[Outcome], dict]:
     """Run every config of ``grid`` on Dask; outcomes in grid order and the executor's description.
 
     ``address`` is a running scheduler (``tcp://host:port``); ``None`` starts a local cluster of
     ``workers`` processes and stops it afterwards. ``reuse=False`` makes every run parse the feeds
-    itself (no chunks kept in a worker's memory between runs).
+    itself (no chunks parsed once and shared between runs).
     """
     from distributed import as_completed
     from distributed.scheduler import KilledWorker
@@ -222,13 +253,20 @@ def execute(feeds: list[str], grid: list, *, address: str | None = None, workers
     tag = uuid.uuid4().hex[:8]
     start = time.perf_counter()
     executor.update(start_seconds=start - begin, reuse_parsed=reuse)
+    shared: dict = {}
 
     def submit(k: int):
         outcomes[k].attempts += 1
-        return client.submit(run_task, list(feeds), grid[k].data(), threads, tag if reuse else "", pure=False,
+        chunks = shared.get(k)
+        if chunks is not None and chunks.status != "finished":
+            chunks = None  # its every copy was lost with the workers: this run reads the feeds itself
+        return client.submit(run_task, list(feeds), grid[k].data(), threads, chunks, pure=False,
                              key=f"trimtab-sweep-{tag}-{grid[k].name}-{outcomes[k].attempts}")
 
     try:
+        if reuse:
+            shared = _parse_once(client, feeds, grid, tag, cluster is not None, quiet)
+            executor["parse_seconds"] = time.perf_counter() - start
         index = {submit(k): k for k in range(len(grid))}  # the futures are held here until they finish
         done, pending = 0, as_completed(list(index))
         for fut in pending:
@@ -258,6 +296,7 @@ def execute(feeds: list[str], grid: list, *, address: str | None = None, workers
             fut.release()
         executor["runs_seconds"] = time.perf_counter() - start
     finally:
+        shared.clear()
         client.close()
         if cluster is not None:
             cluster.close()

@@ -88,7 +88,7 @@ def test_bad_vary_value_exits_2_before_anything_runs(feed, tmp_path):
 # --------------------------------------------------------------------------- runs on a local cluster
 def test_sweep_on_local_cluster_equals_six_replays_one_by_one(feed, reference, tmp_path, capsys):
     """A 3 x 2 sweep on a local Dask cluster (2 worker processes) gives the six replays' digests,
-    including the runs that reuse the chunks their worker parsed for an earlier run.
+    every run learning from the chunks the sweep parsed once and sent to both workers.
 
     Each run's folder holds a config that ``tomllib`` reads back to the derived config, and a state
     file whose SHA-256 (``hashlib``) is the one recorded and which restores the run's exact model.
@@ -104,9 +104,10 @@ def test_sweep_on_local_cluster_equals_six_replays_one_by_one(feed, reference, t
     held = [row["holdout_loss"] for row in sweep["ranking"]]
     assert held == sorted(held) and [row["rank"] for row in sweep["ranking"]] == [1, 2, 3, 4, 5, 6]
     assert all(row["verdict"] and row["attempts"] == 1 for row in sweep["ranking"])
-    # a worker parses the feed for its first run and reuses the chunks for the next: the digests
-    # above then also show that reusing them changes nothing
-    assert {row["parsed"] for row in sweep["ranking"]} == {"read", "reused"}
+    # the feed is parsed once and every run learns from a copy of its chunks: the digests above
+    # then also show that sharing them changes nothing; both workers ran runs
+    assert {row["parsed"] for row in sweep["ranking"]} == {"shared"}
+    assert len({row["worker"]["pid"] for row in sweep["ranking"]}) == 2
     replayed = json.loads((out / "summary.json").read_text())["runs"]
     assert {r["name"]: r["state_digest"] for r in replayed} == reference
     derived = {g.name: g.config for g in build_grid(load_config(BASE), VARY[1::2])}
