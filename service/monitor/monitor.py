@@ -1,25 +1,20 @@
 """The stability monitor: held-out loss, rollback to the averaged model, restart after a real change.
 
-Projected SGD's guarantees hold on a stationary feed; live feeds change and labels are sometimes
-wrong. The monitor keeps the newest ``window`` held-out events (``window.py``, never learned); every
-``check_every`` learned events it scores them with both iterates and applies the rules of
-``rules.py`` (each documented there) in this order:
+Projected SGD's guarantees hold on a stationary feed; live feeds change and labels are sometimes wrong.
+The monitor keeps the newest ``window`` held-out events (``window.py``, never learned); every
+``check_every`` learned events it scores them with both iterates and applies the rules of ``rules.py``
+(each documented there) in order: *non-finite update*, *distance*, *rollback* -> roll back (restore the
+newest *trusted copy*, taken every ``snapshot_every`` healthy checks in a row since a uniform average
+absorbs each astray update at once; raw := averaged; later steps times ``rollback_shrink``); *change
+confirmed* -> restart (the average, step schedule and ``G`` start again; older held-out events and the
+trusted copy are dropped); *boundary pinned* -> an incident and a standing warning.
 
-1. *non-finite update*, *distance*, *rollback* -> roll back: restore the newest *trusted copy* of the
-   model (taken every ``snapshot_every`` healthy checks in a row: a uniform average absorbs each astray
-   update at once, so raw := averaged alone would keep the damage), set its raw iterate to its
-   averaged one and multiply every later step by ``rollback_shrink``;
-2. *change confirmed* -> restart: the average starts again from the raw iterate, the step schedule
-   and ``G`` re-warm, the held-out events from before the change and the trusted copy are dropped;
-3. *boundary pinned* -> an incident and a standing warning (:attr:`Monitor.warnings`).
-
-Window losses leave out *garbage*: events whose loss under both iterates exceeds ``absurd_factor``
-times the median of the older window events (a garbage target is far from both iterates, so it says
-nothing about which is better), and losses that overflowed (not finite or above
-``models.losses.OVERFLOW_LOSS``), which would turn both means into inf or NaN. A burst of rejected
-input (a share above ``reject_burst_share`` of the last ``reject_window`` events) is an incident too,
-one per burst. Every change of the step scale (a rollback multiplies it by ``rollback_shrink``, a
-restart sets it back to 1) is an incident of its own, ``step_scale``, with the old and the new factor.
+Two rules live here. *Garbage*: window losses leave out events whose loss under both iterates exceeds
+``absurd_factor`` times the median of the older window events (a garbage target is far from both
+iterates, so it says nothing about which is better) and losses that overflowed (above
+``models.losses.OVERFLOW_LOSS``: they would make both means inf or NaN). *Rejected burst*: a share of
+rejected input above ``reject_burst_share`` of the last ``reject_window`` events is one incident per
+burst. Every change of the step scale (rollback, restart) is a ``step_scale`` incident too.
 """
 
 from __future__ import annotations
@@ -85,15 +80,12 @@ class Monitor:
         self._absurd = math.inf if spec.loss == "logistic" else cfg.absurd_factor
         self.window = HeldOutWindow(cfg.window)
         self.state = RuleState(raw_served=cfg.serve == "raw")
-        self._detector = None
-        if cfg.drift == "page_hinkley":
-            self._detector = ChangeDetector("page_hinkley", min_instances=cfg.drift_min_events,
-                                            delta=cfg.drift_delta, threshold=cfg.drift_threshold, mode="up")
-        elif cfg.drift == "adwin":
-            self._detector = ChangeDetector("adwin", delta=cfg.adwin_delta)
-        self._trusted: LinearModel | None = None
+        params = {"page_hinkley": dict(min_instances=cfg.drift_min_events, delta=cfg.drift_delta,
+                                       threshold=cfg.drift_threshold, mode="up"), "adwin": dict(delta=cfg.adwin_delta)}
+        self._detector = ChangeDetector(cfg.drift, **params[cfg.drift]) if cfg.drift in params else None
+        self._trusted: LinearModel | None = None  # the trusted copy, taken at event _trusted_event
         self._trusted_event: int | None = None
-        self._restored: LinearModel | None = None
+        self._restored: LinearModel | None = None  # what the last rollback restored, until the engine takes it
         self.incidents: list[dict] = []
         self._rejects: list[list[int]] = []  # [rejected, total] per report, newest last
         self._reject_open = False
@@ -226,20 +218,12 @@ class Monitor:
                 self._trusted, self._trusted_event = copy_model(model), int(event)
             return False
         restore = self._trusted is not None and not refused
-        shrink, before = cfg.rollback_shrink, model.step_scale
-        if restore:  # the shrink compounds: the copy's steps are scaled to the current ones times the shrink
-            shrink *= model.step_scale / self._trusted.step_scale
-            model = self._restored = copy_model(self._trusted)
-        model.rollback(shrink)
-        state.worse_streak = state.healthy = 0
-        state.alert = by_loss
-        evidence = {"step_scale": model.step_scale, "restored_from": self._trusted_event if restore else None}
+        evidence = {"restored_from": self._trusted_event if restore else None}
         if fig is not None:
             evidence.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, distance=fig.distance,
                             allowance=fig.allowance, held_out=fig.n_usable)
-        self._incident("rollback", event, ts, reason, evidence)
-        self._step_scale_changed(event, ts, before, model.step_scale, "rollback")
-        record["action"] = "rollback"
+        self.manual_rollback(model, event, reason, ts, evidence, restore)
+        state.healthy, state.alert, record["action"] = 0, by_loss, "rollback"
         return True
 
     def _change_rules(self, model: LinearModel, fig: CheckFigures, event: int, ts, record: dict) -> None:
@@ -280,12 +264,18 @@ class Monitor:
         model, self._restored = self._restored, None
         return model
 
-    def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request") -> None:
-        before = model.step_scale
-        model.rollback(self.cfg.rollback_shrink)
+    def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request", ts=None,
+                        evidence: dict | None = None, restore: bool = False) -> None:
+        """Roll ``model`` back (raw := averaged, later steps times ``rollback_shrink``), or with ``restore``
+        a copy of the trusted one (the engine adopts it through :meth:`take_restored`); one incident."""
+        shrink, before = self.cfg.rollback_shrink, model.step_scale
+        if restore:  # the shrink compounds: the copy's steps are scaled to the current ones times the shrink
+            shrink *= model.step_scale / self._trusted.step_scale
+            model = self._restored = copy_model(self._trusted)
+        model.rollback(shrink)
         self.state.worse_streak = 0
-        self._incident("rollback", event, None, reason, {"step_scale": model.step_scale})
-        self._step_scale_changed(event, None, before, model.step_scale, "rollback")
+        self._incident("rollback", event, ts, reason, {"step_scale": model.step_scale, **(evidence or {})})
+        self._step_scale_changed(event, ts, before, model.step_scale, "rollback")
 
     def _step_scale_changed(self, event: int, ts, old: float, new: float, cause: str) -> None:
         """An incident for every change of the factor on later steps, with the old and the new factor."""

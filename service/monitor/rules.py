@@ -151,10 +151,8 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     p_mean = welch_pvalue(new, old) if n >= 30 and new.mean() > rise * old.mean() else 1.0
     if min(p_sign, p_mean) > cfg.drift_level:
         return None
-    test = "sign" if p_sign <= p_mean else "means"
-    centre = np.median if test == "sign" else np.mean
-    if test == "means":
-        ref, now = float(old.mean()), float(new.mean())
+    test, centre = ("sign", np.median) if p_sign <= p_mean else ("means", np.mean)
+    ref, now = float(centre(old)), float(centre(new))
     return {"alarm_event": state.alarm_from, "checks": state.alarm_checks, "n": n, "above": above,
             "p": min(p_sign, p_mean), "test": test, "before_averaged": ref, "recent_averaged": now,
             "before_raw": float(centre(raw[:early][before])), "recent_raw": float(centre(raw[fresh:][pick])),
