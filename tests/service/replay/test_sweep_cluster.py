@@ -66,15 +66,19 @@ def _busiest(workers: list) -> psutil.Process:
     return max(workers, key=lambda w: w.cpu_percent(None))
 
 
-def test_worker_killed_mid_sweep_loses_no_run(tmp_path):
+@pytest.mark.parametrize("parse", ["each-run", "shared"])
+def test_worker_killed_mid_sweep_loses_no_run(tmp_path, parse):
     """SIGKILL a busy worker process while runs are in flight: its run is retried and every digest
     still equals the one-by-one replay's; every server of the local cluster listens on 127.0.0.1.
-    Every run parses the feed itself here (``--parse-each-run``), the path the other tests leave out."""
+    ``each-run``: every run parses the feed itself (``--parse-each-run``); ``shared``: the runs share
+    one parse copied to both workers, and the retried run uses the copy the other worker still holds
+    (or, with every copy gone, reads the feed itself)."""
     feed = sweepkit.make_feed(tmp_path, 20_000)
     reference = sweepkit.replay_digests(feed, tmp_path)
     out = tmp_path / "sweep"
+    extra = ["--parse-each-run"] if parse == "each-run" else []
     proc = sweepkit.start([PYTHON, "-m", "service.cli", "sweep", str(feed), "-c", str(BASE), *VARY,
-                           "--out", str(out), "--workers", "2", "--parse-each-run"], stdout=subprocess.DEVNULL,
+                           "--out", str(out), "--workers", "2", *extra], stdout=subprocess.DEVNULL,
                           stderr=subprocess.PIPE, text=True)
     lines: queue.Queue = queue.Queue()
     seen: list[str] = []
@@ -100,7 +104,8 @@ def test_worker_killed_mid_sweep_loses_no_run(tmp_path):
     assert retried and all("worker lost" in row["lost_workers"][0] for row in retried), "".join(seen)
     assert "retrying once" in "".join(seen) and "6/6 runs finished" in "".join(seen)
     assert sweep["completed"] == 6 and sweep["failed"] == []
-    assert {row["parsed"] for row in sweep["ranking"]} == {"read"}
+    parsed = {row["parsed"] for row in sweep["ranking"]}
+    assert parsed == {"read"} if parse == "each-run" else "shared" in parsed and parsed <= {"shared", "read"}
 
 
 def _free_port() -> int:
