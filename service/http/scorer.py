@@ -132,12 +132,18 @@ SCORER = web.AppKey("scorer", ScorerState)
 
 
 # -------------------------------------------------------------------- handlers
-async def score(request: web.Request) -> web.Response:
+def _published(request: web.Request, why: str = "") -> tuple:
+    """``(service, scorer state, newest snapshot)`` for a reader with the token; 503 before the first model."""
     svc, st = request.app[SERVICE], request.app[SCORER]
     h._auth(svc, request, write=False)
     snap = st.current()
     if snap is None:
-        raise NotReady("not ready: no model published yet (the learner is recovering)", where="startup")
+        raise NotReady(f"not ready: no model published yet{why}", where="startup")
+    return svc, st, snap
+
+
+async def score(request: web.Request) -> web.Response:
+    svc, st, snap = _published(request, " (the learner is recovering)")
     h._content_type(request, ("application/json",))
     body = await svc.bodies.read(request)
     snap = st.current()  # the newest once the body is in
@@ -153,11 +159,7 @@ async def score(request: web.Request) -> web.Response:
 
 
 async def serving_model(request: web.Request) -> web.Response:
-    svc, st = request.app[SERVICE], request.app[SCORER]
-    h._auth(svc, request, write=False)
-    snap = st.current()
-    if snap is None:
-        raise NotReady("not ready: no model published yet", where="startup")
+    _svc, st, snap = _published(request)
     return h._json(dict(snap.describe(), scorer=st.index, pid=os.getpid()))
 
 
