@@ -244,7 +244,7 @@ class Engine:
 
     def rollback(self, reason: str = "operator request") -> None:
         if self.monitor is not None:
-            self.monitor.manual_rollback(self.model, self.events, reason)
+            self.monitor.rollback(self.model, self.events, reason)
         else:
             self.model.rollback(self.config.monitor.rollback_shrink)
 

@@ -42,6 +42,7 @@ from service.events import Event
 from service.storage.guard import StorageGuard
 from service.storage.health import storage_fault
 from service.storage.journal import NOTE, ROLLBACK, Journal
+from service.monitor.monitor import step_scale_change
 from service.startup import recover
 from service.storage.recovery import encode_event, serving_view
 from service.storage.seen import id_key, number_events
@@ -319,12 +320,10 @@ class Ingestor:
             self.engine.rollback(reason)
             after = self.engine.model.step_scale
         if self.engine.monitor is None:
-            shrink = self.config.monitor.rollback_shrink
             self._incident("rollback", reason, {"step_scale": after, "monitor": "off"}, persist=True)
             if after != before:
-                self._incident("step_scale", f"step scale {before:.6g} -> {after:.6g}: a rollback multiplies "
-                               f"every later step by {shrink:g}", {"old": before, "new": after, "cause": "rollback"},
-                               persist=True)
+                self._incident("step_scale", *step_scale_change(before, after, "rollback",
+                                                                self.config.monitor.rollback_shrink), persist=True)
 
     async def _learner(self) -> None:
         while True:

@@ -134,12 +134,7 @@ def _too_many(n: int, limit: int, what: str) -> None:
 def _score_body(body: bytes, v: EventValidator, view: tuple, max_batch: int):
     """Parse, validate and score one body (on a worker thread when large)."""
     obj = parse_json(body)
-    if type(obj) is dict and len(obj) == 1 and type(obj.get("features")) is dict:
-        # the common form, {"features": {...}}, is valid as it stands (JSON keys are strings): no
-        # validator run needed; every other body goes through the model and its error messages
-        req = ScoreRequest.model_construct(features=obj["features"])
-    else:
-        req = envelope(ScoreRequest, obj)
+    req = envelope(ScoreRequest, obj)
     if req.events is not None:
         _too_many(len(req.events), max_batch, "events")
     return req, *_score(obj, req, v, view)

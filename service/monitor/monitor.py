@@ -35,12 +35,20 @@ from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
 from service.monitor.window import HeldOutWindow
 
-__all__ = ["LAYOUT", "Monitor", "copy_model"]
+__all__ = ["LAYOUT", "Monitor", "copy_model", "step_scale_change"]
 
 #: the version of :meth:`Monitor.to_bytes`' layout; a state of another one is refused
 LAYOUT = 2
 _MEDIAN_SAMPLE = 500
 _KEPT_CHECKS = 64  # event indices of the last checks kept (patience beyond this is out of reach anyway)
+
+
+def step_scale_change(old: float, new: float, cause: str, shrink: float) -> tuple[str, dict]:
+    """The reason and evidence of a ``step_scale`` incident: the factor on later steps went from ``old``
+    to ``new`` because of a ``"rollback"`` (times ``shrink``) or a ``"restart"`` (back to full size)."""
+    why = (f"a rollback multiplies every later step by {shrink:g}" if cause == "rollback"
+           else "a restart re-warms the step schedule at full size")
+    return f"step scale {old:.6g} -> {new:.6g}: {why}", {"old": old, "new": new, "cause": cause}
 
 
 def copy_model(model: LinearModel) -> LinearModel:
@@ -222,7 +230,7 @@ class Monitor:
         if fig is not None:
             evidence.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, distance=fig.distance,
                             allowance=fig.allowance, held_out=fig.n_usable)
-        self.manual_rollback(model, event, reason, ts, evidence, restore)
+        self.rollback(model, event, reason, ts, evidence, restore)
         state.healthy, state.alert, record["action"] = 0, by_loss, "rollback"
         return True
 
@@ -264,8 +272,8 @@ class Monitor:
         model, self._restored = self._restored, None
         return model
 
-    def manual_rollback(self, model: LinearModel, event: int, reason: str = "operator request", ts=None,
-                        evidence: dict | None = None, restore: bool = False) -> None:
+    def rollback(self, model: LinearModel, event: int, reason: str = "operator request", ts=None,
+                 evidence: dict | None = None, restore: bool = False) -> None:
         """Roll ``model`` back (raw := averaged, later steps times ``rollback_shrink``), or with ``restore``
         a copy of the trusted one (the engine adopts it through :meth:`take_restored`); one incident."""
         shrink, before = self.cfg.rollback_shrink, model.step_scale
@@ -279,12 +287,8 @@ class Monitor:
 
     def _step_scale_changed(self, event: int, ts, old: float, new: float, cause: str) -> None:
         """An incident for every change of the factor on later steps, with the old and the new factor."""
-        if old == new:
-            return
-        why = (f"a rollback multiplies every later step by {self.cfg.rollback_shrink:g}" if cause == "rollback"
-               else "a restart re-warms the step schedule at full size")
-        self._incident("step_scale", event, ts, f"step scale {old:.6g} -> {new:.6g}: {why}",
-                       {"old": old, "new": new, "cause": cause})
+        if old != new:
+            self._incident("step_scale", event, ts, *step_scale_change(old, new, cause, self.cfg.rollback_shrink))
 
     def _incident(self, kind: str, event: int, ts, reason: str, evidence: dict) -> None:
         self.incidents.append({"kind": kind, "event": int(event), "ts": ts, "reason": reason,
