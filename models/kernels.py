@@ -33,6 +33,8 @@ import math
 from .jit import numba
 import numpy as np
 
+from .losses import OVERFLOW_LOSS
+
 __all__ = [
     "N_PARAMS",
     "N_SCALARS",
@@ -43,6 +45,7 @@ __all__ = [
     "pair_margins",
     "point_loss",
     "score_rows_both",
+    "score_window",
 ]
 
 # parameter array (float64), fixed for a model
@@ -434,3 +437,41 @@ def score_rows_both(lazy, st, sc, prm, mean, std, indptr, indices, values, out):
     for i in range(n):
         out[0, i], out[1, i], _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, indptr[i],
                                                   indptr[i + 1], xs)
+
+
+@_jit
+def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref, sample_max, absurd, losses,
+                 usable, kept):
+    """The held-out monitor's figures of a window of rows in one pass (the rules that read them are in
+    ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
+    and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
+    the smaller is at most ``absurd`` times the reference; and the usable rows' losses, in order, to
+    ``kept[:, :n_usable]``. The reference is the median averaged-iterate loss of a regular sample of
+    rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count (a partition finds the
+    median). Returns ``(reference, n_usable)``."""
+    code, delta = int(prm[P_LOSS]), prm[P_DELTA]
+    n = losses.shape[1]
+    width = 1
+    for i in range(n):
+        width = max(width, indptr[i + 1] - indptr[i])
+    xs = np.empty(width)
+    for i in range(n):
+        raw, avg, _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, indptr[i], indptr[i + 1], xs)
+        losses[0, i] = _loss(code, delta, raw, y[i])
+        losses[1, i] = _loss(code, delta, avg, y[i])
+    step = max(1, n_ref // sample_max)
+    m = (n_ref + step - 1) // step
+    m -= 1 - m % 2
+    sample = np.empty(m)
+    for k in range(m):
+        sample[k] = losses[1, k * step]
+    reference = np.partition(sample, m // 2)[m // 2]
+    limit = absurd * reference if reference > 0.0 else np.inf
+    n_usable = 0
+    for i in range(n):
+        a, b = losses[0, i], losses[1, i]
+        usable[i] = abs(a) <= OVERFLOW_LOSS and abs(b) <= OVERFLOW_LOSS and min(a, b) <= limit
+        if usable[i]:
+            kept[0, n_usable], kept[1, n_usable] = a, b
+            n_usable += 1
+    return reference, n_usable

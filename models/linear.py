@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 import math
 from dataclasses import dataclass
 
@@ -172,6 +173,19 @@ class LinearModel:
         K.score_rows_both(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
                           rows.indptr, rows.indices, rows.values, out)
         return out
+
+    def score_window(self, rows: Rows, y: np.ndarray, n_ref: int, sample_max: int,
+                     absurd: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+        """The held-out monitor's figures of ``rows`` (targets ``y``) in one compiled pass
+        (``kernels.score_window``): ``(losses, usable, kept, reference)``, the losses of both iterates
+        (row 0 raw, row 1 averaged), which rows are usable, their losses, and the reference median."""
+        n = len(rows)
+        # ``kept`` column-major, as numpy's ``losses[:, usable]`` is: its sums then match that copy's bit for bit
+        losses, usable, kept = np.empty((2, n)), np.empty(n, dtype=np.bool_), np.empty((2, n), order="F")
+        reference, n_usable = K.score_window(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
+                                             rows.indptr, rows.indices, rows.values, y, n_ref, sample_max,
+                                             absurd, losses, usable, kept)
+        return losses, usable, losses if n_usable == n else kept[:, :n_usable], reference
 
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""
@@ -406,6 +420,16 @@ class LinearModel:
     def copy(self) -> LinearModel:
         """An independent copy with the same state."""
         return LinearModel.from_bytes(self.to_bytes())
+
+    def quick_copy(self) -> LinearModel:
+        """An independent copy in a few microseconds (the monitor's trusted copy): the learned state lives
+        in numpy arrays, which are copied; the frozen spec and the mapper's cache of names are shared."""
+        twin = copy.copy(self)
+        for name, value in vars(self).items():
+            if isinstance(value, np.ndarray):
+                setattr(twin, name, value.copy())
+        twin._warm = list(self._warm)
+        return twin
 
     def clone(self) -> LinearModel:
         """A fresh model with the same settings and no learned state."""

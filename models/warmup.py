@@ -30,7 +30,8 @@ def exercise(spec: ModelSpec, parts=PARTS) -> None:
     """Compile (or load from the cache) the kernels a model of ``spec`` runs.
 
     ``"learn"``: the learning kernel of the spec's representation (with the rebase it calls);
-    ``"read"``: scoring with both iterates, reading an iterate out and the distance between them.
+    ``"read"``: scoring with both iterates (alone, and with the held-out monitor's figures), reading an
+    iterate out and the distance between them.
     With both parts done, rollback and restart (which only call these) are exercised too.
     Nothing outside the throwaway model changes.
 
@@ -49,6 +50,7 @@ def exercise(spec: ModelSpec, parts=PARTS) -> None:
         model.process(rows, np.array([0.0, 1.0, 1.0]), np.array([0, 1, 2], np.int8), Outcome.empty(3))
     if "read" in parts:
         model.score_rows_both(rows)
+        model.score_window(rows, np.zeros(3), 3, 500, 1e6)
         model.weights("raw")
         model.weights("averaged")
         model.distance()

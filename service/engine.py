@@ -296,10 +296,10 @@ class Engine:
             return None
         held = None
         if self.monitor is not None and len(self.monitor.window):
-            window = self.monitor.window
-            p = self.model.predict_rows(window.rows(), self.serving)
+            rows, y, _ = self.monitor.window.view()
+            p = self.model.predict_rows(rows, self.serving)
             ok = np.isfinite(p)
-            held = binary_metrics(window.targets()[ok], p[ok]).to_dict()
+            held = binary_metrics(y[ok], p[ok]).to_dict()
         return {"iterate": self.serving, "progressive": self._tally.result().to_dict(), "holdout": held}
 
     @property

@@ -9,7 +9,8 @@ the work starts. There are three parts, each compiling functions the others do n
 ``"learn"``
     the learning kernel of each model representation in use (lazy, dense);
 ``"read"``
-    scoring with both iterates, reading an iterate out, the distance between the iterates;
+    scoring with both iterates (alone, and with the held-out monitor's figures), reading an iterate out,
+    the distance between the iterates;
 ``"feeds"``
     the line scan and gather of the columnar NDJSON reader, the id hashes and the duplicate-id set.
 
@@ -98,7 +99,7 @@ def _dispatchers(part: str, kernels) -> list:
     if part == "learn":
         return [K.lazy_process if k == "lazy" else K.dense_process for k in kernels]
     if part == "read":
-        return [K.score_rows_both, R.materialize, R.iterate_distance]
+        return [K.score_rows_both, K.score_window, R.materialize, R.iterate_distance]
     from service import idhash
     from service.feeds import ndjson_columns as nc
 

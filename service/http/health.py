@@ -86,8 +86,8 @@ def _window_binary(engine) -> dict | None:
     mon = engine.monitor
     if engine.config.model.task != "binary" or mon is None or len(mon.window) == 0:
         return None
-    margins = engine.model.score_rows_both(mon.window.rows())
-    labels = mon.window.targets()
+    rows, labels, _ = mon.window.view()
+    margins = engine.model.score_rows_both(rows)
     out = {}
     for k, iterate in enumerate(("raw", "averaged")):
         p = 0.5 * (1.0 + np.tanh(0.5 * margins[k]))  # the model's own link (LinearModel.predict_rows)

@@ -7,26 +7,23 @@ The monitor keeps the newest ``window`` held-out events (``window.py``, never le
 newest *trusted copy*, taken every ``snapshot_every`` healthy checks in a row since a uniform average
 absorbs each astray update at once; raw := averaged; later steps times ``rollback_shrink``); *change
 confirmed* -> restart (the average, step schedule and ``G`` start again; older held-out events and the
-trusted copy are dropped); *boundary pinned* -> an incident and a standing warning.
+trusted copy are dropped); *boundary pinned* -> an incident and a standing warning. *Rejected burst*
+is one incident per burst of rejected input. Every change of the step scale is a ``step_scale`` incident.
 
-Two rules live here. *Garbage*: window losses leave out events whose loss under both iterates exceeds
+One rule lives here, *garbage*: window losses leave out events whose loss under both iterates exceeds
 ``absurd_factor`` times the median of the older window events (a garbage target is far from both
 iterates, so it says nothing about which is better) and losses that overflowed (above
-``models.losses.OVERFLOW_LOSS``: they would make both means inf or NaN). *Rejected burst*: a share of
-rejected input above ``reject_burst_share`` of the last ``reject_window`` events is one incident per
-burst. Every change of the step scale (rollback, restart) is a ``step_scale`` incident too.
+``models.losses.OVERFLOW_LOSS``: they would make both means inf or NaN).
 """
 
 from __future__ import annotations
 
-import copy
 import math
 from dataclasses import asdict
 
 import numpy as np
 
 from models import LinearModel, Rows
-from models.losses import overflowed
 from models.snapshot import pack, unpack
 
 from service.config import MonitorConfig
@@ -35,10 +32,12 @@ from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
 from service.monitor.window import HeldOutWindow
 
-__all__ = ["LAYOUT", "Monitor", "copy_model", "step_scale_change"]
+__all__ = ["LAYOUT", "Monitor", "step_scale_change"]
 
 #: the version of :meth:`Monitor.to_bytes`' layout; a state of another one is refused
-LAYOUT = 2
+LAYOUT = 3
+#: the garbage rule's median is taken over a regular sample of at most about this many older events
+#: (exchangeable, so a new event still lands above it with probability 1/2)
 _MEDIAN_SAMPLE = 500
 _KEPT_CHECKS = 64  # event indices of the last checks kept (patience beyond this is out of reach anyway)
 
@@ -49,17 +48,6 @@ def step_scale_change(old: float, new: float, cause: str, shrink: float) -> tupl
     why = (f"a rollback multiplies every later step by {shrink:g}" if cause == "rollback"
            else "a restart re-warms the step schedule at full size")
     return f"step scale {old:.6g} -> {new:.6g}: {why}", {"old": old, "new": new, "cause": cause}
-
-
-def copy_model(model: LinearModel) -> LinearModel:
-    """An independent copy of ``model`` in a few microseconds: its learned state lives in numpy arrays,
-    which are copied; the rest (the frozen spec, the mapper's cache of categorical names) is shared."""
-    twin = copy.copy(model)
-    for name, value in vars(model).items():
-        if isinstance(value, np.ndarray):
-            setattr(twin, name, value.copy())
-    twin._warm = list(model._warm)
-    return twin
 
 
 class Monitor:
@@ -95,8 +83,6 @@ class Monitor:
         self._trusted_event: int | None = None
         self._restored: LinearModel | None = None  # what the last rollback restored, until the engine takes it
         self.incidents: list[dict] = []
-        self._rejects: list[list[int]] = []  # [rejected, total] per report, newest last
-        self._reject_open = False
 
     @property
     def serving(self) -> str:
@@ -137,38 +123,20 @@ class Monitor:
         self.state.refused += count
 
     def note_rejected(self, rejected: int, total: int, event: int, ts: float | None = None) -> None:
-        """Count rejected input; one incident per burst above ``reject_burst_share``."""
-        if total <= 0:
-            return
-        self._rejects.append([rejected, total])
-        while len(self._rejects) > 1 and sum(t for _, t in self._rejects[1:]) >= self.cfg.reject_window:
-            self._rejects.pop(0)  # the newest reports that cover ``reject_window`` events are enough
-        bad, n = (sum(col) for col in zip(*self._rejects))
-        share = bad / n
-        if share > self.cfg.reject_burst_share and n >= min(self.cfg.reject_window, 50) and not self._reject_open:
-            self._reject_open = True
-            self._incident("rejected_burst", event, ts, f"{bad} of the last {n} events were rejected ({share:.0%})",
-                           {"share": share})
-        elif share < self.cfg.reject_burst_share / 2:
-            self._reject_open = False
+        """Count input rejected at the boundary (the *rejected burst* rule)."""
+        burst = rules.rejected_burst(self.state, rejected, total, self.cfg)
+        if burst is not None:
+            self._incident("rejected_burst", event, ts, *burst)
 
     def _figures(self, model: LinearModel, upto: int | None = None) -> CheckFigures | None:
         """The window's figures up to event ``upto`` (``None``: all), garbage left out of the means."""
-        scored = self.window.losses(model, upto)
-        if scored is None:
+        rows, y, events = self.window.view(upto)
+        if not len(events):
             return None
-        losses, events = scored
         n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
-        older = losses[1, :n_old] if n_old >= MIN_EVENTS else losses[1]
-        # the median of a regular sample of at most about _MEDIAN_SAMPLE older events (exchangeable, so a new
-        # event still lands above it with probability 1/2); odd, so a partition finds it (np.median: 40 us)
-        sample = older[::max(1, len(older) // _MEDIAN_SAMPLE)]
-        sample = sample[:len(sample) - 1 + len(sample) % 2]
-        reference = float(np.partition(sample, len(sample) // 2)[len(sample) // 2])
-        usable = np.minimum(losses[0], losses[1]) <= (self._absurd * reference if reference > 0 else math.inf)
-        usable &= ~overflowed(losses).any(axis=0)  # a loss of 1e300 would make both means inf or NaN
-        n_usable = int(np.count_nonzero(usable))
-        kept = losses if n_usable == len(events) else losses[:, usable]
+        losses, usable, kept, reference = model.score_window(rows, y, n_old if n_old >= MIN_EVENTS else len(events),
+                                                             _MEDIAN_SAMPLE, self._absurd)
+        n_usable = kept.shape[1]
         raw, avg = (kept.sum(axis=1) / n_usable).tolist() if n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
@@ -223,7 +191,7 @@ class Monitor:
             state.healthy = 0 if state.worse_streak else state.healthy + 1
             state.alert = state.alert and state.healthy < cfg.rollback_patience
             if state.healthy and state.healthy % cfg.snapshot_every == 0 and model.scaling_frozen:
-                self._trusted, self._trusted_event = copy_model(model), int(event)
+                self._trusted, self._trusted_event = model.quick_copy(), int(event)
             return False
         restore = self._trusted is not None and not refused
         evidence = {"restored_from": self._trusted_event if restore else None}
@@ -279,7 +247,7 @@ class Monitor:
         shrink, before = self.cfg.rollback_shrink, model.step_scale
         if restore:  # the shrink compounds: the copy's steps are scaled to the current ones times the shrink
             shrink *= model.step_scale / self._trusted.step_scale
-            model = self._restored = copy_model(self._trusted)
+            model = self._restored = self._trusted.quick_copy()
         model.rollback(shrink)
         self.state.worse_streak = 0
         self._incident("rollback", event, ts, reason, {"step_scale": model.step_scale, **(evidence or {})})
@@ -301,8 +269,7 @@ class Monitor:
         fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
         trusted = self._trusted.to_bytes() if self._trusted is not None else b""
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
-                  "trusted_event": self._trusted_event, "incidents": self.incidents,
-                  "rejects": self._rejects, "reject_open": self._reject_open}
+                  "trusted_event": self._trusted_event, "incidents": self.incidents}
         arrays = {**self.window.to_arrays(), "detector_fed": fed, "trusted": np.frombuffer(trusted, dtype=np.uint8)}
         return pack(header, arrays, {})[0]
 
@@ -324,5 +291,4 @@ class Monitor:
         self._trusted = LinearModel.from_bytes(trusted) if trusted else None
         self._trusted_event = header["trusted_event"]
         self.incidents = header["incidents"]
-        self._rejects, self._reject_open = header["rejects"], header["reject_open"]
         self._restored = None

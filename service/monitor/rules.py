@@ -15,7 +15,7 @@ from service.config import MonitorConfig
 from service.monitor.detectors import ChangeDetector
 
 __all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "non_finite_update",
-           "raw_persistently_worse", "sign_test_pvalue", "too_far_from_average", "welch_pvalue"]
+           "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average", "welch_pvalue"]
 
 #: fewest usable events a comparison is made on (a sign test at level 0.001 needs 10 of 10 above)
 MIN_EVENTS = 10
@@ -42,6 +42,8 @@ class RuleState:
     restarted_at: int = -1  # the event of the last restart
     checks: list = field(default_factory=list)  # event of each of the last checks, oldest first
     on_boundary: list = field(default_factory=list)  # 1/0 per recent check: the raw iterate on the boundary
+    rejects: list = field(default_factory=list)  # [rejected, total] per report of rejected input, newest last
+    reject_open: bool = False  # a rejected-burst incident is open
 
 
 @dataclass
@@ -186,3 +188,24 @@ def boundary_pinned(state: RuleState, on_boundary: bool, cfg: MonitorConfig) -> 
         state.boundary_open = False
         return False
     return None
+
+
+def rejected_burst(state: RuleState, rejected: int, total: int, cfg: MonitorConfig) -> tuple[str, dict] | None:
+    """**Rejected burst** -> incident. Watches the share of input rejected before it reached the model
+    (malformed or invalid events) over the newest reports that cover ``reject_window`` events.
+    Threshold: above ``reject_burst_share`` on at least ``min(reject_window, 50)`` events, one incident
+    per burst (it closes below half that share); common practice, no published source. Returns the
+    incident's reason and evidence when a burst begins."""
+    if total <= 0:
+        return None
+    state.rejects.append([rejected, total])
+    while len(state.rejects) > 1 and sum(t for _, t in state.rejects[1:]) >= cfg.reject_window:
+        state.rejects.pop(0)  # the newest reports that cover ``reject_window`` events are enough
+    bad, n = (sum(col) for col in zip(*state.rejects))
+    share = bad / n
+    if share < cfg.reject_burst_share / 2:
+        state.reject_open = False
+    if share <= cfg.reject_burst_share or n < min(cfg.reject_window, 50) or state.reject_open:
+        return None
+    state.reject_open = True
+    return f"{bad} of the last {n} events were rejected ({share:.0%})", {"share": share}

@@ -1,18 +1,16 @@
-"""The held-out window: the newest held-out events (never learned) and their losses under both iterates.
+"""The held-out window: the newest held-out events, never learned, that the monitor's checks score.
 
 A batch's held-out events are kept when it arrives, before it is learned (nothing about them changes
 later); a check at event ``e`` scores the newest ``size`` of them up to ``e``. They are kept as sparse
-rows in event order in buffers with room to spare, so a check scores one contiguous slice with the
-model's own compiled scorer (``LinearModel.score_rows_both``, both iterates in one pass) and the loss
-in numpy: the losses are exactly the model's.
+rows in event order in buffers with room to spare, so a check scores one contiguous slice in one
+compiled pass of the model's own (``LinearModel.score_window``): the losses are exactly the model's.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from models import LinearModel, Rows
-from models.losses import loss_value
+from models import Rows
 
 __all__ = ["HeldOutWindow"]
 
@@ -40,10 +38,12 @@ class HeldOutWindow:
         lo, hi = self.span()
         return hi - lo
 
-    def events(self) -> np.ndarray:
-        """Event indices of the window's events, oldest first."""
-        lo, hi = self.span()
-        return self._events[lo:hi].copy()
+    def view(self, upto: int | None = None) -> tuple[Rows, np.ndarray, np.ndarray]:
+        """``(rows, targets, events)`` of the newest ``size`` events up to event ``upto`` (``None``: all),
+        oldest first: views of the buffers (:meth:`add` writes past them)."""
+        lo, hi = self.span(upto)
+        # indptr points into the whole coordinate buffers, so it need not start at 0
+        return Rows(self._ptr[lo:hi + 1], self._indices, self._values), self._y[lo:hi], self._events[lo:hi]
 
     def add(self, rows: Rows, y: np.ndarray, picked: np.ndarray, events: np.ndarray) -> None:
         """Keep rows ``picked`` of ``rows`` (targets ``y[picked]``, event indices ``events``), which are
@@ -83,29 +83,6 @@ class HeldOutWindow:
     def drop_before(self, event: int) -> None:
         """Forget the events held out before ``event`` (after a real change)."""
         self._lo += int(np.count_nonzero(self._events[self._lo:self._hi] < event))
-
-    def targets(self) -> np.ndarray:
-        """Targets of the kept events, oldest first (a copy)."""
-        lo, hi = self.span()
-        return self._y[lo:hi].copy()
-
-    def rows(self) -> Rows:
-        """The window's rows, views of the buffers valid until the next :meth:`add`."""
-        lo, hi = self.span()
-        return Rows(self._ptr[lo:hi + 1], self._indices, self._values)
-
-    def losses(self, model: LinearModel, upto: int | None = None) -> tuple[np.ndarray, np.ndarray] | None:
-        """``(losses, events)`` of the window up to event ``upto``, oldest first: ``losses[0]`` under the
-        raw iterate of ``model``, ``losses[1]`` under the averaged one (``None``: no events)."""
-        lo, hi = self.span(upto)
-        if hi == lo:
-            return None
-        # indptr points into the whole coordinate buffers, so it need not start at 0
-        margins = model.score_rows_both(Rows(self._ptr[lo:hi + 1], self._indices, self._values))
-        spec = model.spec
-        with np.errstate(over="ignore", invalid="ignore"):  # a blown-up model's losses are inf: the monitor counts them
-            losses = loss_value(spec.loss, margins, self._y[lo:hi], spec.huber_delta)
-        return losses, self._events[lo:hi]
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         """The window's events only (a restored window continues identically)."""

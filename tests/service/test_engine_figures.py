@@ -64,7 +64,7 @@ def test_binary_metrics_of_the_engine_agree_with_sklearn():
     assert prog["log_loss"] == pytest.approx(skm.log_loss(y, p, labels=[0, 1]), rel=1e-9)
     assert prog["base_rate"] == pytest.approx(y.mean(), abs=1e-15)
 
-    kept = engine.monitor.window.events()
+    kept = engine.monitor.window.view()[2]
     held = [events[int(i)] for i in kept]
     hp, _ = engine.score([e.features for e in held])
     hy = np.array([e.target for e in held], dtype=int)

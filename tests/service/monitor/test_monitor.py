@@ -27,7 +27,7 @@ from service.engine import Engine
 from models.snapshot import pack, unpack
 from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import sign_test_pvalue
-from service.monitor.monitor import LAYOUT, copy_model
+from service.monitor.monitor import LAYOUT
 
 from . import monitor_feeds as feeds
 
@@ -324,7 +324,7 @@ def test_trusted_copy_is_an_independent_model():
     eng = engine()
     s = feeds.stream(6000, 8)
     apply(eng, s, 0, 3000)
-    twin, snap = copy_model(eng.model), eng.model.copy()
+    twin, snap = eng.model.quick_copy(), eng.model.copy()
     assert twin.digest == snap.digest == eng.model.digest
     apply(eng, s, 3000, 6000)
     assert twin.digest == snap.digest != eng.model.digest
@@ -351,7 +351,7 @@ def test_restart_drops_the_old_window_and_keeps_the_raw_iterate():
     eng = engine()
     apply(eng, s, 0, len(s), chunk=1_000)
     (restart,) = kinds(eng, "restart")
-    assert eng.monitor.window.events().min() >= restart["evidence"]["alarm_event"]
+    assert eng.monitor.window.view()[2].min() >= restart["evidence"]["alarm_event"]
     assert eng.model.updates_since_restart < len(s) - CHANGE_AT
     ev = restart["evidence"]
     assert ev["p"] <= 1e-3 and ev["recent_averaged"] > 1.1 * ev["before_averaged"]
