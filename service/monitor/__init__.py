@@ -4,7 +4,3 @@ monitor that runs them at every check (``monitor.py``).
 
 May import ``models``, ``service.config`` and river; nothing else in ``service``.
 """
-
-from service.monitor.monitor import LAYOUT, Monitor
-
-__all__ = ["LAYOUT", "Monitor"]

@@ -2,13 +2,10 @@
 
 Page-Hinkley (E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41) and ADWIN (A. Bifet
 and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing", SIAM SDM) are
-river's own classes, loaded from their modules without ``river.drift``'s package import, which
-imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
-
-Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
-the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
-most ``ADWIN_MEMORY`` of them: beyond, it is rebuilt from the newest half, alike with and without
-checkpoints.
+river's own classes, loaded without ``river.drift``'s package import (which imports scikit-learn:
+1.9 s of a replay's start). Page-Hinkley is saved by its fields; river's ADWIN hides its buckets in
+compiled code, so it is saved as the values fed to it since its last reset, at most ``ADWIN_MEMORY``
+(beyond, it is rebuilt from the newest half), and rebuilt by feeding them again (it is deterministic).
 """
 
 from __future__ import annotations
@@ -64,31 +61,22 @@ class ChangeDetector:
         describes the feed; a fresh start would learn it from whatever comes next, so a change that began
         while the alarm was open would look normal) and restarts its sums; ADWIN starts afresh."""
         if self.kind == "adwin":
-            self.reset()
-            return
+            return self.reset()
         det = self._det
         det._sum_increase = det._sum_decrease = 0.0
-        det._min_increase, det._max_decrease = math.inf, -1.0
-        det._drift_detected = False
-
-    def update(self, x: float) -> bool:
-        """Feed one value; ``True`` when the detector signals a change at this value."""
-        return self.feed([float(x)])
+        det._min_increase, det._max_decrease, det._drift_detected = math.inf, -1.0, False
 
     def feed(self, values) -> bool:
         """Feed ``values`` in order up to the first that signals a change (``True``; the rest are not fed)."""
-        det = self._det
         for x in values:
-            if det.drift_detected:
+            if self._det.drift_detected:
                 self.reset()
-                det = self._det
             if self._fed is not None:
                 if len(self._fed) >= ADWIN_MEMORY:
                     self._refeed(self._fed[len(self._fed) // 2:])
-                    det = self._det
                 self._fed.append(x)
-            det.update(x)
-            if det.drift_detected:
+            self._det.update(x)
+            if self._det.drift_detected:
                 return True
         return False
 

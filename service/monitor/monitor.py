@@ -1,19 +1,19 @@
 """The stability monitor: held-out loss, rollback to the averaged model, restart after a real change.
 
 Projected SGD's guarantees hold on a stationary feed; live feeds change and labels are sometimes wrong.
-The monitor keeps the newest ``window`` held-out events (``window.py``, never learned); every
-``check_every`` learned events it scores them with both iterates and applies the rules of ``rules.py``
-(each documented there) in order: *non-finite update*, *distance*, *rollback* -> roll back (restore the
-newest *trusted copy*, taken every ``snapshot_every`` healthy checks in a row since a uniform average
-absorbs each astray update at once; raw := averaged; later steps times ``rollback_shrink``); *change
-confirmed* -> restart (the average, step schedule and ``G`` start again; older held-out events and the
-trusted copy are dropped); *boundary pinned* -> an incident and a standing warning. *Rejected burst*
-is one incident per burst of rejected input. Every change of the step scale is a ``step_scale`` incident.
+Every ``check_every`` learned events the monitor scores its window (``window.py``: the newest held-out
+events, never learned) with both iterates and applies the rules of ``rules.py``, each documented there,
+in order: *non-finite update*, *distance*, *rollback* -> roll back (restore the newest *trusted copy*,
+taken every ``snapshot_every`` healthy checks in a row since a uniform average absorbs each astray
+update at once; raw := averaged; later steps times ``rollback_shrink``); *change confirmed* -> restart
+(the average, step schedule and ``G`` start again; older held-out events and the trusted copy are
+dropped); *boundary pinned* -> incident and warning. Every change of the step scale is an incident.
 
-One rule lives here, *garbage*: window losses leave out events whose loss under both iterates exceeds
-``absurd_factor`` times the median of the older window events (a garbage target is far from both
-iterates, so it says nothing about which is better) and losses that overflowed (above
-``models.losses.OVERFLOW_LOSS``: they would make both means inf or NaN).
+One rule lives here, *garbage*: the window's mean losses leave out events whose loss under both
+iterates exceeds ``absurd_factor`` times the median of the older window events (a garbage target is
+far from both iterates, so it says nothing about which is better) and losses that overflowed (above
+``models.losses.OVERFLOW_LOSS``: they would make both means inf or NaN). One compiled pass
+(``models.kernels.score_window``) gives the losses, the median and the usable events.
 """
 
 from __future__ import annotations
@@ -62,9 +62,9 @@ class Monitor:
 
     Notes
     -----
-    The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events,
-    and adopts the model :meth:`take_restored` returns after a rollback. ``incidents`` lists ``{kind,
-    event, ts, reason, evidence}``.
+    The engine calls :meth:`hold_out` per batch and :meth:`check` every ``check_every`` learned events,
+    and adopts the model :meth:`take_restored` returns after a rollback. ``incidents``: ``{kind, event,
+    ts, reason, evidence}``; ``state.ignored``: rollback triggers seen while ``rollback = false``.
     """
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
@@ -79,8 +79,7 @@ class Monitor:
         params = {"page_hinkley": dict(min_instances=cfg.drift_min_events, delta=cfg.drift_delta,
                                        threshold=cfg.drift_threshold, mode="up"), "adwin": dict(delta=cfg.adwin_delta)}
         self._detector = ChangeDetector(cfg.drift, **params[cfg.drift]) if cfg.drift in params else None
-        self._trusted: LinearModel | None = None  # the trusted copy, taken at event _trusted_event
-        self._trusted_event: int | None = None
+        self._trusted, self._trusted_event = None, None  # the trusted copy and the event it was taken at
         self._restored: LinearModel | None = None  # what the last rollback restored, until the engine takes it
         self.incidents: list[dict] = []
 
@@ -88,11 +87,6 @@ class Monitor:
     def serving(self) -> str:
         """The iterate the model serves now: ``"raw"`` or ``"averaged"``."""
         return "raw" if self.state.raw_served else "averaged"
-
-    @property
-    def alarms_ignored(self) -> int:
-        """Rollback triggers seen while ``[monitor] rollback = false`` (reported, not acted on)."""
-        return self.state.ignored
 
     @property
     def restarted_at(self) -> int | None:
@@ -114,8 +108,7 @@ class Monitor:
         return {"raw": None, "averaged": None} if fig is None else {"raw": fig.raw, "averaged": fig.averaged}
 
     def hold_out(self, rows: Rows, y: np.ndarray, mode: np.ndarray, first: int) -> None:
-        """Keep the held-out events (``mode == 2``) of a batch whose row 0 is event ``first``, before the
-        batch is learned: a check scores only the events up to its own."""
+        """Keep the held-out events (``mode == 2``) of a batch whose row 0 is event ``first``, before it is learned."""
         picked = np.flatnonzero(mode == 2)
         self.window.add(rows, y, picked, first + picked)
 
@@ -140,8 +133,8 @@ class Monitor:
         raw, avg = (kept.sum(axis=1) / n_usable).tolist() if n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
-        return CheckFigures(losses, events, usable, n_usable, n_old, reference, losses[1, n_old:] > reference,
-                            raw, avg, model.distance(), allowance)
+        return CheckFigures(losses, events, usable, n_usable, n_old, losses[1, n_old:] > reference, raw, avg,
+                            model.distance(), allowance)
 
     def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
         """Score the window up to ``event``, apply the rules, act; return the check's record."""
@@ -254,8 +247,7 @@ class Monitor:
         self._step_scale_changed(event, ts, before, model.step_scale, "rollback")
 
     def _step_scale_changed(self, event: int, ts, old: float, new: float, cause: str) -> None:
-        """An incident for every change of the factor on later steps, with the old and the new factor."""
-        if old != new:
+        if old != new:  # one incident for every change of the factor on later steps
             self._incident("step_scale", event, ts, *step_scale_change(old, new, cause, self.cfg.rollback_shrink))
 
     def _incident(self, kind: str, event: int, ts, reason: str, evidence: dict) -> None:
@@ -264,8 +256,7 @@ class Monitor:
                                             for k, v in evidence.items()}})
 
     def to_bytes(self) -> bytes:
-        """The state, no pickle: a JSON header (layout, rule state, detector fields, incidents) and arrays
-        (the window, ADWIN's input, the trusted copy's bytes) in ``models.snapshot``'s container."""
+        """The state in ``models.snapshot``'s container (no pickle): a JSON header and the arrays."""
         fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
         trusted = self._trusted.to_bytes() if self._trusted is not None else b""
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
@@ -286,9 +277,7 @@ class Monitor:
         if self._detector is not None:
             self._detector.load_state(header["detector"], arrays["detector_fed"])
         self.window.load_arrays(arrays)
-        self.state = RuleState(**header["rules"])
+        self.state, self.incidents, self._restored = RuleState(**header["rules"]), header["incidents"], None
         trusted = arrays["trusted"].tobytes()
         self._trusted = LinearModel.from_bytes(trusted) if trusted else None
         self._trusted_event = header["trusted_event"]
-        self.incidents = header["incidents"]
-        self._restored = None

@@ -56,8 +56,7 @@ class CheckFigures:
     usable: np.ndarray  # not garbage: under at least one iterate within ``absurd_factor`` references
     n_usable: int
     n_old: int
-    reference: float  # median averaged-iterate loss of (a sample of) the events held out before
-    above: np.ndarray  # per new event: its averaged-iterate loss is above ``reference``
+    above: np.ndarray  # per new event: its averaged-iterate loss is above the median of the older ones
     raw: float  # mean loss over the usable events, raw iterate
     averaged: float
     distance: float  # ||w_raw - w_avg||

@@ -1,9 +1,8 @@
 """The held-out window: the newest held-out events, never learned, that the monitor's checks score.
 
-A batch's held-out events are kept when it arrives, before it is learned (nothing about them changes
-later); a check at event ``e`` scores the newest ``size`` of them up to ``e``. They are kept as sparse
-rows in event order in buffers with room to spare, so a check scores one contiguous slice in one
-compiled pass of the model's own (``LinearModel.score_window``): the losses are exactly the model's.
+A batch's held-out events are kept when it arrives, before it is learned; a check at event ``e`` scores
+the newest ``size`` of them up to ``e``. They are kept as sparse rows in event order in buffers with
+room to spare, so a check scores one contiguous slice with the model's own compiled code.
 """
 
 from __future__ import annotations

@@ -235,7 +235,7 @@ def _summary(engine, config: Config, feeds, config_path, seconds: float) -> dict
         "binary_metrics": engine.binary_metrics(),
         "diverged": engine.divergence(),
         "baseline_loss": engine.baseline_loss, "warnings": engine.warnings, "serving": engine.serving,
-        "alarms_ignored": engine.monitor.alarms_ignored if engine.monitor is not None else 0,
+        "alarms_ignored": engine.monitor.state.ignored if engine.monitor is not None else 0,
         "rollbacks": [{"event": i["event"], "reason": i["reason"], "step_scale": i["evidence"].get("step_scale")}
                       for i in incidents if i["kind"] == "rollback"],
         "restarts": [{"event": i["event"], "reason": i["reason"]} for i in incidents if i["kind"] == "restart"],

@@ -46,7 +46,7 @@ def test_river_documented_example(kind, index):
     rng = random.Random(12345)
     stream = rng.choices([0, 1], k=1000) + rng.choices(range(4, 8), k=1000)
     det = ChangeDetector(kind)
-    assert [i for i, x in enumerate(stream) if det.update(x)][0] == index
+    assert [i for i, x in enumerate(stream) if det.feed([float(x)])][0] == index
 
 
 @pytest.mark.parametrize("mode", ["up", "down", "both"])
@@ -59,7 +59,7 @@ def test_same_detections_as_river_on_random_streams(mode, params):
     for seed in range(5):
         stream = _steps(seed)
         det = ChangeDetector("page_hinkley", mode=mode, **params)
-        ours = [i for i, x in enumerate(stream) if det.update(x)]
+        ours = [i for i, x in enumerate(stream) if det.feed([float(x)])]
         assert ours == _fires(drift.PageHinkley(mode=mode, **params), stream)
         if params:
             assert ours, "the stream should trigger the sensitive settings at least once"
@@ -77,7 +77,7 @@ def test_saved_state_continues_identically(kind, params):
     cuts = sorted(random.Random(3).sample(range(1, len(stream)), 6))
     det, got, start = ChangeDetector(kind, **params), [], 0
     for cut in cuts + [len(stream)]:
-        got += [start + i for i, x in enumerate(stream[start:cut]) if det.update(x)]
+        got += [start + i for i, x in enumerate(stream[start:cut]) if det.feed([float(x)])]
         fields, values = det.state()
         det = ChangeDetector(kind, **params)
         det.load_state(json.loads(json.dumps(fields)), np.frombuffer(values.tobytes()))

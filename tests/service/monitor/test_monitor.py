@@ -142,7 +142,7 @@ def test_detector_reproduces_river_documentation(kind, index):
     rng = random.Random(12345)
     stream = rng.choices([0, 1], k=1000) + rng.choices(range(4, 8), k=1000)
     detector = ChangeDetector(kind)
-    fired = [i for i, x in enumerate(stream) if detector.update(x)]
+    fired = [i for i, x in enumerate(stream) if detector.feed([float(x)])]
     assert fired[0] == index
 
 
