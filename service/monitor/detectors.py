@@ -53,8 +53,14 @@ class ChangeDetector:
         self.reset()
 
     def reset(self) -> None:
-        self._det = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+        self._built = None  # river's detector, built at its first use: importing river takes 50 ms of a start
         self._fed: list[float] | None = [] if self.kind == "adwin" else None  # ADWIN's input since its reset
+
+    @property
+    def _det(self):
+        if self._built is None:
+            self._built = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+        return self._built
 
     def rearm(self) -> None:
         """Look for a change again after a dismissed alarm. Page-Hinkley keeps the mean it learned (it still
