@@ -16,7 +16,7 @@ from .features import FeatureMapper, Rows
 from .snapshot import pack, unpack
 from .spec import ModelSpec
 
-__all__ = ["ITERATES", "LinearModel", "Outcome"]
+__all__ = ["ITERATES", "LinearModel", "Outcome", "step_scale_change"]
 
 #: Names of the two iterates a model can score with.
 ITERATES = {"raw": 0, "averaged": 1}
@@ -437,6 +437,14 @@ class LinearModel:
 
     def __repr__(self) -> str:
         return f"LinearModel(loss={self._spec.loss!r}, rule={self._spec.rule!r}, updates={self.n_updates})"
+
+
+def step_scale_change(old: float, new: float, cause: str, shrink: float) -> tuple[str, dict]:
+    """The reason and evidence of a ``step_scale`` incident: the factor on later steps went from ``old``
+    to ``new`` because of a ``"rollback"`` (times ``shrink``) or a ``"restart"`` (back to full size)."""
+    why = (f"a rollback multiplies every later step by {shrink:g}" if cause == "rollback"
+           else "a restart re-warms the step schedule at full size")
+    return f"step scale {old:.6g} -> {new:.6g}: {why}", {"old": old, "new": new, "cause": cause}
 
 
 def _iterate(name: str) -> int:

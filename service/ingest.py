@@ -35,6 +35,7 @@ from contextlib import suppress
 
 import orjson
 
+from models.linear import step_scale_change
 from service.engine import Engine
 from service.publish import take_snapshot
 from service.errors import JournalUnavailable, NotReady, Overloaded
@@ -42,7 +43,6 @@ from service.events import Event
 from service.storage.guard import StorageGuard
 from service.storage.health import storage_fault
 from service.storage.journal import NOTE, ROLLBACK, Journal
-from service.monitor.monitor import step_scale_change
 from service.startup import recover
 from service.storage.recovery import encode_event, serving_view
 from service.storage.seen import id_key, number_events

@@ -24,6 +24,7 @@ from dataclasses import asdict
 import numpy as np
 
 from models import LinearModel, Rows
+from models.linear import step_scale_change
 from models.snapshot import pack, unpack
 
 from service.config import MonitorConfig
@@ -32,7 +33,7 @@ from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
 from service.monitor.window import HeldOutWindow
 
-__all__ = ["LAYOUT", "Monitor", "step_scale_change"]
+__all__ = ["LAYOUT", "Monitor"]
 
 #: the version of :meth:`Monitor.to_bytes`' layout; a state of another one is refused
 LAYOUT = 3
@@ -40,14 +41,6 @@ LAYOUT = 3
 #: (exchangeable, so a new event still lands above it with probability 1/2)
 _MEDIAN_SAMPLE = 500
 _KEPT_CHECKS = 64  # event indices of the last checks kept (patience beyond this is out of reach anyway)
-
-
-def step_scale_change(old: float, new: float, cause: str, shrink: float) -> tuple[str, dict]:
-    """The reason and evidence of a ``step_scale`` incident: the factor on later steps went from ``old``
-    to ``new`` because of a ``"rollback"`` (times ``shrink``) or a ``"restart"`` (back to full size)."""
-    why = (f"a rollback multiplies every later step by {shrink:g}" if cause == "rollback"
-           else "a restart re-warms the step schedule at full size")
-    return f"step scale {old:.6g} -> {new:.6g}: {why}", {"old": old, "new": new, "cause": cause}
 
 
 class Monitor:
@@ -62,9 +55,9 @@ class Monitor:
 
     Notes
     -----
-    The engine calls :meth:`hold_out` per batch and :meth:`check` every ``check_every`` learned events,
-    and adopts the model :meth:`take_restored` returns after a rollback. ``incidents``: ``{kind, event,
-    ts, reason, evidence}``; ``state.ignored``: rollback triggers seen while ``rollback = false``.
+    The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events, and
+    adopts the model :meth:`take_restored` returns after a rollback. ``incidents``: ``{kind, event, ts,
+    reason, evidence}``.
     """
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
@@ -90,7 +83,8 @@ class Monitor:
 
     @property
     def restarted_at(self) -> int | None:
-        """The event of the last restart (``None``: never restarted)."""
+        """The event of the last restart (``None``: never restarted); ``state.ignored`` counts the rollback
+        triggers seen while ``rollback = false``."""
         return self.state.restarted_at if self.state.restarted_at >= 0 else None
 
     @property
