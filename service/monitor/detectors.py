@@ -74,15 +74,18 @@ class ChangeDetector:
 
     def feed(self, values) -> bool:
         """Feed ``values`` in order up to the first that signals a change (``True``; the rest are not fed)."""
+        det = self._det
         for x in values:
-            if self._det.drift_detected:
+            if det.drift_detected:
                 self.reset()
+                det = self._det
             if self._fed is not None:
                 if len(self._fed) >= ADWIN_MEMORY:
                     self._refeed(self._fed[len(self._fed) // 2:])
+                    det = self._det
                 self._fed.append(x)
-            self._det.update(x)
-            if self._det.drift_detected:
+            det.update(x)
+            if det.drift_detected:
                 return True
         return False
 
