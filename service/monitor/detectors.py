@@ -80,19 +80,14 @@ class ChangeDetector:
                 self.reset()
                 det = self._det
             if self._fed is not None:
-                if len(self._fed) >= ADWIN_MEMORY:
-                    self._refeed(self._fed[len(self._fed) // 2:])
+                if len(self._fed) >= ADWIN_MEMORY:  # rebuilt from the newest half, as a restored state is
+                    self.load_state({"kind": "adwin"}, np.asarray(self._fed[len(self._fed) // 2:]))
                     det = self._det
                 self._fed.append(x)
             det.update(x)
             if det.drift_detected:
                 return True
         return False
-
-    def _refeed(self, values: list[float]) -> None:
-        self.reset()
-        for x in values:  # on past a detection, as the first time
-            self.feed((x,))
 
     def state(self) -> tuple[dict, np.ndarray]:
         """``(fields, values)``: Page-Hinkley's fields, or the values ADWIN was fed since its reset."""
@@ -109,7 +104,8 @@ class ChangeDetector:
             raise ValueError(f"detector state of kind {fields.get('kind')!r}, this config's is {self.kind!r}")
         self.reset()
         if self._fed is not None:
-            self._refeed(values.tolist())
+            for x in values.tolist():  # on past a detection, as the first time
+                self.feed((x,))
             return
         det = self._det
         for k in _PH_FIELDS:
