@@ -10,8 +10,9 @@ Two settings of ``numba.pycc`` differ from the JIT and are changed for the durat
 * pycc targets the host CPU's model without its feature list; here it gets the same features as the
   JIT (a virtual machine may hide features its CPU model has: code using them would not run).
 
-Both are numba internals (``numba.pycc.compiler.compile_extra``, ``AOTCPUCodegen``): a numba that
-changes them makes the build fail, and trimtab then keeps using the JIT.
+Both are numba internals (``numba.pycc.compiler.compile_extra``, ``AOTCPUCodegen``), and numba marks
+``numba.pycc`` itself as pending deprecation: a numba that changes or drops them makes the build fail,
+and trimtab then keeps using the JIT.
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ import contextlib
 import json
 import os
 import tempfile
+import warnings
 from pathlib import Path
 
 __all__ = ["compile_set"]
@@ -85,7 +87,9 @@ def _like_the_jit(options_of: dict):
 def compile_set(name: str, path: Path, sig_path: Path, modules) -> None:
     """Compile the exported functions of ``modules`` into the extension module ``path`` (import name
     ``name``) and write their argument descriptions to ``sig_path``; both appear atomically."""
-    from numba.pycc import CC
+    with warnings.catch_warnings():  # pycc is marked for a future deprecation; the JIT stays the fallback
+        warnings.simplefilter("ignore")
+        from numba.pycc import CC
 
     exports = _exports(modules)
     if not exports:
