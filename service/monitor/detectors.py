@@ -5,6 +5,9 @@ and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing
 river's own classes, loaded from their modules without ``river.drift``'s package import, which
 imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
 
+river's detector (and with it ``river.stats``, about 0.1 s of a start) is built when the first value
+arrives, not with the monitor: a replay learns its first events before the monitor's first check.
+
 Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
 the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
 most ``ADWIN_MEMORY`` of them: beyond, it is rebuilt from the newest half, alike with and without
@@ -56,8 +59,14 @@ class ChangeDetector:
         self.reset()
 
     def reset(self) -> None:
-        self._det = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+        self._fresh = None  # river's detector, built on first use (see the module docstring)
         self._fed: list[float] | None = [] if self.kind == "adwin" else None  # ADWIN's input since its reset
+
+    @property
+    def _det(self):
+        if self._fresh is None:
+            self._fresh = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+        return self._fresh
 
     def rearm(self) -> None:
         """Look for a change again after a dismissed alarm. Page-Hinkley keeps the mean it learned (it still
@@ -98,9 +107,12 @@ class ChangeDetector:
             self.feed((x,))
 
     def state(self) -> tuple[dict, np.ndarray]:
-        """``(fields, values)``: Page-Hinkley's fields, or the values ADWIN was fed since its reset."""
+        """``(fields, values)``: Page-Hinkley's fields (``{"fresh": true}`` when it was not fed since its
+        reset), or the values ADWIN was fed since its reset."""
         if self._fed is not None:
             return {"kind": "adwin"}, np.asarray(self._fed, dtype=np.float64)
+        if self._fresh is None:  # never fed since its reset: nothing to save, and no river to load
+            return {"kind": self.kind, "fresh": True}, np.zeros(0)
         det = self._det
         fields = {k: float(getattr(det, k)) for k in _PH_FIELDS}
         fields.update(kind="page_hinkley", n=float(det._x_mean.n), mean=float(det._x_mean._mean),
@@ -113,6 +125,8 @@ class ChangeDetector:
         self.reset()
         if self._fed is not None:
             self._refeed(values.tolist())
+            return
+        if fields.get("fresh"):
             return
         det = self._det
         for k in _PH_FIELDS:
