@@ -274,18 +274,7 @@ def _init_worker(shared) -> None:
     _SHARED = shared
 
 
-def _lean_arrow() -> None:
-    """Give Arrow the system allocator in a replay process: its default pool keeps ~40 MB of freed
-    chunk buffers, and a replay's memory should stay flat however long the feed."""
-    try:
-        import pyarrow as pa
-    except ImportError:
-        return
-    pa.set_memory_pool(pa.system_memory_pool())
-
-
 def _worker(feeds, config: Config, slot: int, columnar: bool, workers: int, config_path: str) -> dict:
-    _lean_arrow()
     return run_replay(feeds, config, columnar=columnar, workers=workers, counts=_Counts(_SHARED, slot),
                       config_path=config_path)
 
@@ -407,7 +396,6 @@ def replay_main(args) -> int:
             from service.replay.report import Painter
 
             painter = stack.enter_context(Painter())  # loads matplotlib while the runs go
-        _lean_arrow()
         results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
                           columnar=not getattr(args, "exact_parse", False))
         written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)
