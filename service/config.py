@@ -10,13 +10,19 @@ valid values. ``Config.model_spec()`` turns the learning sections into a :class:
 from __future__ import annotations
 
 import math
+import os
 import tomllib
 from pathlib import Path
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+# pydantic looks for plugins in the entry points of every installed distribution when it builds its
+# first validator (tens of milliseconds of each start); trimtab's config uses none. A value the user
+# set is kept.
+os.environ.setdefault("PYDANTIC_DISABLE_PLUGINS", "__all__")
 
-from models import InvalidSettings, ModelSpec
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator  # noqa: E402
+
+from models import InvalidSettings, ModelSpec  # noqa: E402
 
 __all__ = ["Config", "ConfigError", "load_config", "parse_config"]
 
