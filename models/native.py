@@ -32,6 +32,7 @@ import importlib.util
 import json
 import os
 import sys
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -44,6 +45,7 @@ MODE_ENV = "TRIMTAB_KERNELS"
 CACHE_ENV = "TRIMTAB_CACHE_DIR"
 #: Part of every key: raise it when the build or the argument checks change.
 FORMAT = 1
+_LOADING = threading.Lock()
 
 
 def cache_dir() -> Path:
@@ -122,12 +124,15 @@ class KernelSet:
     # ------------------------------------------------------------------ loading
     def _native(self):
         if self._loaded is None:
-            self._loaded = False
-            if not jit_only():
-                try:
-                    self._loaded = self._import()
-                except Exception:  # damaged or foreign file: the JIT serves, a build replaces it
-                    self.missing = True
+            with _LOADING:  # parse threads resolve their first kernels at the same moment
+                if self._loaded is None:
+                    loaded = False
+                    if not jit_only():
+                        try:
+                            loaded = self._import()
+                        except Exception:  # damaged or foreign file: the JIT serves, a build replaces it
+                            self.missing = True
+                    self._loaded = loaded
         return self._loaded
 
     def _import(self):
