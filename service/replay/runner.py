@@ -25,13 +25,11 @@ from __future__ import annotations
 import contextlib
 import json
 import math
-import multiprocessing as mp
 import os
 import queue
 import re
 import threading
 import time
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -280,6 +278,8 @@ def _worker(feeds, config: Config, slot: int, columnar: bool, workers: int, conf
 
 
 def _context():
+    import multiprocessing as mp  # here: a run with one config never starts a process (15 ms of a start)
+
     method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
     ctx = mp.get_context(method)
     if method == "forkserver":
@@ -316,6 +316,8 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
             for i, (cfg, path) in enumerate(zip(configs, paths)):
                 results.append(run_replay(feeds, cfg, columnar=columnar, counts=_Counts(store, i), config_path=path))
         return results
+    from concurrent.futures import ProcessPoolExecutor
+
     ctx = _context()
     shared = ctx.Array("d", _Counts.WIDTH * len(configs), lock=False)
     workers = max(1, (os.cpu_count() or 1) // jobs)
