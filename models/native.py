@@ -155,6 +155,11 @@ class KernelSet:
         loaded = self._native()
         return bool(loaded) and name in loaded[1]
 
+    def failed(self) -> bool:
+        """Whether a build of this key failed before (no C compiler, say): not retried by itself."""
+        name, path, _ = self.paths()
+        return path.with_name(name + ".failed").exists()
+
     def jit(self, name: str):
         """The numba dispatcher ``name`` (imports numba and the module that defines it)."""
         for module in self._modules:
@@ -184,10 +189,17 @@ class KernelSet:
         """
         from ._aot_build import compile_set
 
-        modules = [importlib.import_module(m) for m in self._modules]  # imports numba
-        exercise()
         name, path, sig_path = self.paths()
-        compile_set(name, path, sig_path, modules)
+        failed = path.with_name(name + ".failed")
+        try:
+            modules = [importlib.import_module(m) for m in self._modules]  # imports numba
+            exercise()
+            compile_set(name, path, sig_path, modules)
+        except Exception as exc:  # remembered: no automatic retry until the key changes
+            failed.parent.mkdir(parents=True, exist_ok=True)
+            failed.write_text(f"{type(exc).__name__}: {exc}\n", encoding="utf-8")
+            raise
+        failed.unlink(missing_ok=True)
         self._loaded = None
         self.missing = False
         for attr in [a for a in vars(self) if not a.startswith("_") and a != "missing"]:

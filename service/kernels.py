@@ -7,8 +7,11 @@ one, else by numba's JIT (:mod:`models.native` says how and why).
 
 The build is automatic: a command that had to use the JIT because a module was missing (the first
 run on a machine, or the first after an upgrade) starts :func:`build_later` when it is done, a
-detached, low-priority ``python -m service.kernels build`` that compiles both sets (about 20 s of
-CPU) into the cache folder. The next commands start without numba. ``TRIMTAB_KERNELS`` chooses:
+detached, low-priority ``python -m service.kernels build`` that compiles both sets (about 25 s of
+CPU) into the cache folder. The next commands start without numba. A build that fails (no C
+compiler, say) leaves ``<module>.failed`` with the reason beside where the module would be, and is
+not started again by itself until the sources or versions change; ``python -m service.kernels build``
+always tries. ``TRIMTAB_KERNELS`` chooses:
 ``auto`` (the default), ``prebuilt`` (use built modules, never start a build) or ``jit``.
 """
 
@@ -63,6 +66,8 @@ def build_later() -> bool:
     one was started. Never raises: a build that cannot start costs only the next start's speed."""
     mode = os.environ.get(MODE_ENV, "auto").strip().lower()
     if mode != "auto" or not any(s.missing for s in _SETS):
+        return False
+    if any(s.missing and s.failed() for s in _SETS):  # it failed for these sources: say so once, in the log
         return False
     try:
         lock = _lock()

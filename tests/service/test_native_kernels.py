@@ -167,3 +167,30 @@ def test_each_function_keeps_its_own_options_and_a_changed_source_is_stale(tmp_p
     edited = KernelSet("probe", ("aot_probe_mod",))
     assert edited.key() != before
     assert not edited.is_native("ratio") and edited.missing
+
+
+def test_failed_build_is_remembered_and_not_restarted(tmp_path, monkeypatch):
+    """A build that fails leaves its reason beside the module and the automatic build is not started
+    again for the same sources; the set keeps serving numba's dispatchers."""
+    import service.kernels as sk
+    from models.native import KernelSet
+
+    (tmp_path / "aot_failing_mod.py").write_text(textwrap.dedent(OPTIONS), encoding="utf-8")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.setenv("TRIMTAB_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.setenv("TRIMTAB_KERNELS", "auto")
+    probe = KernelSet("failing", ("aot_failing_mod",))
+
+    def exercise():
+        raise RuntimeError("no compiler here")
+
+    with pytest.raises(RuntimeError):
+        probe.build(exercise)
+    assert probe.failed()
+    name, path, _ = probe.paths()
+    assert "no compiler here" in path.with_name(name + ".failed").read_text(encoding="utf-8")
+    assert not probe.is_native("ratio") and probe.missing
+    assert hasattr(probe.ratio, "py_func")
+    monkeypatch.setattr(sk, "_SETS", (probe,))
+    assert sk.build_later() is False
+    assert not (tmp_path / "cache" / "kernels" / "build.lock").exists()
