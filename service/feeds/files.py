@@ -48,6 +48,9 @@ _BLOCK = 1 << 20
 #: NDJSON blocks below this are parsed line by line (orjson and the validator, the same results):
 #: importing Arrow (about 0.1 s) costs more than it saves on a few hundred lines (a small feed, a feed's last block).
 _SMALL_BLOCK = 1 << 16
+#: The first NDJSON block of a feed: small enough to go line by line (a few milliseconds), so that the
+#: engine learns the first events while the next blocks are read and Arrow is loaded.
+_FIRST_BLOCK = 1 << 15
 _PARQUET_ROWS = 32_768
 _LINE = re.compile(r"^line (\d+)")
 
@@ -134,8 +137,10 @@ def _ndjson_blocks(src: _Source, max_line: int, block: int):
     line = 1
     skipping = None  # (line number, bytes so far) of an oversize line being skipped
     limit = 2 * max_line + block
+    size = min(block, _FIRST_BLOCK)  # a small first block: the first events are learned at once
     while True:
-        data = src.read(block)
+        data = src.read(size)
+        size = block
         if not data:
             break
         if skipping is not None:
