@@ -3,7 +3,8 @@
 Each measurement runs as its own process tree, timed from start to exit, with the CPU time (user +
 system) of the whole tree beside the wall time: on a shared machine the wall time also counts the
 waits for a core. numba's cache is pointed (``NUMBA_CACHE_DIR``) at a fresh empty folder for the
-cold runs, and the warm runs reuse the folder the cold run filled:
+cold runs, and the warm runs reuse the folder the cold run filled; the kernels built ahead of time
+(``service.kernels``) are left out (``TRIMTAB_KERNELS=jit``):
 
 * ``demo_cold`` / ``demo_warm``: ``trimtab demo --out DIR`` (both demo configs over the shipped
   103,680-event feed, with the report);
@@ -82,7 +83,11 @@ def _cpu() -> float:
 
 def _env(cache: Path) -> dict:
     path = os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")]))
-    return {**os.environ, "PYTHONPATH": path, "NUMBA_CACHE_DIR": str(cache)}
+    # numba's JIT only (TRIMTAB_KERNELS=jit): no kernels built ahead of time from the user's cache
+    # folder, and no background build after the cold run to blur the warm one (benchmarks/replay.py
+    # measures the ahead-of-time start)
+    return {**os.environ, "PYTHONPATH": path, "NUMBA_CACHE_DIR": str(cache), "TRIMTAB_KERNELS": "jit",
+            "TRIMTAB_CACHE_DIR": str(cache / "trimtab")}
 
 
 def timed(cmd: list[str], env: dict) -> tuple[float, float]:

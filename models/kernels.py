@@ -23,7 +23,8 @@ One event, in order: score with the serving iterate (the progressive prediction)
 learning event, take the gradient of the loss at the raw iterate, compute the step, shrink by the l2
 term, step, project, check that every new value is finite (else refuse and change nothing), and
 record the new raw iterate in the average. State lives in plain arrays so that a snapshot is a byte
-copy; the layout of the scalar and parameter arrays is given by the ``S_*`` and ``P_*`` indices.
+copy; the layout of the scalar and parameter arrays is given by the ``S_*`` and ``P_*`` indices
+(:mod:`models.layout`).
 """
 
 from __future__ import annotations
@@ -48,26 +49,12 @@ __all__ = [
     "score_window",
 ]
 
-# parameter array (float64), fixed for a model
-P_LOSS, P_DELTA, P_L2, P_CONS, P_RADIUS, P_LOWER, P_UPPER = 0, 1, 2, 3, 4, 5, 6
-P_RULE, P_BASE, P_HORIZON, P_R, P_GFIX, P_AVG, P_EXPR, P_INTERCEPT, P_NNUM, P_LAZY = 7, 8, 9, 10, 11, 12, 13, 14, 15, 16
-N_PARAMS = 17
-
-# scalar state array (float64), learned
-S_A, S_B, S_ACC, S_Z, S_SB, S_NV2, S_TSTEP, S_TAVG, S_NUPD, S_CEXP = 0, 1, 2, 3, 4, 5, 6, 7, 8, 9
-S_GSQ, S_GN, S_STEPSCALE, S_REFUSED, S_LASTETA, S_LASTG = 10, 11, 12, 13, 14, 15
-N_SCALARS = 16
-
-#: Rebase the lazy state when the scale ``a`` drops below this (rounding stays ~1e-10 relative).
-REBASE_BELOW = 1e-6
-#: Recompute ``||v||^2`` exactly every this many updates so that rounding cannot accumulate
-#: (a power of two: the test is a bit mask, a float modulo costs more than the rest of an update).
-NORM_REFRESH = 65536
-#: Divide the exponential-average accumulators down when the newest weight passes this.
-EXP_RENORM_ABOVE = 1e150
-
-# per-event outcome codes written by the kernels
-SCORED, LEARNED, REFUSED = 0, 1, 2
+from .layout import (  # noqa: F401 (the layout is part of this module's interface)
+    EXP_RENORM_ABOVE, LEARNED, N_PARAMS, N_SCALARS, NORM_REFRESH, P_AVG, P_BASE, P_CONS, P_DELTA, P_EXPR, P_GFIX,
+    P_HORIZON, P_INTERCEPT, P_L2, P_LAZY, P_LOSS, P_LOWER, P_NNUM, P_R, P_RADIUS, P_RULE, P_UPPER, REBASE_BELOW,
+    REFUSED, S_A, S_ACC, S_B, S_CEXP, S_GN, S_GSQ, S_LASTETA, S_LASTG, S_NUPD, S_NV2, S_REFUSED, S_SB, S_STEPSCALE,
+    S_TAVG, S_TSTEP, S_Z, SCORED,
+)
 
 # error_model="numpy": a division by zero gives inf/nan (caught by the finiteness checks) instead of
 # a Python exception, which spares a branch on every division in the hot loop
@@ -469,7 +456,7 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
     ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
     and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
     the smaller is at most ``absurd`` times the reference; and the usable rows' losses, in order, to
-    ``kept[:, :n_usable]``. The reference is the median averaged-iterate loss of a regular sample of
+    ``kept[:n_usable]`` (one row per event: raw, averaged). The reference is the median averaged-iterate loss of a regular sample of
     rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count (a partition finds the
     median). Returns ``(reference, n_usable)``."""
     code, delta = int(prm[P_LOSS]), prm[P_DELTA]
@@ -495,6 +482,6 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
         a, b = losses[0, i], losses[1, i]
         usable[i] = abs(a) <= OVERFLOW_LOSS and abs(b) <= OVERFLOW_LOSS and min(a, b) <= limit
         if usable[i]:
-            kept[0, n_usable], kept[1, n_usable] = a, b
+            kept[n_usable, 0], kept[n_usable, 1] = a, b
             n_usable += 1
     return reference, n_usable

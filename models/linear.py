@@ -8,8 +8,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import kernels as K
-from . import readouts as R
+from . import layout as K
+from .native import MODEL as C
 from .certificate import certificate
 from .errors import InvalidInput, NonFiniteInput, SnapshotError
 from .features import FeatureMapper, Rows
@@ -170,7 +170,7 @@ class LinearModel:
     def score_rows_both(self, rows: Rows) -> np.ndarray:
         """Margins of ``rows`` with both iterates, in one pass: row 0 raw, row 1 averaged."""
         out = np.zeros((2, len(rows)))
-        K.score_rows_both(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
+        C.score_rows_both(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
                           rows.indptr, rows.indices, rows.values, out)
         return out
 
@@ -180,12 +180,13 @@ class LinearModel:
         (``kernels.score_window``): ``(losses, usable, kept, reference)``, the losses of both iterates
         (row 0 raw, row 1 averaged), which rows are usable, their losses, and the reference median."""
         n = len(rows)
-        # ``kept`` column-major, as numpy's ``losses[:, usable]`` is: its sums then match that copy's bit for bit
-        losses, usable, kept = np.empty((2, n)), np.empty(n, dtype=np.bool_), np.empty((2, n), order="F")
-        reference, n_usable = K.score_window(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
+        # ``kept`` one row per event, so that ``kept[:k].T`` is laid out as numpy's ``losses[:, usable]``
+        # copy is (column-major): its sums then match that copy's bit for bit
+        losses, usable, kept = np.empty((2, n)), np.empty(n, dtype=np.bool_), np.empty((n, 2))
+        reference, n_usable = C.score_window(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
                                              rows.indptr, rows.indices, rows.values, y, n_ref, sample_max,
                                              absurd, losses, usable, kept)
-        return losses, usable, losses if n_usable == n else kept[:, :n_usable], reference
+        return losses, usable, losses if n_usable == n else kept[:n_usable].T, reference
 
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""
@@ -256,7 +257,7 @@ class LinearModel:
             self._xs = np.zeros(2 * width)
         if self._lazy and width > self._cand.shape[0]:
             self._cand = np.zeros(2 * width)
-        fn = K.lazy_process if self._lazy else K.dense_process
+        fn = C.lazy_process if self._lazy else C.dense_process
         return fn(self._st, self._sc, self._prm, self._mean, self._std, ip, rows.indices,
                   rows.values, y, mode, serve_code, out.pred, out.loss, out.code, start, stop, max_learn,
                   self._xs, self._cand)
@@ -284,12 +285,12 @@ class LinearModel:
     def weights(self, iterate: str = "averaged") -> tuple[np.ndarray, float]:
         """Coefficients in the model's (scaled) coordinates and the intercept, as a copy."""
         out = np.zeros(self.dim)
-        b = R.materialize(self._lazy, self._st, self._sc, _iterate(iterate), out)
+        b = C.materialize(self._lazy, self._st, self._sc, _iterate(iterate), out)
         return out, float(b)
 
     def distance(self) -> float:
         """Euclidean distance between the raw and the averaged iterate (intercept included)."""
-        return float(R.iterate_distance(self._lazy, self._st, self._sc))
+        return float(C.iterate_distance(self._lazy, self._st, self._sc))
 
     def raw_norm(self) -> float:
         """``||(w_raw, b_raw)||`` without a pass over the coefficients where the lazy state keeps it
@@ -314,7 +315,7 @@ class LinearModel:
         sc = self._sc
         if sc[K.S_Z] > 0.0:
             if self._lazy:
-                K.lazy_rebase(self._st, sc)
+                C.lazy_rebase(self._st, sc)
             w, b = self.weights("averaged")
             self._st[:, 0] = w
             sc[K.S_B] = b
@@ -330,7 +331,7 @@ class LinearModel:
         """
         sc = self._sc
         if self._lazy:
-            K.lazy_rebase(self._st, sc)
+            C.lazy_rebase(self._st, sc)
         self._st[:, 1] = 0.0
         for s in (K.S_ACC, K.S_Z, K.S_SB, K.S_TAVG, K.S_TSTEP, K.S_GSQ, K.S_GN):
             sc[s] = 0.0

@@ -103,8 +103,8 @@ class ModelSpec:
         return len(self.numeric) + ((1 << self.hash_bits) if self.categorical else 0)
 
     def kernel_params(self) -> np.ndarray:
-        """The parameter array the compiled kernels read (layout in ``kernels.P_*``)."""
-        from . import kernels as K  # here, not at the top: the settings alone do not need numba
+        """The parameter array the compiled kernels read (layout in ``layout.P_*``)."""
+        from . import layout as K
 
         p = np.zeros(K.N_PARAMS)
         full_dim = self.dim() + (1 if self.fit_intercept else 0)

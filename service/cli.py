@@ -135,7 +135,16 @@ def main(argv: list[str] | None = None) -> int:
     except OSError as exc:
         print(f"trimtab: error: {exc}", file=sys.stderr)
         return 1
+    finally:
+        _build_kernels_later()
     return 1
+
+
+def _build_kernels_later() -> None:
+    """A command that ran its kernels on numba's JIT because the ahead-of-time modules were missing
+    starts their build in the background, for the next command (:mod:`service.kernels`)."""
+    if "service.kernels" in sys.modules:
+        sys.modules["service.kernels"].build_later()
 
 
 if __name__ == "__main__":

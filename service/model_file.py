@@ -11,7 +11,10 @@ event by hand with numpy; a test runs that example and compares it with the serv
 
 from __future__ import annotations
 
-from importlib.metadata import PackageNotFoundError, version
+import functools
+import glob
+import os
+import sys
 
 from service.config import Config
 from service.storage.journal import fingerprint
@@ -30,11 +33,22 @@ CAUTION = ("Decision support only. Where food or medicine temperatures, credit o
            "regulated instruments and procedures and follow local regulations and licensed practice.")
 
 
+@functools.cache
 def _trimtab_version() -> str:
-    try:
-        return version("trimtab")
-    except PackageNotFoundError:
-        return "unknown (not installed as a package)"
+    """The installed trimtab's version, from the first ``trimtab-*.dist-info`` on ``sys.path`` (the
+    one :func:`importlib.metadata.version` reads, without importing that module: 25 ms of a start)."""
+    for entry in sys.path:
+        for meta in glob.glob(os.path.join(glob.escape(entry or "."), "trimtab-*.dist-info", "METADATA")):
+            try:
+                with open(meta, encoding="utf-8") as f:
+                    for line in f:
+                        if line.startswith("Version:"):
+                            return line.split(":", 1)[1].strip()
+                        if not line.strip():
+                            break
+            except OSError:
+                continue
+    return "unknown (not installed as a package)"
 
 
 def model_file(engine, config: Config) -> dict:

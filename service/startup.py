@@ -18,6 +18,7 @@ from __future__ import annotations
 import time
 
 from service.storage.recovery import RecoveryRefused, check_storage, load_state, replay_rows
+from service.kernels import build_later
 from service.warmup import is_cached, kernels_of, warm_parallel
 
 __all__ = ["REPLAY_ROWS", "recover"]
@@ -38,6 +39,7 @@ async def recover(ing) -> tuple[int, int, int]:
     ing.recovery["state"] = "loading" if is_cached(("learn", "read"), kernels) else "compiling"
     await ing.learn(warm_parallel, [["learn"], ["read"]], kernels)
     ing.recovery["compile_seconds"] = round(time.perf_counter() - t0, 3)
+    build_later()  # the ahead-of-time kernels for the next start, if they were missing
     ing.recovery["state"] = "recovering"
     ing.incidents.extend(await ing.db(ing.journal.incidents))
     await check_storage(ing)

@@ -92,30 +92,33 @@ def _warm_feeds() -> None:
     seen.add(keys, np.ones(len(keys), dtype=np.bool_))  # past half of its 16 slots: the table grows once
 
 
-def _dispatchers(part: str, kernels) -> list:
-    from models import kernels as K
-    from models import readouts as R
+def _functions(part: str, kernels) -> list:
+    """``(kernel set, name)`` of the compiled functions of ``part``."""
+    from models.native import MODEL
+
+    from service.kernels import FEEDS
 
     if part == "learn":
-        return [K.lazy_process if k == "lazy" else K.dense_process for k in kernels]
+        return [(MODEL, "lazy_process" if k == "lazy" else "dense_process") for k in kernels]
     if part == "read":
-        return [K.score_rows_both, K.score_window, R.materialize, R.iterate_distance]
-    from service import idhash
-    from service.feeds import ndjson_columns as nc
-
-    return [nc._scan, nc._gather, idhash._hash_column, idhash._insert, idhash._rehash]
+        return [(MODEL, "score_rows_both"), (MODEL, "score_window"), (MODEL, "materialize"), (MODEL, "iterate_distance")]
+    return [(FEEDS, n) for n in ("scan_bytes", "gather_lines", "hash_column", "insert_keys", "rehash")]
 
 
 def is_cached(parts, kernels=("lazy",)) -> bool:
-    """Whether numba's cache holds compiled code for every function of ``parts``.
+    """Whether every function of ``parts`` is ready without compiling: built ahead of time
+    (:mod:`models.native`), or in numba's cache.
 
-    It reads numba's cache index (an internal of numba's caching, so any surprise counts as "not
-    cached"): an index that exists and matches the source file's stamp. This only chooses the
-    wording of progress and whether helper processes are worth starting; a wrong answer costs
-    time, never correctness.
+    For numba's cache it reads the cache index (an internal of numba's caching, so any surprise
+    counts as "not cached"): an index that exists and matches the source file's stamp. This only
+    chooses the wording of progress and whether helper processes are worth starting; a wrong answer
+    costs time, never correctness.
     """
+    functions = [f for p in parts for f in _functions(p, kernels)]
+    if all(s.is_native(name) for s, name in functions):
+        return True
     try:
-        return all(bool(d._cache._cache_file._load_index()) for p in parts for d in _dispatchers(p, kernels))
+        return all(bool(s.jit(name)._cache._cache_file._load_index()) for s, name in functions)
     except Exception:
         return False
 

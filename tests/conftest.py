@@ -10,3 +10,6 @@ from pathlib import Path
 
 _ROOT = str(Path(__file__).resolve().parents[1])
 os.environ["PYTHONPATH"] = os.pathsep.join([_ROOT, *filter(None, [os.environ.get("PYTHONPATH")])])
+# numba's JIT for every test unless a test asks otherwise: tests must not depend on (or start) the
+# ahead-of-time build in the user's cache folder; tests/models/test_native.py builds its own
+os.environ.setdefault("TRIMTAB_KERNELS", "jit")

@@ -45,6 +45,12 @@ FORMATS = ("ndjson", "csv", "parquet")
 _SUFFIX = {".ndjson": "ndjson", ".jsonl": "ndjson", ".json": "ndjson", ".csv": "csv", ".parquet": "parquet",
            ".pq": "parquet"}
 _BLOCK = 1 << 20
+#: NDJSON blocks below this are parsed line by line (orjson and the validator, the same results):
+#: importing Arrow (about 0.1 s) costs more than it saves on a few hundred lines (a small feed, a feed's last block).
+_SMALL_BLOCK = 1 << 16
+#: The first NDJSON block of a feed: small enough to go line by line (a few milliseconds), so that the
+#: engine learns the first events while the next blocks are read and Arrow is loaded.
+_FIRST_BLOCK = 1 << 15
 _PARQUET_ROWS = 32_768
 _LINE = re.compile(r"^line (\d+)")
 
@@ -131,8 +137,10 @@ def _ndjson_blocks(src: _Source, max_line: int, block: int):
     line = 1
     skipping = None  # (line number, bytes so far) of an oversize line being skipped
     limit = 2 * max_line + block
+    size = min(block, _FIRST_BLOCK)  # a small first block: the first events are learned at once
     while True:
-        data = src.read(block)
+        data = src.read(size)
+        size = block
         if not data:
             break
         if skipping is not None:
@@ -186,12 +194,20 @@ def _read_ndjson(path: Path, config, columnar: bool, workers: int, block: int) -
     """Blocks are read here in order and parsed by ``workers`` threads (Arrow and the compiled
     kernels release the GIL); results come back in order."""
     local = threading.local()
-    use_arrow = columnar and available()
+    arrow = [columnar]  # Arrow's reader for large blocks, while it is installed
+    small = min(_SMALL_BLOCK, block // 4)
 
     def work(data, first, skipped, progress):
         if not hasattr(local, "prep"):
-            local.prep = _preparer(config)
-            local.fast = ArrowNdjson(local.prep) if use_arrow else None
+            local.prep, local.fast = _preparer(config), None
+        if not arrow[0] or len(data) < small:
+            return _ndjson_chunk(local.prep, None, data, first, skipped, progress)
+        if local.fast is None:
+            arrow[0] = available()
+            if not arrow[0]:
+                return _ndjson_chunk(local.prep, None, data, first, skipped, progress)
+            _lean_arrow()
+            local.fast = ArrowNdjson(local.prep)
         return _ndjson_chunk(local.prep, local.fast, data, first, skipped, progress)
 
     max_line = config.service.max_line_bytes
@@ -204,6 +220,16 @@ def _read_ndjson(path: Path, config, columnar: bool, workers: int, block: int) -
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()
+
+
+def _lean_arrow() -> None:
+    """Give Arrow the system allocator in a process that reads feeds with it: its default pool keeps
+    ~40 MB of freed chunk buffers, and a replay's memory should stay flat however long the feed.
+    Called just after Arrow is first imported here, before it allocates for a feed."""
+    import pyarrow as pa
+
+    if pa.default_memory_pool().backend_name != "system":
+        pa.set_memory_pool(pa.system_memory_pool())
 
 
 def _preparer(config):
@@ -286,6 +312,7 @@ def _read_parquet(path: Path, config, workers: int, rows: int) -> Iterator[Chunk
     except ImportError:
         raise TrimtabError("reading Parquet needs pyarrow; install it with: pip install 'trimtab[parquet]'",
                            where=str(path)) from None
+    _lean_arrow()
     local = threading.local()
 
     def work(table, done, progress):

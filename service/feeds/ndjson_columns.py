@@ -29,7 +29,6 @@ from __future__ import annotations
 
 import re
 
-from models.jit import numba
 import numpy as np
 
 from models import InvalidInput
@@ -37,16 +36,15 @@ from models.features import categorical_text
 
 from service.feeds.columns import Prepared, from_arrow, holdout_share, take_prepared, to_prepared
 from service.events import Rejection
+from service.feeds.scan_codes import BOOLEAN, CHECK, NONE, NUMBER, PLAIN, STRING
 from service.idhash import hash_strings
+from service.kernels import FEEDS
 
 __all__ = ["ArrowNdjson", "available", "prepare_events", "scan_lines"]
 
 _LEAF = 16  # lines below which a failing piece goes to the validator line by line
-_MAX_OPEN = 64
-_BLANK, _PLAIN, _CHECK = 0, 1, 2
 _ROW = re.compile(r"in row (\d+)")
 _CHANGED = re.compile(r"Column\(/features/([^)]*)\) changed from")
-_NONE, _STRING, _NUMBER, _BOOLEAN = 0, 1, 2, 3  # the JSON type of a value (none: null or absent)
 
 
 def available() -> bool:
@@ -56,103 +54,6 @@ def available() -> bool:
     except ImportError:
         return False
     return True
-
-
-_MAX_DIGITS = 15  # digits a double holds exactly, whatever parser reads them
-
-
-# inlined where it is called: as a compiled function of its own, numba compiled it twice (once for
-# the constant 0 that ``i`` starts from, once for an int64)
-@numba.njit(cache=True, nogil=True, inline="always")
-def _utf8_len(buf, i, n):
-    """Length of the strict UTF-8 sequence at ``buf[i]`` (a byte >= 0x80), 0 if it is invalid."""
-    c = buf[i]
-    if 0xC2 <= c <= 0xDF:
-        need, lo, hi = 1, 0x80, 0xBF
-    elif c == 0xE0:
-        need, lo, hi = 2, 0xA0, 0xBF
-    elif 0xE1 <= c <= 0xEC or 0xEE <= c <= 0xEF:
-        need, lo, hi = 2, 0x80, 0xBF
-    elif c == 0xED:  # no UTF-16 surrogates
-        need, lo, hi = 2, 0x80, 0x9F
-    elif c == 0xF0:
-        need, lo, hi = 3, 0x90, 0xBF
-    elif 0xF1 <= c <= 0xF3:
-        need, lo, hi = 3, 0x80, 0xBF
-    elif c == 0xF4:
-        need, lo, hi = 3, 0x80, 0x8F
-    else:
-        return 0
-    if i + need > n - 1:
-        return 0
-    if not lo <= buf[i + 1] <= hi:
-        return 0
-    for k in range(2, need + 1):
-        if not 0x80 <= buf[i + k] <= 0xBF:
-            return 0
-    return need + 1
-
-
-@numba.njit(cache=True, nogil=True)
-def _scan(buf, max_line, starts, ends, flags, escaped):
-    n = buf.shape[0]
-    k = 0
-    i = 0
-    while i <= n:
-        lo = i
-        first = -1
-        last = -1
-        opens = 0
-        odd = False
-        blank = True
-        backslash = False
-        digits = 0
-        while i < n and buf[i] != 10:
-            c = buf[i]
-            # a run of over 15 digits may be an integer Arrow reads as a double (orjson keeps it
-            # exact): the validator decides such lines
-            if 48 <= c <= 57:
-                digits += 1
-                if digits > _MAX_DIGITS:
-                    odd = True
-            else:
-                digits = 0
-            if not (c == 32 or c == 9 or c == 13):
-                if first < 0:
-                    first = c
-                last = c
-                if c != 11 and c != 12:
-                    blank = False
-            if c == 123 or c == 91:
-                opens += 1
-            elif c == 92:
-                backslash = True
-            elif c == 78 and i + 2 < n and buf[i + 1] == 97 and buf[i + 2] == 78:  # NaN
-                odd = True
-            elif c == 73 and i + 7 < n and buf[i + 1] == 110 and buf[i + 2] == 102:  # Infinity
-                odd = True
-            elif c >= 128:
-                step = _utf8_len(buf, i, n)
-                if step == 0:
-                    odd = True
-                    step = 1
-                i += step
-                continue
-            i += 1
-        if i == n and lo == n:
-            break
-        starts[k] = lo
-        ends[k] = i
-        escaped[k] = backslash
-        if blank and (first < 0 or first == 11 or first == 12):
-            flags[k] = 0
-        elif odd or first != 123 or last != 125 or opens > _MAX_OPEN or i - lo > max_line:
-            flags[k] = 2
-        else:
-            flags[k] = 1
-        k += 1
-        i += 1
-    return k
 
 
 def scan_lines(buf: bytes, max_line: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -167,73 +68,27 @@ def scan_lines(buf: bytes, max_line: int) -> tuple[np.ndarray, np.ndarray, np.nd
     ends = np.empty(cap, np.int64)
     flags = np.empty(cap, np.int8)
     escaped = np.empty(cap, np.bool_)
-    k = _scan(arr, max_line, starts, ends, flags, escaped)
+    k = FEEDS.scan_bytes(arr, max_line, starts, ends, flags, escaped)
     return starts[:k], ends[:k], flags[:k], escaped[:k]
-
-
-@numba.njit(cache=True, nogil=True)
-def _gather(buf, starts, ends, sel, out):
-    pos = 0
-    for k in sel:
-        for i in range(starts[k], ends[k]):
-            out[pos] = buf[i]
-            pos += 1
-        out[pos] = 10
-        pos += 1
-    return pos
 
 
 def _lines_bytes(buf: bytes, starts, ends, sel) -> bytes:
     """The lines ``sel`` of ``buf``, each followed by a newline."""
     out = np.empty(int(np.sum(ends[sel] - starts[sel])) + len(sel), dtype=np.uint8)
-    _gather(np.frombuffer(buf, dtype=np.uint8), starts, ends, sel, out)
+    FEEDS.gather_lines(np.frombuffer(buf, dtype=np.uint8), starts, ends, sel, out)
     return out.tobytes()
-
-
-@numba.njit(cache=True, nogil=True)
-def _value_kinds(buf, starts, ends, sel, key, out):
-    """For each line ``sel[j]``: the JSON type of the value after the first ``key`` followed by ``:``."""
-    m = key.shape[0]
-    for j in range(sel.shape[0]):
-        hi = ends[sel[j]]
-        i = starts[sel[j]]
-        kind = _NONE
-        while i + m <= hi:
-            if buf[i] == key[0]:
-                t = 1
-                while t < m and buf[i + t] == key[t]:
-                    t += 1
-                if t == m:
-                    at = i + m
-                    while at < hi and (buf[at] == 32 or buf[at] == 9 or buf[at] == 13):
-                        at += 1
-                    if at < hi and buf[at] == 58:  # a key, not a string value
-                        at += 1
-                        while at < hi and (buf[at] == 32 or buf[at] == 9 or buf[at] == 13):
-                            at += 1
-                        if at < hi:
-                            c = buf[at]
-                            if c == 34:  # '"'
-                                kind = _STRING
-                            elif c == 45 or 48 <= c <= 57:  # '-' or a digit
-                                kind = _NUMBER
-                            elif c == 116 or c == 102:  # 't' or 'f'
-                                kind = _BOOLEAN
-                        break
-            i += 1
-        out[j] = kind
 
 
 def _split_by_kind(buf: bytes, starts, ends, sel: np.ndarray, name: str) -> list[np.ndarray]:
     """``sel`` split by the JSON type of feature ``name`` in each line (lines without a value join
     the first part); a single part when the scan finds fewer than two types."""
     kinds = np.empty(len(sel), np.int8)
-    _value_kinds(np.frombuffer(buf, dtype=np.uint8), starts, ends, sel,
+    FEEDS.value_kinds(np.frombuffer(buf, dtype=np.uint8), starts, ends, sel,
                  np.frombuffer(b'"' + name.encode() + b'"', dtype=np.uint8), kinds)
-    parts = [sel[kinds == kind] for kind in (_STRING, _NUMBER, _BOOLEAN) if np.any(kinds == kind)]
+    parts = [sel[kinds == kind] for kind in (STRING, NUMBER, BOOLEAN) if np.any(kinds == kind)]
     if len(parts) < 2:
         return [sel]
-    parts[0] = np.sort(np.concatenate([parts[0], sel[kinds == _NONE]]))
+    parts[0] = np.sort(np.concatenate([parts[0], sel[kinds == NONE]]))
     return parts
 
 
@@ -281,8 +136,8 @@ class ArrowNdjson:
         starts, ends, flags, escaped = scan_lines(buf, self.validator.max_line)
         lines = first_line + np.arange(len(starts), dtype=np.int64)
         parts: list[Prepared] = []
-        slow: list[int] = list(np.flatnonzero(flags == _CHECK))
-        plain = np.flatnonzero(flags == _PLAIN)
+        slow: list[int] = list(np.flatnonzero(flags == CHECK))
+        plain = np.flatnonzero(flags == PLAIN)
         if self._cool > 0:
             self._cool -= 1
             slow += list(plain)

@@ -52,7 +52,7 @@ def _feed(out: Path, events: int | None) -> tuple[Path, dict | None]:
 def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines") -> dict:
     """Replay the demo feed under both configs and write the report; return what it found."""
     from service.config import load_config
-    from service.replay.runner import _lean_arrow, run_all
+    from service.replay.runner import run_all
 
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -60,7 +60,6 @@ def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines")
     feed, _ = _feed(out, events)
     configs = [load_config(p) for p in config_paths]
     start = time.perf_counter()
-    _lean_arrow()
     from service.replay.report import Painter
 
     with Painter() as painter:  # imports matplotlib in its own process while the kernels compile and the runs go

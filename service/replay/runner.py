@@ -25,13 +25,11 @@ from __future__ import annotations
 import contextlib
 import json
 import math
-import multiprocessing as mp
 import os
 import queue
 import re
 import threading
 import time
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -274,23 +272,14 @@ def _init_worker(shared) -> None:
     _SHARED = shared
 
 
-def _lean_arrow() -> None:
-    """Give Arrow the system allocator in a replay process: its default pool keeps ~40 MB of freed
-    chunk buffers, and a replay's memory should stay flat however long the feed."""
-    try:
-        import pyarrow as pa
-    except ImportError:
-        return
-    pa.set_memory_pool(pa.system_memory_pool())
-
-
 def _worker(feeds, config: Config, slot: int, columnar: bool, workers: int, config_path: str) -> dict:
-    _lean_arrow()
     return run_replay(feeds, config, columnar=columnar, workers=workers, counts=_Counts(_SHARED, slot),
                       config_path=config_path)
 
 
 def _context():
+    import multiprocessing as mp  # here: a run with one config never starts a process (15 ms of a start)
+
     method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
     ctx = mp.get_context(method)
     if method == "forkserver":
@@ -327,6 +316,8 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
             for i, (cfg, path) in enumerate(zip(configs, paths)):
                 results.append(run_replay(feeds, cfg, columnar=columnar, counts=_Counts(store, i), config_path=path))
         return results
+    from concurrent.futures import ProcessPoolExecutor
+
     ctx = _context()
     shared = ctx.Array("d", _Counts.WIDTH * len(configs), lock=False)
     workers = max(1, (os.cpu_count() or 1) // jobs)
@@ -407,7 +398,6 @@ def replay_main(args) -> int:
             from service.replay.report import Painter
 
             painter = stack.enter_context(Painter())  # loads matplotlib while the runs go
-        _lean_arrow()
         results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
                           columnar=not getattr(args, "exact_parse", False))
         written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)

@@ -120,3 +120,18 @@ def test_threads_loading_a_detector_at_once_all_get_river_s_class(name, monkeypa
     assert all(isinstance(c, type) and c.__name__ == name for c in got), got
     assert len({id(c) for c in got}) == 1  # one module, loaded once
     assert issubclass(got[0], drift.PageHinkley.__mro__[1])  # river's DriftDetector base
+
+
+@pytest.mark.parametrize("kind", ChangeDetector.KINDS)
+def test_unfed_detector_saved_and_restored_fires_as_river(kind):
+    """A detector saved before its first value (river's class not built yet) and restored fires at
+    the indices where ``river.drift``'s class fires on the same stream."""
+    stream = _steps(3)
+    saved = ChangeDetector(kind)
+    fields, values = saved.state()
+    restored = ChangeDetector(kind)
+    restored.load_state(json.loads(json.dumps(fields)), values)
+    reference = drift.PageHinkley() if kind == "page_hinkley" else drift.ADWIN()
+    expected = _fires(reference, stream)
+    assert expected, "the stream should hold changes"
+    assert [i for i, x in enumerate(stream) if restored.update(x)] == expected

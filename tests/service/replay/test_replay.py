@@ -345,3 +345,17 @@ def test_long_numbers_take_the_validators_reading(value):
     events, ref_rej, where = parse_ndjson(data, exact.validator)
     assert [r for _, r in rej] == ref_rej
     _same_batch(got, prepare_events(exact, events, where))
+
+
+def test_model_file_version_is_the_installed_distribution():
+    """The version ``model.json`` carries is what the standard library's ``importlib.metadata``
+    reads for the installed distribution (found without importing it)."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    from service.model_file import _trimtab_version
+
+    try:
+        expected = version("trimtab")
+    except PackageNotFoundError:
+        expected = "unknown (not installed as a package)"
+    assert _trimtab_version() == expected
