@@ -267,7 +267,7 @@ class _ScoreConn(asyncio.Protocol):
         self.client = client
         self.transport = None
         self.buf = b""
-        self.due = 0.0
+        self.due: float | None = None  # scheduled send time of the request in flight (None: none)
         self.need = -1  # bytes of the whole answer once its head is in; -1: head not complete yet
 
     def connection_made(self, transport) -> None:
@@ -278,6 +278,9 @@ class _ScoreConn(asyncio.Protocol):
         self.transport.write(self.client.request)
 
     def data_received(self, data: bytes) -> None:
+        if self.due is None:  # nothing asked: the server closing a connection left unused (its 408)
+            self.transport.close()
+            return
         buf = self.buf = self.buf + data
         if self.need < 0:
             end = buf.find(b"\r\n\r\n")
@@ -288,7 +291,8 @@ class _ScoreConn(asyncio.Protocol):
             self.ok = buf[9:12] == b"200"
         if len(buf) >= self.need:
             self.buf, self.need = buf[self.need:], -1
-            self.client.answered(self, self.ok)
+            due, self.due = self.due, None
+            self.client.answered(self, due, self.ok)
 
     def connection_lost(self, exc) -> None:
         self.client.lost(self)
@@ -341,8 +345,8 @@ class _LeanScorer:
         self.free.append(await self._open())
         self.fire(due)
 
-    def answered(self, conn: _ScoreConn, ok: bool) -> None:
-        self.lat.append(time.perf_counter() - conn.due)
+    def answered(self, conn: _ScoreConn, due: float, ok: bool) -> None:
+        self.lat.append(time.perf_counter() - due)
         self.in_flight -= 1
         if not ok:
             self.errors += 1
@@ -535,7 +539,8 @@ def _spread(values: list[float]) -> dict:
     """Median, lowest and highest of repeated figures (a noisy machine: one run is one draw)."""
     v = sorted(values)
     mid = v[len(v) // 2] if len(v) % 2 else (v[len(v) // 2 - 1] + v[len(v) // 2]) / 2
-    return {"median": round(mid, 2), "min": round(v[0], 2), "max": round(v[-1], 2), "runs": [round(x, 2) for x in values]}
+    return {"median": round(mid, 2), "min": round(v[0], 2), "max": round(v[-1], 2),
+            "runs": [round(x, 2) for x in values]}
 
 
 def _under_ingest(url: str, secs: float, tag: str, rss: PeakRSS) -> dict:
@@ -560,8 +565,8 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
     ingest rate meanwhile, the load generators' own CPU and GC pauses, publish-to-serve, peak RSS.
 
     ``repeat``: score phases under ingest per mode, each with a fresh producer (the figures under
-    ingest are their medians, the spread is reported); ``policies``: ``service.learner_policy`` values measured as extra modes
-    (``scorers_<policy>``) beside the default one, in the same run.
+    ingest are their medians, the spread is reported); ``policies``: ``service.learner_policy``
+    values measured as extra modes (``scorers_<policy>``) beside the default one, in the same run.
     """
     res: dict = {}
     modes = [("single", 0, None), ("scorers", "auto", None)] + [(f"scorers_{p}", "auto", p) for p in policies]
@@ -589,7 +594,8 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
         r = res[mode] = {
             "score_p99_ms_idle": round(idle["p99_ms"], 2),
             "score_p99_ms_under_ingest": _spread(p99s)["median"],
-            "score_p50_ms_under_ingest": round(busy["p50_ms"], 2), "score_max_ms_under_ingest": round(busy["max_ms"], 2),
+            "score_p50_ms_under_ingest": round(busy["p50_ms"], 2),
+            "score_max_ms_under_ingest": round(busy["max_ms"], 2),
             "score_errors": idle["errors"] + sum(b["errors"] for b in phases),
             "ingest_events_per_s": round(_spread(rates)["median"]),
             "score_client": {k: busy[k] for k in busy if k.startswith("client_") or k == "most_in_flight"},

@@ -13,9 +13,9 @@ learner holds. A scorer exits when:
 :class:`ScorerFleet` watches its scorers from one thread and starts a replacement for one that
 exits while the service runs (after 0.2 s, doubling up to 5 s while replacements keep dying within
 2 s). That thread keeps the scheduling priority the learner started with; the learner then lowers
-its own threads' (:func:`lower_learner_priority`: a higher nice value and, on Linux, the
-scheduling policy ``service.learner_policy`` names), so that replacements, which inherit the priority of the thread that starts
-them, still run ahead of the learner's work.
+its own threads' (:func:`lower_learner_priority`: a higher nice value and, on Linux, the scheduling
+policy ``service.learner_policy`` names), so that replacements, which inherit the priority of the
+thread that starts them, still run ahead of the learner's work.
 """
 
 from __future__ import annotations

@@ -11,6 +11,7 @@ import json
 import os
 import subprocess
 import sys
+from pathlib import Path
 
 import pytest
 
@@ -18,6 +19,7 @@ from tests.service.publish.scorerkit import scorer_pids, start_serve, wait_for
 
 pytestmark = pytest.mark.skipif(not hasattr(os, "SCHED_IDLE"), reason="Linux scheduling policies")
 
+ROOT = Path(__file__).resolve().parents[3]
 POLICY = {"batch": "SCHED_BATCH", "idle": "SCHED_IDLE", "normal": "SCHED_OTHER"}
 _NAMES = {getattr(os, name): name for name in ("SCHED_OTHER", "SCHED_BATCH", "SCHED_IDLE")}
 
@@ -51,7 +53,7 @@ def test_each_policy_lowers_every_thread_but_the_kept_one(policy):
     """Threads running when it is called and threads they start later: the policy and nice +5; the
     kept thread stays as it was."""
     proc = subprocess.Popen([sys.executable, "-c", _CHILD, policy], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                            text=True, cwd=os.getcwd(), env={**os.environ, "PYTHONPATH": os.getcwd()})
+                            text=True, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)})
     try:
         ids = json.loads(proc.stdout.readline())
         base = os.getpriority(os.PRIO_PROCESS, 0)
@@ -65,8 +67,8 @@ def test_each_policy_lowers_every_thread_but_the_kept_one(policy):
 
 def test_serve_runs_its_learner_under_the_configured_policy(tmp_path):
     """``trimtab serve`` with ``learner_policy = "idle"``: every learner thread but the scorers'
-    watcher is SCHED_IDLE at nice +5 (its worker threads +10, always 5 below the loop); the scorer process is at the default policy and priority,
-    and the log says what was done."""
+    watcher is SCHED_IDLE at nice +5 (its worker threads +10, always 5 below the loop); the scorer
+    process is at the default policy and priority, and the log says what was done."""
     _, server = start_serve(tmp_path, scorers=1, learner_policy="idle")
     try:
         scorer = wait_for(lambda: len(p := scorer_pids(server)) == 1 and p[0])
