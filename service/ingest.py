@@ -55,14 +55,10 @@ log = logging.getLogger("trimtab.service")
 
 def background_thread() -> None:
     """Run this worker thread at a lower OS priority than the event loop's thread (Linux: a nice
-    value per thread, 5 above the one it inherited from the loop), so that on a busy machine the
-    loop, which answers scores, is scheduled first; with scorer processes the learner's loop is
-    itself lowered first (:func:`service.http.fleet.lower_learner_priority`), and its workers stay
-    5 below it whenever they start."""
+    value per thread), so that on a busy machine the loop, which answers scores, is scheduled first."""
     if hasattr(os, "setpriority"):
-        tid = threading.get_native_id()
         with suppress(OSError):  # not permitted or not supported: run at the normal priority
-            os.setpriority(os.PRIO_PROCESS, tid, min(19, os.getpriority(os.PRIO_PROCESS, tid) + 5))
+            os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 5)
 
 
 class Receipt:

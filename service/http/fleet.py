@@ -52,9 +52,10 @@ def lower_learner_priority(policy: str, keep: tuple[int, ...] = ()) -> str:
     """Schedule the learner's threads behind the scorers; return what was done (for the log).
 
     Every thread of this process but those in ``keep`` (native thread ids: the fleet's watcher,
-    whose children must start at the scorers' priority) is lowered by :data:`LEARNER_NICE` and put
-    under ``policy`` (``service.learner_policy``, Linux); threads started later inherit both from
-    the thread that starts them. ``"batch"`` (``SCHED_BATCH``): the learner's threads never preempt
+    whose children must start at the scorers' priority) is lowered to :data:`LEARNER_NICE` above the
+    calling thread's nice value (a worker already that low stays so: the learner's threads end up
+    level, whenever they started) and put under ``policy`` (``service.learner_policy``, Linux);
+    threads started later inherit both from the thread that starts them. ``"batch"`` (``SCHED_BATCH``): the learner's threads never preempt
     a scorer that wakes up with a request, and take their turns in longer slices; ``"idle"``
     (``SCHED_IDLE``): they run only on a CPU nothing else wants (ingest stalls on a saturated
     machine); ``"normal"``: the nice value alone."""
@@ -62,12 +63,14 @@ def lower_learner_priority(policy: str, keep: tuple[int, ...] = ()) -> str:
     tids = [int(t) for t in os.listdir("/proc/self/task")] if os.path.isdir("/proc/self/task") \
         else [threading.get_native_id()]
     done = f"nice +{LEARNER_NICE}"
+    here = threading.get_native_id()
+    lowered = min(19, os.getpriority(os.PRIO_PROCESS, here) + LEARNER_NICE) if hasattr(os, "getpriority") else 0
     for tid in tids:
         if tid in keep:
             continue
         if hasattr(os, "setpriority"):
             with suppress(OSError):
-                os.setpriority(os.PRIO_PROCESS, tid, min(19, os.getpriority(os.PRIO_PROCESS, tid) + LEARNER_NICE))
+                os.setpriority(os.PRIO_PROCESS, tid, max(lowered, os.getpriority(os.PRIO_PROCESS, tid)))
         if kind is not None:
             try:
                 os.sched_setscheduler(tid, kind, os.sched_param(0))
