@@ -22,8 +22,13 @@ Prints ratios against baselines measured in the same run; the last line is one J
   client on aiohttp's, for comparison), the server processes' CPU seconds,
   ``publish_to_serve_ms`` (goal <= 20 ms) and peak RSS per process.
 
-Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers]``. The goals are the issue's; the machine has
-two cores shared by the server, the load generators and anything else running.
+Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers] [--repeat N]
+[--policies idle,normal]``: ``--seconds`` is the length of each score phase (a 5 s phase has
+5,000 scores, so its p99 is the 50th worst: 15 s is steadier); ``--repeat`` runs the phase under
+ingest N times per mode and reports the median p99 with its spread, and the scorer processes' CPU
+per score; ``--policies`` measures other ``service.learner_policy`` values beside the default.
+The goals are the issue's; the machine has two cores shared by the server, the load generators and
+anything else running.
 """
 
 from __future__ import annotations
@@ -115,14 +120,18 @@ def start_bare() -> tuple[subprocess.Popen, str]:
     raise RuntimeError("bare server did not start")
 
 
-def start_service(data_dir: str, scorers: int | str | None = None) -> tuple[subprocess.Popen, str]:
-    """``trimtab serve`` on the demo config (``scorers``: overrides ``service.scorers``)."""
+def start_service(data_dir: str, scorers: int | str | None = None,
+                  policy: str | None = None) -> tuple[subprocess.Popen, str]:
+    """``trimtab serve`` on the demo config (``scorers``, ``policy``: override ``service.scorers``
+    and ``service.learner_policy``)."""
     env = dict(os.environ, TRIMTAB_TOKEN=TOKEN)  # the config reads its token from $TRIMTAB_TOKEN
     config = CONFIG
-    if scorers is not None:
+    if scorers is not None or policy is not None:
         config = Path(data_dir + ".toml")
-        value = f'"{scorers}"' if isinstance(scorers, str) else str(scorers)
-        config.write_text(CONFIG.read_text().replace("[service]\n", f"[service]\nscorers = {value}\n"))
+        lines = "".join(f"{key} = {json.dumps(value)}\n" for key, value in (("scorers", scorers),
+                                                                            ("learner_policy", policy))
+                        if value is not None)
+        config.write_text(CONFIG.read_text().replace("[service]\n", f"[service]\n{lines}"))
     proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "-c", str(config), "--port", "0",
                              "--data-dir", data_dir], stderr=subprocess.PIPE, env=env, cwd=ROOT)
     url = None
@@ -258,7 +267,7 @@ class _ScoreConn(asyncio.Protocol):
         self.client = client
         self.transport = None
         self.buf = b""
-        self.due = 0.0
+        self.due: float | None = None  # scheduled send time of the request in flight (None: none)
         self.need = -1  # bytes of the whole answer once its head is in; -1: head not complete yet
 
     def connection_made(self, transport) -> None:
@@ -269,6 +278,9 @@ class _ScoreConn(asyncio.Protocol):
         self.transport.write(self.client.request)
 
     def data_received(self, data: bytes) -> None:
+        if self.due is None:  # nothing asked: the server closing a connection left unused (its 408)
+            self.transport.close()
+            return
         buf = self.buf = self.buf + data
         if self.need < 0:
             end = buf.find(b"\r\n\r\n")
@@ -279,7 +291,8 @@ class _ScoreConn(asyncio.Protocol):
             self.ok = buf[9:12] == b"200"
         if len(buf) >= self.need:
             self.buf, self.need = buf[self.need:], -1
-            self.client.answered(self, self.ok)
+            due, self.due = self.due, None
+            self.client.answered(self, due, self.ok)
 
     def connection_lost(self, exc) -> None:
         self.client.lost(self)
@@ -332,8 +345,8 @@ class _LeanScorer:
         self.free.append(await self._open())
         self.fire(due)
 
-    def answered(self, conn: _ScoreConn, ok: bool) -> None:
-        self.lat.append(time.perf_counter() - conn.due)
+    def answered(self, conn: _ScoreConn, due: float, ok: bool) -> None:
+        self.lat.append(time.perf_counter() - due)
         self.in_flight -= 1
         if not ok:
             self.errors += 1
@@ -522,57 +535,97 @@ def publish_to_serve(url: str, rounds: int = 200) -> dict:
     return {"p50_ms": 1e3 * out[len(out) // 2], "p99_ms": 1e3 * out[int(0.99 * len(out))], "max_ms": 1e3 * out[-1]}
 
 
-def scorer_comparison(secs: float) -> dict:
+def _spread(values: list[float]) -> dict:
+    """Median, lowest and highest of repeated figures (a noisy machine: one run is one draw)."""
+    v = sorted(values)
+    mid = v[len(v) // 2] if len(v) % 2 else (v[len(v) // 2 - 1] + v[len(v) // 2]) / 2
+    return {"median": round(mid, 2), "min": round(v[0], 2), "max": round(v[-1], 2),
+            "runs": [round(x, 2) for x in values]}
+
+
+def _under_ingest(url: str, secs: float, tag: str, rss: PeakRSS) -> dict:
+    """One score phase of ``secs`` seconds at 1,000/s while a producer posts 500-event bodies as
+    fast as acknowledged; the server processes' CPU seconds meanwhile."""
+    n_bodies = int(max(40, secs * 160 + 400))  # enough 500-event bodies for 80k events/s
+    bg = subprocess.Popen([sys.executable, __file__, "--load", "ingest", url, str(secs + 6), "4", tag,
+                           str(n_bodies), "0", "500"], stdout=subprocess.PIPE, cwd=ROOT)
+    time.sleep(4.0)  # the producer builds its bodies first (about 2 s here), then ingests
+    cpu0 = rss.cpu()
+    busy = run_load("rate", url, str(secs), "1000")
+    cpu1 = rss.cpu()
+    ing = json.loads(bg.communicate()[0].decode().strip().splitlines()[-1])
+    busy["ingest"] = ing
+    busy["server_cpu_s"] = {k: round(cpu1[k] - cpu0[k], 2) for k in cpu1 if k in cpu0}
+    return busy
+
+
+def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = ()) -> dict:
     """``service.scorers = 0`` (one process) against the default (scorer processes), in one run:
     idle score p99, score p99 while producers ingest 500-event bodies as fast as acknowledged, the
-    ingest rate meanwhile, the load generators' own CPU and GC pauses, publish-to-serve, peak RSS."""
+    ingest rate meanwhile, the load generators' own CPU and GC pauses, publish-to-serve, peak RSS.
+
+    ``repeat``: score phases under ingest per mode, each with a fresh producer (the figures under
+    ingest are their medians, the spread is reported); ``policies``: ``service.learner_policy``
+    values measured as extra modes (``scorers_<policy>``) beside the default one, in the same run.
+    """
     res: dict = {}
-    n_bodies = int(max(40, secs * 160))  # enough 500-event bodies for 80k events/s
-    for mode, scorers in (("single", 0), ("scorers", "auto")):
+    modes = [("single", 0, None), ("scorers", "auto", None)] + [(f"scorers_{p}", "auto", p) for p in policies]
+    for mode, scorers, policy in modes:
         with tempfile.TemporaryDirectory() as d:
-            svc, url = start_service(d + "/data", scorers)
+            svc, url = start_service(d + "/data", scorers, policy)
             rss = PeakRSS(svc.pid)
             rss.start()
             try:
                 run_load("ingest", url, "3", "2", f"w{mode}", "20", "0", "500")  # warm-up: compile, connect
                 run_load("rate", url, "1", "1000")
                 idle = run_load("rate", url, str(secs), "1000")
-                bg = subprocess.Popen([sys.executable, __file__, "--load", "ingest", url, str(secs + 6), "4",
-                                       f"g{mode}", str(n_bodies), "0", "500"], stdout=subprocess.PIPE, cwd=ROOT)
-                time.sleep(4.0)  # the producer builds its bodies first (about 2 s here), then ingests
-                cpu0 = rss.cpu()
-                busy = run_load("rate", url, str(secs), "1000")
-                cpu1 = rss.cpu()
-                ing = json.loads(bg.communicate()[0].decode().strip().splitlines()[-1])
-                spent = {k: round(cpu1[k] - cpu0[k], 2) for k in cpu1 if k in cpu0}
+                phases = [_under_ingest(url, secs, f"g{mode}{k}", rss) for k in range(repeat)]
                 pts = publish_to_serve(url) if scorers != 0 else None
             finally:
                 svc.terminate()
                 svc.wait(60)
                 peaks = rss.report()
+        busy = phases[0]
+        ing = busy["ingest"]
+        p99s = [b["p99_ms"] for b in phases]
+        rates = [b["ingest"]["events_per_s"] for b in phases]
+        scorer_us = [1e6 * sum(v for k, v in b["server_cpu_s"].items() if k.startswith("scorer")) / b["n"]
+                     for b in phases]
         r = res[mode] = {
-            "score_p99_ms_idle": round(idle["p99_ms"], 2), "score_p99_ms_under_ingest": round(busy["p99_ms"], 2),
-            "score_p50_ms_under_ingest": round(busy["p50_ms"], 2), "score_max_ms_under_ingest": round(busy["max_ms"], 2),
-            "score_errors": idle["errors"] + busy["errors"], "ingest_events_per_s": round(ing["events_per_s"]),
+            "score_p99_ms_idle": round(idle["p99_ms"], 2),
+            "score_p99_ms_under_ingest": _spread(p99s)["median"],
+            "score_p50_ms_under_ingest": round(busy["p50_ms"], 2),
+            "score_max_ms_under_ingest": round(busy["max_ms"], 2),
+            "score_errors": idle["errors"] + sum(b["errors"] for b in phases),
+            "ingest_events_per_s": round(_spread(rates)["median"]),
             "score_client": {k: busy[k] for k in busy if k.startswith("client_") or k == "most_in_flight"},
             "ingest_client": {k: ing[k] for k in ing if k.startswith("client_")},
-            "peak_rss_mb": peaks, "server_cpu_s_during_scores_under_ingest": spent,
+            "peak_rss_mb": peaks, "server_cpu_s_during_scores_under_ingest": busy["server_cpu_s"],
             "score_seconds": secs}
+        if repeat > 1:
+            r["repeats"] = {"score_p99_ms_under_ingest": _spread(p99s), "ingest_events_per_s": _spread(rates)}
+        if scorers != 0:  # the scorer processes' CPU per score (forwarded producer bodies included)
+            r["scorer_cpu_us_per_score_under_ingest"] = _spread(scorer_us) if repeat > 1 else round(scorer_us[0], 1)
         if pts is not None:
             r["publish_to_serve_ms_p99"] = round(pts["p99_ms"], 2)
             r["publish_to_serve_ms_p50"] = round(pts["p50_ms"], 2)
-        print(f"{mode}: score p99 {idle['p99_ms']:.2f} ms idle, {busy['p99_ms']:.2f} ms under ingest "
-              f"(p50 {busy['p50_ms']:.2f}, max {busy['max_ms']:.1f}); ingest {ing['events_per_s']:.0f} events/s "
-              f"in 500-event bodies; score client CPU {busy['client_cpu_share']:.2f} of a core, GC pauses "
-              f"{busy['client_gc_pauses']} (max {busy['client_gc_max_ms']} ms), its own send lateness p99 "
-              f"{busy['client_send_late_p99_ms']} ms; ingest client CPU "
-              f"{ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under ingest {spent}; "
-              f"peak RSS MB {peaks}"
+        print(f"{mode}: score p99 {idle['p99_ms']:.2f} ms idle, {', '.join(f'{x:.2f}' for x in p99s)} ms under "
+              f"ingest (first phase: p50 {busy['p50_ms']:.2f}, max {busy['max_ms']:.1f}); ingest "
+              f"{', '.join(f'{x:.0f}' for x in rates)} events/s in 500-event bodies; score client CPU "
+              f"{busy['client_cpu_share']:.2f} of a core, GC pauses {busy['client_gc_pauses']} (max "
+              f"{busy['client_gc_max_ms']} ms), its own send lateness p99 {busy['client_send_late_p99_ms']} ms; "
+              f"ingest client CPU {ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under "
+              f"ingest {busy['server_cpu_s']}; peak RSS MB {peaks}"
               + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else ""), file=sys.stderr)
     s, m = res["single"], res["scorers"]
     res["ratios"] = {"score_p99_under_ingest_scorers_vs_single": round(m["score_p99_ms_under_ingest"]
                                                                        / s["score_p99_ms_under_ingest"], 3),
                      "ingest_scorers_vs_single": round(m["ingest_events_per_s"] / s["ingest_events_per_s"], 3)}
+    for _mode, _scorers, policy in modes[2:]:
+        o = res[f"scorers_{policy}"]
+        res["ratios"][f"score_p99_under_ingest_{policy}_vs_default"] = round(
+            o["score_p99_ms_under_ingest"] / m["score_p99_ms_under_ingest"], 3)
+        res["ratios"][f"ingest_{policy}_vs_default"] = round(o["ingest_events_per_s"] / m["ingest_events_per_s"], 3)
     res["goals_met"] = {"score_p99_ms_under_ingest": m["score_p99_ms_under_ingest"] <= 5.0,
                         "ingest_events_per_s": m["ingest_events_per_s"] >= 60_000,
                         "publish_to_serve_ms": m["publish_to_serve_ms_p99"] <= 20.0}
@@ -585,6 +638,11 @@ def main() -> int:
     ap.add_argument("--part", choices=("all", "classic", "scorers"), default="all",
                     help="classic: the earlier figures (default config); scorers: only one process against "
                          "scorer processes; all: both")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="scorers part: score phases under ingest per mode (median and spread reported)")
+    ap.add_argument("--policies", default="",
+                    help="scorers part: comma-separated service.learner_policy values (batch, idle, normal) "
+                         "measured as extra modes beside the default, in the same run")
     ap.add_argument("--bare-server")
     ap.add_argument("--load", nargs="+")
     a = ap.parse_args()
@@ -613,7 +671,7 @@ def main() -> int:
     res: dict = {"machine": f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores",
                  "python": platform.python_version(), "load_average_at_start": os.getloadavg()[0]}
     if a.part == "scorers":
-        res["scorers"] = scorer_comparison(secs)
+        res["scorers"] = scorer_comparison(secs, a.repeat, tuple(p for p in a.policies.split(",") if p))
         print(json.dumps(res))
         return 0
     bare, bare_url = start_bare()
@@ -673,7 +731,7 @@ def main() -> int:
                         "score_p99_ms_at_1000rps": res["score_p99_ms_at_1000rps"] <= 5.0,
                         "ingest_events_per_s": res["ingest_events_per_s"] >= 60_000}
     if a.part == "all":
-        res["scorers"] = scorer_comparison(secs)
+        res["scorers"] = scorer_comparison(secs, a.repeat, tuple(p for p in a.policies.split(",") if p))
     print(json.dumps(res))
     return 0
 

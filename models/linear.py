@@ -406,10 +406,10 @@ class LinearModel:
             raise SnapshotError("the state is not a linear model")
         model = cls(ModelSpec.from_dict(header["spec"]))
         for name, attr in (("state", "_st"), ("sc", "_sc"), ("mean", "_mean"), ("std", "_std")):
-            want = getattr(model, attr).shape
-            if arrays[name].size != int(np.prod(want)):
+            want = getattr(model, attr)
+            if arrays[name].size != want.size:
                 raise SnapshotError(f"array {name!r} has the wrong size for this spec")
-            setattr(model, attr, arrays[name].reshape(want))
+            setattr(model, attr, arrays[name].reshape(want.shape))
         model._frozen = bool(header["frozen"])
         bounds = np.concatenate([[0], np.cumsum(arrays["warm_len"])])
         model._warm = [(arrays["warm_idx"][bounds[k]:bounds[k + 1]], arrays["warm_val"][bounds[k]:bounds[k + 1]],

@@ -228,7 +228,11 @@ class ServiceConfig(_Section):
     #: the learner publishes its serving model for the scorers after every applied slice, but at most
     #: once per this many milliseconds (0: after every slice); a held-back state follows within it
     publish_every_ms: float = Field(0.0, ge=0.0, le=60_000.0)
-
+    #: Linux scheduling policy of the learner's threads when scorer processes run (they also run at
+    #: nice +5): "batch" (SCHED_BATCH: never preempts a scorer, longer slices), "idle" (SCHED_IDLE:
+    #: runs only on a core no scorer wants; ingest may stall on a saturated machine), "normal" (the
+    #: nice value alone); see docs/architecture.md, "Priorities"
+    learner_policy: Literal["batch", "idle", "normal"] = "batch"
 
     @field_validator("scorers", mode="before")
     @classmethod

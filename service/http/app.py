@@ -280,7 +280,7 @@ async def _serve(config: Config, token: str | None) -> None:
         svc.metrics.watch("trimtab_scorers_running", lambda: len(fleet.pids))
         svc.metrics.watch("trimtab_scorer_restarts", lambda: fleet.restarts)
         # after the fleet's thread started, and not for it: replacements keep the scorers' priority
-        lowered = lower_learner_priority(keep=(fleet.watcher_id(),))
+        lowered = lower_learner_priority(cfg.learner_policy, keep=(fleet.watcher_id(),))
         log.info("learner on local socket unix:@%s; %d scorer processes on the address; learner threads: %s",
                  name[1:], scorers, lowered)
     # the objects alive now (modules, the recovered engine) never become garbage: move them out of

@@ -13,9 +13,9 @@ learner holds. A scorer exits when:
 :class:`ScorerFleet` watches its scorers from one thread and starts a replacement for one that
 exits while the service runs (after 0.2 s, doubling up to 5 s while replacements keep dying within
 2 s). That thread keeps the scheduling priority the learner started with; the learner then lowers
-its own threads' (:func:`lower_learner_priority`: a higher nice value and, on Linux, the
-``SCHED_BATCH`` policy), so that replacements, which inherit the priority of the thread that starts
-them, still run ahead of the learner's work.
+its own threads' (:func:`lower_learner_priority`: a higher nice value and, on Linux, the scheduling
+policy ``service.learner_policy`` names), so that replacements, which inherit the priority of the
+thread that starts them, still run ahead of the learner's work.
 """
 
 from __future__ import annotations
@@ -32,16 +32,12 @@ from dataclasses import dataclass, field
 
 import orjson
 
-__all__ = ["LEARNER_NICE", "LEARNER_POLICY", "ScorerFleet", "ScorerSetup", "auto_scorers", "lower_learner_priority"]
+__all__ = ["LEARNER_NICE", "ScorerFleet", "ScorerSetup", "auto_scorers", "lower_learner_priority"]
 
 log = logging.getLogger("trimtab.service")
 
 #: how much lower the learner's threads are scheduled than the scorers (a Linux nice value per thread)
 LEARNER_NICE = 5
-#: the Linux scheduling policy of the learner's threads: "batch", "idle" or "normal" (see lower_learner_priority)
-LEARNER_POLICY = "batch"
-#: the environment variable that overrides LEARNER_POLICY (for measuring one against another)
-POLICY_ENV = "TRIMTAB_LEARNER_POLICY"
 #: the environment variable that carries a scorer's setup (JSON) from the learner to the child
 SETUP_ENV = "TRIMTAB_SCORER_SETUP"
 
@@ -52,27 +48,29 @@ def auto_scorers() -> int:
     return max(1, cpus - 1)
 
 
-def lower_learner_priority(keep: tuple[int, ...] = ()) -> str:
+def lower_learner_priority(policy: str, keep: tuple[int, ...] = ()) -> str:
     """Schedule the learner's threads behind the scorers; return what was done (for the log).
 
     Every thread of this process but those in ``keep`` (native thread ids: the fleet's watcher,
-    whose children must start at the scorers' priority) is lowered by :data:`LEARNER_NICE` and put
-    under the policy :data:`LEARNER_POLICY` names (Linux); threads started later inherit both from
-    the thread that starts them. ``"batch"`` (``SCHED_BATCH``): the learner's threads never preempt
+    whose children must start at the scorers' priority) is lowered to :data:`LEARNER_NICE` above the
+    calling thread's nice value (a worker already that low stays so: the learner's threads end up
+    level, whenever they started) and put under ``policy`` (``service.learner_policy``, Linux);
+    threads started later inherit both from the thread that starts them. ``"batch"`` (``SCHED_BATCH``): the learner's threads never preempt
     a scorer that wakes up with a request, and take their turns in longer slices; ``"idle"``
     (``SCHED_IDLE``): they run only on a CPU nothing else wants (ingest stalls on a saturated
     machine); ``"normal"``: the nice value alone."""
-    policy = os.environ.get(POLICY_ENV, LEARNER_POLICY)
     kind = {"batch": getattr(os, "SCHED_BATCH", None), "idle": getattr(os, "SCHED_IDLE", None)}.get(policy)
     tids = [int(t) for t in os.listdir("/proc/self/task")] if os.path.isdir("/proc/self/task") \
         else [threading.get_native_id()]
     done = f"nice +{LEARNER_NICE}"
+    here = threading.get_native_id()
+    lowered = min(19, os.getpriority(os.PRIO_PROCESS, here) + LEARNER_NICE) if hasattr(os, "getpriority") else 0
     for tid in tids:
         if tid in keep:
             continue
         if hasattr(os, "setpriority"):
             with suppress(OSError):
-                os.setpriority(os.PRIO_PROCESS, tid, min(19, os.getpriority(os.PRIO_PROCESS, tid) + LEARNER_NICE))
+                os.setpriority(os.PRIO_PROCESS, tid, max(lowered, os.getpriority(os.PRIO_PROCESS, tid)))
         if kind is not None:
             try:
                 os.sched_setscheduler(tid, kind, os.sched_param(0))

@@ -43,6 +43,7 @@ BAD = [
     ("scorers-word", '[service]\nscorers = "many"', "service.scorers", '"auto"'),
     ("scorers-fraction", "[service]\nscorers = 1.5", "service.scorers", "whole number"),
     ("publish-every-negative", "[service]\npublish_every_ms = -2", "service.publish_every_ms", "greater than"),
+    ("learner-policy-word", '[service]\nlearner_policy = "realtime"', "service.learner_policy", "'idle'"),
     ("strongly-convex-no-l2", '[steps]\nrule = "strongly_convex"', "steps.rule", "l2 > 0"),
     ("strongly-convex-unbounded", '[steps]\nrule = "strongly_convex"\n[model]\nl2 = 0.01\n[constraint]\nset = "none"',
      "steps.rule", "bounded"),

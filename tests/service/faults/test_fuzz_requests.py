@@ -231,6 +231,27 @@ def test_broken_chunked_framing(server, case, route):
     refused(server, data)
 
 
+def test_bodies_received_whole_keep_their_limits_and_framing(server):
+    """A body that is already in when its handler starts (sent in one write with its head) is read
+    without waiting, and held to the same rules: chunked over the route's limit is a 413 naming the
+    key, chunked within it is decoded (RFC 9112 section 7.1) and scored, and a short body under a
+    longer Content-Length still waits for the rest (408 once the deadline passes)."""
+    features = orjson.dumps({"features": {"ambient_c": 4.0, "van": "V03"}})
+    pieces = [features[:7], features[7:20], features[20:]]
+    chunked = b"".join(b"%x\r\n%s\r\n" % (len(p), p) for p in pieces) + b"0\r\n\r\n"
+    headers = {"Content-Type": "application/json", "Transfer-Encoding": "chunked"}
+    a = exchange(server.url, request_bytes("POST", "/v1/score", chunked, headers, length=False))
+    assert a.status == 200 and len(orjson.loads(a.body)["scores"]) == 1, a.body[:300]
+    big = b"x" * (server.config.service.max_score_bytes + 10)
+    over = b"%x\r\n%s\r\n0\r\n\r\n" % (len(big), big)
+    status, err = refused(server, request_bytes("POST", "/v1/score", over, headers, length=False))
+    assert status == 413 and err["where"] == "body" and "service.max_score_bytes" in err["message"], err
+    short = request_bytes("POST", "/v1/score", features, {"Content-Type": "application/json",
+                                                           "Content-Length": str(len(features) + 5)}, length=False)
+    status, err = refused(server, short, timeout=server.config.service.body_timeout_s + 5)
+    assert status == 408 and err["code"] == "request_timeout", err
+
+
 # ------------------------------------------------------------------ requests that never finish
 def test_heads_and_bodies_that_never_finish_get_408(server):
     timeout = server.config.service.body_timeout_s + 5

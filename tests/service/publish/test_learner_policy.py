@@ -1,0 +1,90 @@
+"""``service.learner_policy``: the learner's threads run under the configured Linux scheduling policy,
+the scorers and the thread that starts them do not.
+
+The reference is the kernel's own account of each thread (``sched_getscheduler`` and the nice value
+of every task under ``/proc/<pid>/task``), read from outside the process that set it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tests.service.publish.scorerkit import scorer_pids, start_serve, wait_for
+
+pytestmark = pytest.mark.skipif(not hasattr(os, "SCHED_IDLE"), reason="Linux scheduling policies")
+
+ROOT = Path(__file__).resolve().parents[3]
+POLICY = {"batch": "SCHED_BATCH", "idle": "SCHED_IDLE", "normal": "SCHED_OTHER"}
+_NAMES = {getattr(os, name): name for name in ("SCHED_OTHER", "SCHED_BATCH", "SCHED_IDLE")}
+
+# a process with a thread that must keep its priority (as the fleet's watcher does), one lowered before
+# (a worker) and one started after
+_CHILD = """
+import json, os, sys, threading
+from service.http.fleet import lower_learner_priority
+stop = threading.Event()
+ids = {}
+def run(name, ready):
+    tid = ids[name] = threading.get_native_id()
+    if name == "early":  # a worker that lowered itself before, as service.ingest.background_thread does
+        os.setpriority(os.PRIO_PROCESS, tid, os.getpriority(os.PRIO_PROCESS, tid) + 5)
+    ready.set()
+    stop.wait()
+def start(name):
+    ready = threading.Event()
+    threading.Thread(target=run, args=(name, ready)).start()
+    ready.wait()
+start("kept")
+start("early")
+done = lower_learner_priority(sys.argv[1], keep=(ids["kept"],))
+start("later")
+print(json.dumps({"done": done, "main": threading.get_native_id(), **ids}), flush=True)
+sys.stdin.read()
+stop.set()
+"""
+
+
+def _state(tid: int) -> tuple[str, int]:
+    return _NAMES.get(os.sched_getscheduler(tid), "other"), os.getpriority(os.PRIO_PROCESS, tid)
+
+
+@pytest.mark.parametrize("policy", ["batch", "idle", "normal"])
+def test_each_policy_lowers_every_thread_but_the_kept_one(policy):
+    """Threads running when it is called and threads they start later: the policy and nice +5; a
+    thread already at +5 stays there (not +10); the kept thread stays as it was."""
+    proc = subprocess.Popen([sys.executable, "-c", _CHILD, policy], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                            text=True, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)})
+    try:
+        ids = json.loads(proc.stdout.readline())
+        base = os.getpriority(os.PRIO_PROCESS, 0)
+        assert _state(ids["main"]) == (POLICY[policy], min(19, base + 5)), ids
+        assert _state(ids["later"]) == (POLICY[policy], min(19, base + 5)), ids
+        assert _state(ids["early"]) == (POLICY[policy], min(19, base + 5)), ids
+        assert _state(ids["kept"]) == ("SCHED_OTHER", base), ids
+        assert ids["done"].startswith("nice +5") and (policy == "normal") == ("scheduling" not in ids["done"])
+    finally:
+        proc.communicate("", timeout=30)
+
+
+def test_serve_runs_its_learner_under_the_configured_policy(tmp_path):
+    """``trimtab serve`` with ``learner_policy = "idle"``: every learner thread but the scorers'
+    watcher is SCHED_IDLE at nice +5 (workers started before and after alike); the scorer process
+    is at the default policy and priority, and the log says what was done."""
+    _, server = start_serve(tmp_path, scorers=1, learner_policy="idle")
+    try:
+        scorer = wait_for(lambda: len(p := scorer_pids(server)) == 1 and p[0])
+        base = os.getpriority(os.PRIO_PROCESS, 0)
+        learner = [_state(int(t)) for t in os.listdir(f"/proc/{server.proc.pid}/task")]
+        assert learner.count(("SCHED_OTHER", base)) == 1, learner  # the watcher that starts scorers
+        # the loop and its workers level, whether they started before the learner lowered itself or after
+        assert set(learner) - {("SCHED_OTHER", base)} == {("SCHED_IDLE", min(19, base + 5))}, learner
+        assert {_state(int(t)) for t in os.listdir(f"/proc/{scorer}/task")} == {("SCHED_OTHER", base)}
+        assert any("nice +5, IDLE scheduling" in line for line in server.log), "".join(server.log)
+    finally:
+        assert server.stop() == 0
