@@ -134,4 +134,4 @@ def test_unfed_detector_saved_and_restored_fires_as_river(kind):
     reference = drift.PageHinkley() if kind == "page_hinkley" else drift.ADWIN()
     expected = _fires(reference, stream)
     assert expected, "the stream should hold changes"
-    assert [i for i, x in enumerate(stream) if restored.update(x)] == expected
+    assert [i for i, x in enumerate(stream) if restored.feed((x,))] == expected
