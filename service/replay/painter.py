@@ -25,7 +25,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-__all__ = ["Painter", "ReportFailed", "draw_in_child"]
+__all__ = ["Painter", "ReportFailed"]
 
 
 class ReportFailed(Exception):
@@ -101,15 +101,6 @@ class Painter:
                 pass
         self._proc.wait()
         self._err.close()
-
-
-def draw_in_child(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
-                  caution: str | None = None, painter: Painter | None = None) -> Path:
-    """:func:`service.replay.report.write_report` in a separate process (``painter``, or one started now)."""
-    if painter is not None:
-        return painter.draw(out, summary, results, notes, caution)
-    with Painter(len(summary["runs"])) as fresh:
-        return fresh.draw(out, summary, results, notes, caution)
 
 
 def _paint(runs: int) -> None:
