@@ -8,11 +8,9 @@ module (``replay``, ``demo``, ``app``); this file only parses arguments and maps
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import sys
-
-from models import InvalidSettings, TrimtabError
-from service.storage.dirlock import DataDirLocked
 
 __all__ = ["main"]
 
@@ -99,8 +97,27 @@ def _check_config(args) -> int:
     return 0
 
 
+def _painter(args) -> contextlib.AbstractContextManager:
+    """For an offline replay that draws a report, its painter, started before anything else is imported
+    (its own start-up, matplotlib's import, then runs beside this process's imports); else nothing."""
+    if args.command != "replay" or args.to or args.no_report or not args.config or not args.out:
+        return contextlib.nullcontext()
+    from service.replay.painter import Painter
+
+    return Painter(runs=len(args.config))
+
+
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
+    with _painter(args) as painter:
+        return _run(args, painter)
+
+
+def _run(args, painter) -> int:
+    from models import InvalidSettings, TrimtabError
+    from service.replay.painter import ReportFailed
+    from service.storage.dirlock import DataDirLocked
+
     try:
         if args.command == "check-config":
             return _check_config(args)
@@ -111,7 +128,7 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "replay":
             from service.replay.runner import replay_main
 
-            return replay_main(args)
+            return replay_main(args, painter)
         if args.command == "sweep":
             from service.replay.sweep import sweep_main
 
@@ -128,6 +145,9 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except TrimtabError as exc:
         print(f"trimtab: error: {exc}", file=sys.stderr)
+        return 1
+    except ReportFailed as exc:
+        print(f"trimtab: error: the report failed, no report.html was written: {exc}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         print("trimtab: interrupted", file=sys.stderr)

@@ -60,9 +60,9 @@ def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines")
     feed, _ = _feed(out, events)
     configs = [load_config(p) for p in config_paths]
     start = time.perf_counter()
-    from service.replay.report import Painter
+    from service.replay.painter import Painter
 
-    with Painter() as painter:  # imports matplotlib in its own process while the kernels compile and the runs go
+    with Painter(len(configs)) as painter:  # imports matplotlib in its own process while the kernels compile and the runs go
         results = run_all([feed], configs, [str(p) for p in config_paths], jobs=min(2, os.cpu_count() or 1),
                           mode=mode)
         report, truth = _finish(out, feed, results, painter)

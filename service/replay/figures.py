@@ -20,7 +20,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocator
 
-__all__ = ["compare_figure", "run_figure"]
+__all__ = ["compare_figure", "prepare", "run_figure"]
 
 _ROLLBACK = dict(color="#d95f02", linestyle="--", linewidth=1.0)
 _RESTART = dict(color="#7570b3", linestyle="-", linewidth=1.6)
@@ -34,6 +34,8 @@ _TITLE_CHARS = 120
 #: Labelled ticks per axis, at most: each tick is several artists built anew for every figure, the
 #: largest share of the drawing time once the labels are plain text
 _X_TICKS, _Y_TICKS = 7, 5
+#: Run figures built ahead by :func:`prepare`, empty, taken by :func:`run_figure`
+_SPARE: list[tuple] = []
 
 
 def _line(ax, xy: tuple, **style) -> bool:
@@ -88,6 +90,24 @@ def _figure(rows: int, height: float, **kw) -> tuple:
     return fig, fig.subplots(rows, 1, sharex=True, **kw)
 
 
+def _run_axes() -> tuple:
+    """An empty run figure: loss over step size over distance, sharing the events axis."""
+    fig, axes = _figure(3, 8.2, height_ratios=[2.2, 1, 1])
+    fig.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.07, hspace=0.08)
+    return fig, axes
+
+
+def prepare(runs: int = 1) -> None:
+    """Ready the first drawing while there is nothing to draw yet: load the text font and the PNG
+    writer, and build ``runs`` empty run figures (a third of a figure's drawing is building its
+    axes; none depends on the data)."""
+    from matplotlib.font_manager import FontProperties, findfont, get_font
+    from PIL import PngImagePlugin  # noqa: F401  (loaded by the first savefig otherwise)
+
+    get_font(findfont(FontProperties()))
+    _SPARE.extend(_run_axes() for _ in range(runs))
+
+
 def _png(fig) -> bytes:
     buf = io.BytesIO()
     # zlib level 1: the plots are flat colours, which compress well at any level, and level 6 took
@@ -114,8 +134,7 @@ def _panel(ax, run: dict, notes: list[dict], series, *, color: str, label: str, 
 def run_figure(run: dict, plot: dict, loss_unit: str, notes: list[dict]) -> bytes:
     """Loss (model and baseline), step size and iterate distance of one run, as PNG bytes."""
     get = lambda key: plot.get(key, _EMPTY)  # noqa: E731
-    fig, axes = _figure(3, 8.2, height_ratios=[2.2, 1, 1])
-    fig.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.07, hspace=0.08)
+    fig, axes = _SPARE.pop() if _SPARE else _run_axes()
     ax = axes[0]
     drawn = [_line(ax, get("progressive_loss"), color="#bbbbbb", linewidth=0.9,
                    label="progressive loss (serving iterate, before learning)"),

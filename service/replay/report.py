@@ -13,9 +13,8 @@ Every series is thinned to a min/max envelope of at most a few thousand points
 without held-out events (monitor off, ``holdout_share = 0``, a feed too short) or without any
 check draws what it has and says what is missing instead of failing on an empty log axis.
 
-Run as ``python -m service.replay.report`` (a :class:`Painter`) it loads matplotlib, then draws a
-page from a pickled ``(out, summary, plots, notes, caution)`` read on stdin, in an interpreter that
-imports only numpy and matplotlib.
+``trimtab replay`` draws the page in its own process (:mod:`service.replay.painter`), an interpreter
+that imports only numpy and matplotlib.
 """
 
 from __future__ import annotations
@@ -23,15 +22,11 @@ from __future__ import annotations
 import base64
 import html
 import math
-import os
-import pickle
-import subprocess
-import sys
 from pathlib import Path
 
 from service.replay.plotdata import thin_trace
 
-__all__ = ["CAUTION", "DEMO_CAUTION", "Painter", "draw_in_child", "verdict", "write_report"]
+__all__ = ["CAUTION", "DEMO_CAUTION", "verdict", "write_report"]
 
 #: The caution for any feed: what a replay's numbers are, and are not, good for.
 CAUTION = ("Decision support only. A replay shows how a learning configuration behaves on a recorded "
@@ -274,64 +269,3 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     path = out / "report.html"
     path.write_text(page, encoding="utf-8")
     return path
-
-
-class Painter:
-    """The process that draws the report, started before the replay so that it imports matplotlib while
-    the replay imports and learns (on two cores that start-up then costs no wall time).
-
-    The replay process keeps its memory (numba, its LLVM, the readers) without the plotting stack's,
-    and the painter skips importing the learning code. Use as a context manager: a painter that was
-    never asked to draw is stopped on exit.
-    """
-
-    def __init__(self) -> None:
-        root = str(Path(__file__).resolve().parents[2])
-        env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")])))
-        self._proc = subprocess.Popen([sys.executable, "-m", "service.replay.report"], stdin=subprocess.PIPE,
-                                      stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
-
-    def draw(self, out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
-             caution: str = CAUTION) -> Path:
-        """:func:`write_report` in the painter; the traces are thinned here, so little data crosses."""
-        plots = [{"plot": r["plot"] if "plot" in r else thin_trace(r["trace"]), "loss": r.get("loss", "squared")}
-                 for r in results]
-        data = pickle.dumps((str(out), summary, plots, notes, caution), protocol=5)
-        _, err = self._proc.communicate(data)
-        if self._proc.returncode != 0:
-            from models import TrimtabError
-
-            raise TrimtabError(f"drawing the report failed: {err.decode(errors='replace').strip()[-2000:]}")
-        return Path(out) / "report.html"
-
-    def __enter__(self) -> Painter:
-        return self
-
-    def __exit__(self, *exc) -> None:
-        if self._proc.poll() is None:
-            self._proc.kill()
-        self._proc.communicate()
-
-
-def draw_in_child(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
-                  caution: str = CAUTION, painter: Painter | None = None) -> Path:
-    """:func:`write_report` in a separate process (``painter``, or one started now)."""
-    if painter is not None:
-        return painter.draw(out, summary, results, notes, caution)
-    with Painter() as fresh:
-        return fresh.draw(out, summary, results, notes, caution)
-
-
-def _paint() -> None:
-    """The painter's side: load the plotting stack, then draw what arrives on stdin (nothing: exit)."""
-    import service.replay.figures  # noqa: F401  (matplotlib's figure and Agg canvas)
-
-    try:
-        job = pickle.load(sys.stdin.buffer)
-    except EOFError:  # the replay ended without a report (an error, or nothing to draw)
-        return
-    write_report(*job)
-
-
-if __name__ == "__main__":
-    _paint()

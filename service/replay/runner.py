@@ -28,6 +28,7 @@ import math
 import os
 import queue
 import re
+import sys
 import threading
 import time
 from pathlib import Path
@@ -37,6 +38,7 @@ import numpy as np
 from models import InvalidSettings
 
 from service.config import Config, load_config
+from service.replay.painter import ReportFailed
 from service.replay.progress import Progress, progress_mode
 
 __all__ = ["BAD_LINES_KEPT", "reason_key", "replay_main", "run_all", "run_replay", "write_outputs"]
@@ -337,7 +339,12 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
     """Write ``summary.json``, ``<name>/model.json``, ``<name>/state.bin`` and ``state.json`` (for results
     that carry their state) and (unless ``report=False``) ``report.html``
     (with ``caution``, or the general caution of :data:`service.replay.report.CAUTION`), drawn by
-    ``painter`` (a :class:`service.replay.report.Painter` started earlier) or a fresh one."""
+    ``painter`` (a :class:`service.replay.painter.Painter` started earlier) or a fresh one while the
+    other files are written. Returns the page's path (``summary.json``'s without a report).
+
+    Raises :class:`service.replay.painter.ReportFailed` if the page could not be drawn; every other
+    output is written by then.
+    """
     from service.storage.promote import write_run_state
 
     out = Path(out)
@@ -345,20 +352,23 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
     feeds = [str(f) for f in feeds]
     summary = {"feed": feeds[0] if len(feeds) == 1 else feeds, "feeds": feeds,
                "runs": [r["summary"] for r in results]}
-    for r in results:
-        folder = out / r["summary"]["name"]
-        folder.mkdir(exist_ok=True)
-        (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
-        if "state" in r and "config" in r:  # the final state, for trimtab serve --start-from DIR/NAME
-            write_run_state(folder, r["state"], r["summary"], r["config"])
-    (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
-    if report:
-        from service.replay.report import CAUTION, draw_in_child
+    with contextlib.ExitStack() as stack:
+        if report:
+            from service.replay.painter import Painter
 
-        # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
-        # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
-        return draw_in_child(out, summary, results, notes, caution or CAUTION, painter)
-    return out / "summary.json"
+            # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
+            # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
+            if painter is None:
+                painter = stack.enter_context(Painter(len(results)))
+            painter.send(out, summary, results, notes, caution)  # drawn while the files below are written
+        for r in results:
+            folder = out / r["summary"]["name"]
+            folder.mkdir(exist_ok=True)
+            (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
+            if "state" in r and "config" in r:  # the final state, for trimtab serve --start-from DIR/NAME
+                write_run_state(folder, r["state"], r["summary"], r["config"])
+        (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
+        return painter.wait() if report else out / "summary.json"
 
 
 def _configs(paths: list[str]) -> list[Config]:
@@ -372,8 +382,13 @@ def _configs(paths: list[str]) -> list[Config]:
     return configs
 
 
-def replay_main(args) -> int:
-    """``trimtab replay``: offline runs (``-c ... --out``) or a live replay (``--to URL``)."""
+def replay_main(args, painter=None) -> int:
+    """``trimtab replay``: offline runs (``-c ... --out``) or a live replay (``--to URL``).
+
+    ``painter``: the report's :class:`~service.replay.painter.Painter` if the caller started it
+    already (the command line does, before its imports); else one is started here. A report that
+    fails is said on stderr (exit status 1) after the runs' outputs are written and their lines printed.
+    """
     from service.feeds.files import detect_format
 
     for feed in args.feeds:
@@ -393,18 +408,25 @@ def replay_main(args) -> int:
     mode = progress_mode(args.no_progress)
     report = not getattr(args, "no_report", False)
     with contextlib.ExitStack() as stack:
-        painter = None
-        if report:
-            from service.replay.report import Painter
+        if report and painter is None:
+            from service.replay.painter import Painter
 
-            painter = stack.enter_context(Painter())  # loads matplotlib while the runs go
+            painter = stack.enter_context(Painter(len(configs)))  # loads matplotlib while the runs go
         results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
                           columnar=not getattr(args, "exact_parse", False))
-        written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)
+        failed = None
+        try:
+            written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)
+        except ReportFailed as exc:
+            written, failed = Path(args.out) / "summary.json", exc
     for r in results:
         s = r["summary"]
         print(f"{s['name']}: {s['events']:,} events, {s['rejected']:,} rejected, "
               f"{s['events_per_second'] or 0:,.0f} events/s, digest {s['state_digest'][:16]}")
         print(f"  {s['verdict']}")
     print(f"wrote {written}")
+    if failed is not None:
+        print(f"trimtab: error: the report failed, no report.html was written (the runs finished and their "
+              f"other outputs are written): {failed}", file=sys.stderr)
+        return 1
     return 0

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import base64
 import io
+import os
 import json
 from html.parser import HTMLParser
 from pathlib import Path
@@ -137,3 +138,49 @@ def test_cautions_fit_the_feed():
     assert "cold-chain" in DEMO_CAUTION and "cold-chain" not in CAUTION.lower()
     for words in ("decision support", "safety", "health", "credit", "local regulations", "licensed practice"):
         assert words in CAUTION.lower()
+
+
+def test_replay_whose_painter_fails_finishes_its_run_and_says_the_report_failed(tmp_path, monkeypatch, capsys):
+    """A painter that cannot load matplotlib (a stand-in package that refuses to import, first on the
+    painter's path) fails only the page: the run's files are written, its line is printed with the same
+    digest as a run without a report, and stderr says the report failed, with the painter's reason."""
+    feed = tmp_path / "feed.ndjson"
+    write_ndjson(feed, 3_000, seed=12)
+    broken = tmp_path / "broken" / "matplotlib"
+    broken.mkdir(parents=True)
+    (broken / "__init__.py").write_text('raise ImportError("this matplotlib refuses to load")\n')
+    assert main(["replay", str(feed), "-c", str(GUARDED), "--out", str(tmp_path / "plain"), "--no-progress",
+                 "--no-report"]) == 0
+    capsys.readouterr()
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join(filter(None, [str(broken.parent), os.environ.get("PYTHONPATH")])))
+    out = tmp_path / "out"
+    assert main(["replay", str(feed), "-c", str(GUARDED), "--out", str(out), "--no-progress"]) == 1
+    said = capsys.readouterr()
+    assert "the report failed" in said.err and "this matplotlib refuses to load" in said.err
+    assert not (out / "report.html").exists()
+    run = json.loads((out / "summary.json").read_text())["runs"][0]
+    plain = json.loads((tmp_path / "plain" / "summary.json").read_text())["runs"][0]
+    assert run["state_digest"] == plain["state_digest"] and run["state_digest"][:16] in said.out
+    assert (out / "guarded" / "model.json").exists() and (out / "guarded" / "state.bin").exists()
+
+
+def test_a_figure_built_ahead_draws_the_same_image(tmp_path):
+    """The painter builds its figures before the data arrives (``figures.prepare``); the PNG must be the
+    very bytes of a figure built at drawing time."""
+    from service.replay import figures
+    from service.replay.plotdata import thin_trace
+
+    x = np.arange(1, 3_001, dtype=float) * 100
+    trace = {"event": x, "progressive_loss": 1 + np.sin(x / 7e3) ** 2, "holdout_raw": 1 / np.sqrt(x),
+             "holdout_avg": 0.5 / np.sqrt(x), "baseline_progressive": np.full_like(x, 2.0),
+             "baseline_holdout": np.full_like(x, 1.5), "step": 0.1 / np.sqrt(x), "distance": 1 / x,
+             "step_scale": np.ones_like(x), "serving": ["averaged"] * len(x)}
+    run = {"name": "ahead", "verdict": verdict({"rollbacks": [{"event": 90_000}], "restarts": [], "serving": "raw"}),
+           "rollbacks": [{"event": 90_000}], "restarts": []}
+    plot = thin_trace(trace)
+    fresh = figures.run_figure(run, plot, "loss", [])
+    figures.prepare(1)
+    assert figures._SPARE
+    ahead = figures.run_figure(run, plot, "loss", [])
+    assert not figures._SPARE and ahead[:8] == PNG
+    assert ahead == fresh
