@@ -451,14 +451,14 @@ def _kth_smallest(a, k):
 
 @_jit
 def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref, sample_max, absurd, losses,
-                 usable, kept):
+                 usable):
     """The held-out monitor's figures of a window of rows in one pass (the rules that read them are in
     ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
     and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
-    the smaller is at most ``absurd`` times the reference; and the usable rows' losses, in order, to
-    ``kept[:n_usable]`` (one row per event: raw, averaged). The reference is the median averaged-iterate loss of a regular sample of
-    rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count (a partition finds the
-    median). Returns ``(reference, n_usable)``."""
+    the smaller is at most ``absurd`` times the reference. The reference is the median averaged-iterate
+    loss of a regular sample of rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count
+    (a partition finds the median). Returns ``(reference, n_usable, raw_sum, avg_sum)``, the sums of the
+    usable rows' losses added in row order from 0.0 (numpy's order for a column-major ``(2, n)`` array)."""
     code, delta = int(prm[P_LOSS]), prm[P_DELTA]
     n = losses.shape[1]
     width = 1
@@ -477,11 +477,12 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
         sample[k] = losses[1, k * step]
     reference = _kth_smallest(sample, m // 2)
     limit = absurd * reference if reference > 0.0 else np.inf
-    n_usable = 0
+    n_usable, raw_sum, avg_sum = 0, 0.0, 0.0
     for i in range(n):
         a, b = losses[0, i], losses[1, i]
         usable[i] = abs(a) <= OVERFLOW_LOSS and abs(b) <= OVERFLOW_LOSS and min(a, b) <= limit
         if usable[i]:
-            kept[n_usable, 0], kept[n_usable, 1] = a, b
+            raw_sum += a
+            avg_sum += b
             n_usable += 1
-    return reference, n_usable
+    return reference, n_usable, raw_sum, avg_sum

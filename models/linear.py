@@ -175,18 +175,20 @@ class LinearModel:
         return out
 
     def score_window(self, rows: Rows, y: np.ndarray, n_ref: int, sample_max: int,
-                     absurd: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+                     absurd: float) -> tuple[np.ndarray, np.ndarray, tuple[float, float], int, float]:
         """The held-out monitor's figures of ``rows`` (targets ``y``) in one compiled pass
-        (``kernels.score_window``): ``(losses, usable, kept, reference)``, the losses of both iterates
-        (row 0 raw, row 1 averaged), which rows are usable, their losses, and the reference median."""
+        (``kernels.score_window``): ``(losses, usable, sums, n_usable, reference)``, the losses of both
+        iterates (row 0 raw, row 1 averaged), which rows are usable, the sums of their losses (raw,
+        averaged), how many, and the reference median."""
         n = len(rows)
-        # ``kept`` one row per event, so that ``kept[:k].T`` is laid out as numpy's ``losses[:, usable]``
-        # copy is (column-major): its sums then match that copy's bit for bit
-        losses, usable, kept = np.empty((2, n)), np.empty(n, dtype=np.bool_), np.empty((n, 2))
-        reference, n_usable = C.score_window(self._lazy, self._st, self._sc, self._prm, self._mean, self._std,
-                                             rows.indptr, rows.indices, rows.values, y, n_ref, sample_max,
-                                             absurd, losses, usable, kept)
-        return losses, usable, losses if n_usable == n else kept[:n_usable].T, reference
+        losses, usable = np.empty((2, n)), np.empty(n, dtype=np.bool_)
+        reference, n_usable, raw_sum, avg_sum = C.score_window(
+            self._lazy, self._st, self._sc, self._prm, self._mean, self._std, rows.indptr, rows.indices,
+            rows.values, y, n_ref, sample_max, absurd, losses, usable)
+        # the sums numpy gives for ``losses[:, usable]``, bit for bit: pairwise along the rows when every row
+        # is usable (no copy), in row order (the kernel's) over the column-major copy it makes otherwise
+        sums = tuple(losses.sum(axis=1).tolist()) if n_usable == n else (raw_sum, avg_sum)
+        return losses, usable, sums, n_usable, reference
 
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""

@@ -121,10 +121,9 @@ class Monitor:
         if not len(events):
             return None
         n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
-        losses, usable, kept, reference = model.score_window(rows, y, n_old if n_old >= MIN_EVENTS else len(events),
-                                                             _MEDIAN_SAMPLE, self._absurd)
-        n_usable = kept.shape[1]
-        raw, avg = (kept.sum(axis=1) / n_usable).tolist() if n_usable else (math.nan, math.nan)
+        losses, usable, sums, n_usable, reference = model.score_window(
+            rows, y, n_old if n_old >= MIN_EVENTS else len(events), _MEDIAN_SAMPLE, self._absurd)
+        raw, avg = (sums[0] / n_usable, sums[1] / n_usable) if n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
         return CheckFigures(losses, events, usable, n_usable, n_old, losses[1, n_old:] > reference, raw, avg,
