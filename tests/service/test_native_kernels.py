@@ -138,18 +138,24 @@ def strict_ratio(a, b):
 '''
 
 
+def _probe_set(tmp_path, monkeypatch, name: str, mode: str):
+    """A kernel set ``name`` over a module ``aot_<name>_mod`` of the two probe functions, its cache in
+    ``tmp_path`` and ``TRIMTAB_KERNELS=mode``."""
+    from models.native import KernelSet
+
+    (tmp_path / f"aot_{name}_mod.py").write_text(textwrap.dedent(OPTIONS), encoding="utf-8")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.setenv("TRIMTAB_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.setenv("TRIMTAB_KERNELS", mode)
+    return KernelSet(name, (f"aot_{name}_mod",))
+
+
 @pytest.mark.slow
 def test_each_function_keeps_its_own_options_and_a_changed_source_is_stale(tmp_path, monkeypatch):
     """numba's documented ``error_model``: with ``"numpy"`` a float division by zero gives inf, with
     the default ``"python"`` it raises ZeroDivisionError, in the JIT and so in the built module.
     Editing the source changes the key: the old module is no longer used."""
-    from models.native import KernelSet
-
-    (tmp_path / "aot_probe_mod.py").write_text(textwrap.dedent(OPTIONS), encoding="utf-8")
-    monkeypatch.syspath_prepend(str(tmp_path))
-    monkeypatch.setenv("TRIMTAB_CACHE_DIR", str(tmp_path / "cache"))
-    monkeypatch.setenv("TRIMTAB_KERNELS", "prebuilt")
-    probe = KernelSet("probe", ("aot_probe_mod",))
+    probe = _probe_set(tmp_path, monkeypatch, "probe", "prebuilt")
 
     def exercise():
         import aot_probe_mod
@@ -164,7 +170,7 @@ def test_each_function_keeps_its_own_options_and_a_changed_source_is_stale(tmp_p
     with pytest.raises(ZeroDivisionError):
         probe.strict_ratio(1.0, 0.0)
     (tmp_path / "aot_probe_mod.py").write_text(textwrap.dedent(OPTIONS) + "\n# edited\n", encoding="utf-8")
-    edited = KernelSet("probe", ("aot_probe_mod",))
+    edited = type(probe)("probe", ("aot_probe_mod",))
     assert edited.key() != before
     assert not edited.is_native("ratio") and edited.missing
 
@@ -173,13 +179,8 @@ def test_failed_build_is_remembered_and_not_restarted(tmp_path, monkeypatch):
     """A build that fails leaves its reason beside the module and the automatic build is not started
     again for the same sources; the set keeps serving numba's dispatchers."""
     import service.kernels as sk
-    from models.native import KernelSet
 
-    (tmp_path / "aot_failing_mod.py").write_text(textwrap.dedent(OPTIONS), encoding="utf-8")
-    monkeypatch.syspath_prepend(str(tmp_path))
-    monkeypatch.setenv("TRIMTAB_CACHE_DIR", str(tmp_path / "cache"))
-    monkeypatch.setenv("TRIMTAB_KERNELS", "auto")
-    probe = KernelSet("failing", ("aot_failing_mod",))
+    probe = _probe_set(tmp_path, monkeypatch, "failing", "auto")
 
     def exercise():
         raise RuntimeError("no compiler here")
