@@ -32,9 +32,6 @@ from __future__ import annotations
 import math
 
 from .jit import numba
-import numpy as np
-
-from .losses import OVERFLOW_LOSS
 
 __all__ = [
     "N_PARAMS",
@@ -45,8 +42,6 @@ __all__ = [
     "margin_map",
     "pair_margins",
     "point_loss",
-    "score_rows_both",
-    "score_window",
 ]
 
 from .layout import (  # noqa: F401 (the layout is part of this module's interface)
@@ -410,79 +405,3 @@ def dense_process(st, sc, prm, mean, std, indptr, indices, values, y, mode, serv
             learned += 1
         i += 1
     return i
-
-
-@_jit
-def score_rows_both(lazy, st, sc, prm, mean, std, indptr, indices, values, out):
-    """Margins of rows ``0..out.shape[1]`` with both iterates in one pass: ``out[0]`` raw, ``out[1]`` averaged
-    (the monitor scores its held-out window with both at every check)."""
-    n = out.shape[1]
-    width = 0
-    for i in range(n):
-        width = max(width, indptr[i + 1] - indptr[i])
-    xs = np.empty(max(width, 1))
-    for i in range(n):
-        out[0, i], out[1, i], _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, indptr[i],
-                                                  indptr[i + 1], xs)
-
-
-@_inline
-def _kth_smallest(a, k):
-    """The ``k``-th smallest value of ``a`` (from 0; NaN above every number), reordering ``a``: N. Wirth's
-    selection ("Algorithms + Data Structures = Programs", 1976), as ``np.partition(a, k)[k]`` gives it
-    (written out: numba's ``np.partition`` adds seconds to the first compile and 15 ms to every load)."""
-    lo, hi = 0, a.shape[0] - 1
-    while lo < hi:
-        x, i, j = a[k], lo, hi
-        while i <= j:
-            while a[i] < x or (x != x and a[i] == a[i]):
-                i += 1
-            while x < a[j] or (a[j] != a[j] and x == x):
-                j -= 1
-            if i <= j:
-                a[i], a[j] = a[j], a[i]
-                i, j = i + 1, j - 1
-        if j < k:
-            lo = i
-        if k < i:
-            hi = j
-    return a[k]
-
-
-@_jit
-def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref, sample_max, absurd, losses,
-                 usable):
-    """The held-out monitor's figures of a window of rows in one pass (the rules that read them are in
-    ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
-    and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
-    the smaller is at most ``absurd`` times the reference. The reference is the median averaged-iterate
-    loss of a regular sample of rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count
-    (a partition finds the median). Returns ``(reference, n_usable, raw_sum, avg_sum)``, the sums of the
-    usable rows' losses added in row order from 0.0 (numpy's order for a column-major ``(2, n)`` array)."""
-    code, delta = int(prm[P_LOSS]), prm[P_DELTA]
-    n = losses.shape[1]
-    width = 1
-    for i in range(n):
-        width = max(width, indptr[i + 1] - indptr[i])
-    xs = np.empty(width)
-    for i in range(n):
-        raw, avg, _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, indptr[i], indptr[i + 1], xs)
-        losses[0, i] = _loss(code, delta, raw, y[i])
-        losses[1, i] = _loss(code, delta, avg, y[i])
-    step = max(1, n_ref // sample_max)
-    m = (n_ref + step - 1) // step
-    m -= 1 - m % 2
-    sample = np.empty(m)
-    for k in range(m):
-        sample[k] = losses[1, k * step]
-    reference = _kth_smallest(sample, m // 2)
-    limit = absurd * reference if reference > 0.0 else np.inf
-    n_usable, raw_sum, avg_sum = 0, 0.0, 0.0
-    for i in range(n):
-        a, b = losses[0, i], losses[1, i]
-        usable[i] = abs(a) <= OVERFLOW_LOSS and abs(b) <= OVERFLOW_LOSS and min(a, b) <= limit
-        if usable[i]:
-            raw_sum += a
-            avg_sum += b
-            n_usable += 1
-    return reference, n_usable, raw_sum, avg_sum

@@ -16,7 +16,7 @@ from .features import FeatureMapper, Rows
 from .snapshot import pack, unpack
 from .spec import ModelSpec
 
-__all__ = ["ITERATES", "LinearModel", "Outcome", "step_scale_change"]
+__all__ = ["ITERATES", "LinearModel", "Outcome"]
 
 #: Names of the two iterates a model can score with.
 ITERATES = {"raw": 0, "averaged": 1}
@@ -177,7 +177,7 @@ class LinearModel:
     def score_window(self, rows: Rows, y: np.ndarray, n_ref: int, sample_max: int,
                      absurd: float) -> tuple[np.ndarray, np.ndarray, tuple[float, float], int, float]:
         """The held-out monitor's figures of ``rows`` (targets ``y``) in one compiled pass
-        (``kernels.score_window``): ``(losses, usable, sums, n_usable, reference)``, the losses of both
+        (``readouts.score_window``): ``(losses, usable, sums, n_usable, reference)``, the losses of both
         iterates (row 0 raw, row 1 averaged), which rows are usable, the sums of their losses (raw,
         averaged), how many, and the reference median."""
         n = len(rows)
@@ -440,14 +440,6 @@ class LinearModel:
 
     def __repr__(self) -> str:
         return f"LinearModel(loss={self._spec.loss!r}, rule={self._spec.rule!r}, updates={self.n_updates})"
-
-
-def step_scale_change(old: float, new: float, cause: str, shrink: float) -> tuple[str, dict]:
-    """The reason and evidence of a ``step_scale`` incident: the factor on later steps went from ``old``
-    to ``new`` because of a ``"rollback"`` (times ``shrink``) or a ``"restart"`` (back to full size)."""
-    why = (f"a rollback multiplies every later step by {shrink:g}" if cause == "rollback"
-           else "a restart re-warms the step schedule at full size")
-    return f"step scale {old:.6g} -> {new:.6g}: {why}", {"old": old, "new": new, "cause": cause}
 
 
 def _iterate(name: str) -> int:

@@ -35,10 +35,10 @@ from contextlib import suppress
 
 import orjson
 
-from models.linear import step_scale_change
 from service.engine import Engine
 from service.publish import take_snapshot
 from service.errors import JournalUnavailable, NotReady, Overloaded
+from service.monitor.rules import step_scale_change
 from service.events import Event
 from service.storage.guard import StorageGuard
 from service.storage.health import storage_fault

@@ -13,7 +13,7 @@ One rule lives here, *garbage*: the window's mean losses leave out events whose 
 iterates exceeds ``absurd_factor`` times the median of the older window events (a garbage target is
 far from both iterates, so it says nothing about which is better) and losses that overflowed (above
 ``models.losses.OVERFLOW_LOSS``: they would make both means inf or NaN). One compiled pass
-(``models.kernels.score_window``) gives the losses, the median and the usable events.
+(``models.readouts.score_window``) gives the losses, the median and the usable events.
 """
 
 from __future__ import annotations
@@ -24,13 +24,12 @@ from dataclasses import asdict
 import numpy as np
 
 from models import LinearModel, Rows
-from models.linear import step_scale_change
 from models.snapshot import pack, unpack
 
 from service.config import MonitorConfig
 from service.monitor import rules
 from service.monitor.detectors import ChangeDetector
-from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState
+from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState, step_scale_change
 from service.monitor.window import HeldOutWindow
 
 __all__ = ["LAYOUT", "Monitor"]

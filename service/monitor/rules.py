@@ -208,3 +208,11 @@ def rejected_burst(state: RuleState, rejected: int, total: int, cfg: MonitorConf
         return None
     state.reject_open = True
     return f"{bad} of the last {n} events were rejected ({share:.0%})", {"share": share}
+
+
+def step_scale_change(old: float, new: float, cause: str, shrink: float) -> tuple[str, dict]:
+    """The reason and evidence of a ``step_scale`` incident: the factor on later steps went from ``old``
+    to ``new`` because of a ``"rollback"`` (times ``shrink``) or a ``"restart"`` (back to full size)."""
+    why = (f"a rollback multiplies every later step by {shrink:g}" if cause == "rollback"
+           else "a restart re-warms the step schedule at full size")
+    return f"step scale {old:.6g} -> {new:.6g}: {why}", {"old": old, "new": new, "cause": cause}

@@ -1,4 +1,4 @@
-"""The held-out monitor's one compiled pass (``kernels.score_window``) against numpy's own operations.
+"""The held-out monitor's one compiled pass (``readouts.score_window``) against numpy's own operations.
 
 numpy is the reference: the losses are ``models.losses.loss_value`` of the model's margins
 (``LinearModel.score_rows_both``), the reference median is ``np.partition`` of the same regular
@@ -15,7 +15,7 @@ import pytest
 
 from models import LinearModel, Rows
 from models.jit import numba
-from models import kernels as K
+from models import readouts as R
 from models.losses import OVERFLOW_LOSS, loss_value
 
 
@@ -63,7 +63,7 @@ def test_window_figures_equal_numpys(loss, n_ref, sample_max):
 
 @numba.njit
 def _kth(a, k):
-    return K._kth_smallest(a, k)
+    return R._kth_smallest(a, k)
 
 
 def test_selection_equals_numpys_partition():
