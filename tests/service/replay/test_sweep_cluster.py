@@ -62,7 +62,7 @@ def _listening(procs) -> list:
 def _busiest(workers: list) -> psutil.Process:
     for w in workers:
         w.cpu_percent(None)
-    time.sleep(0.25)
+    time.sleep(0.1)
     return max(workers, key=lambda w: w.cpu_percent(None))
 
 
@@ -73,8 +73,9 @@ def test_worker_killed_mid_sweep_loses_no_run(tmp_path, parse):
     ``each-run``: every run parses the feed itself (``--parse-each-run``); ``shared``: the runs share
     one parse copied to both workers, and the retried run uses the copy the other worker still holds
     (or, with every copy gone, reads the feed itself)."""
-    # a shared parse leaves only the learning to each run: a longer feed keeps runs in flight when the kill lands
-    feed = sweepkit.make_feed(tmp_path, 20_000 if parse == "each-run" else 80_000)
+    # a shared parse leaves only the learning to each run: a feed long enough that every run learns for
+    # about a second keeps both workers busy when the kill lands (a worker killed between runs loses none)
+    feed = sweepkit.make_feed(tmp_path, 20_000 if parse == "each-run" else 240_000)
     reference = sweepkit.replay_digests(feed, tmp_path)
     out = tmp_path / "sweep"
     extra = ["--parse-each-run"] if parse == "each-run" else []
