@@ -24,22 +24,9 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from models import InvalidSettings, ModelSpec  # noqa: E402
 
+from service.config_common import ConfigError, model_spec_of, publish_key_of  # noqa: E402
+
 __all__ = ["Config", "ConfigError", "load_config", "parse_config"]
-
-
-class ConfigError(InvalidSettings):
-    """The config file cannot be read or keys have invalid values.
-
-    ``where`` and ``message`` describe the first problem; ``problems`` lists every one found, each a
-    ``(where, message)`` pair, and ``str()`` shows them all, one per line.
-    """
-
-    def __init__(self, message: str, *, where: str = "", problems: list[tuple[str, str]] | None = None) -> None:
-        super().__init__(message, where=where)
-        self.problems = problems or [(where, message)]
-
-    def __str__(self) -> str:
-        return "\n".join(f"{w}: {m}" if w else m for w, m in self.problems)
 
 
 class _Section(BaseModel):
@@ -311,18 +298,11 @@ class Config(_Section):
         return self
 
     def model_spec(self) -> ModelSpec:
-        f, m, c, s, a = self.features, self.model, self.constraint, self.steps, self.averaging
-        return ModelSpec(
-            numeric=tuple(f.numeric), categorical=tuple(f.categorical), hash_bits=f.hash_bits,
-            scaling=f.scaling, warmup_events=f.warmup_events, task=m.task, loss=m.loss,
-            huber_delta=m.huber_delta, l2=m.l2, fit_intercept=m.fit_intercept, constraint=c.set,
-            radius=c.radius, lower=c.lower, upper=c.upper, rule=s.rule, base=s.base, horizon=s.horizon,
-            grad_bound=None if s.grad_bound == "auto" else float(s.grad_bound), averaging=a.scheme,
-            halflife=a.halflife, kernel=m.kernel)
+        return model_spec_of(self)
 
     def publish_key(self) -> str:
         """The Redis hash of ``[publish]`` (its ``key``, or one named after the config)."""
-        return (self.publish.key if self.publish is not None and self.publish.key else f"trimtab.{self.name}.model")
+        return publish_key_of(self)
 
     def resolved(self) -> dict:
         """Every setting with defaults filled in, as plain data."""

@@ -23,6 +23,7 @@ import hashlib
 import math
 from collections import deque
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import orjson
@@ -32,11 +33,13 @@ from models.binary_metrics import RunningBinaryMetrics, binary_metrics
 from models.losses import overflowed
 
 from service.baseline import Baseline
-from service.config import Config
 from service.events import Event, EventValidator
 from service.idhash import HOLDOUT_PREFIX
 from service.monitor.monitor import Monitor
 from service.storage.checkpoint import CheckpointFormatError, read_sections, write_sections
+
+if TYPE_CHECKING:
+    from service.config import Config
 
 __all__ = ["Applied", "Engine", "PreparedBatch", "STATE_COUNTERS", "holdout_fraction"]
 

@@ -33,13 +33,14 @@ import io
 import math
 import re
 from datetime import datetime
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import orjson
 
 from models import InvalidInput
 
-from service.config import Config
+if TYPE_CHECKING:
+    from service.config import Config
 
 __all__ = ["CONTROL_CHARS", "INT64_MAX", "INT64_MIN", "MAX_ID_BYTES", "Event", "EventValidator", "Rejection",
            "check_id", "parse_csv_lines", "parse_ndjson"]

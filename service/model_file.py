@@ -11,13 +11,13 @@ event by hand with numpy; a test runs that example and compares it with the serv
 
 from __future__ import annotations
 
-import functools
-import glob
-import os
-import sys
+from typing import TYPE_CHECKING
 
-from service.config import Config
-from service.storage.journal import fingerprint
+from service.config_common import fingerprint
+from service.version import trimtab_version as _trimtab_version
+
+if TYPE_CHECKING:
+    from service.config import Config
 
 __all__ = ["MODEL_FILE_VERSION", "model_file"]
 
@@ -31,24 +31,6 @@ _HASH = ("BLAKE2b with an 8-byte digest of the UTF-8 text '<feature>\\x1f<value>
 #: carried in the file: the numbers are decision support, not a certified instrument
 CAUTION = ("Decision support only. Where food or medicine temperatures, credit or safety are at stake, keep the "
            "regulated instruments and procedures and follow local regulations and licensed practice.")
-
-
-@functools.cache
-def _trimtab_version() -> str:
-    """The installed trimtab's version, from the first ``trimtab-*.dist-info`` on ``sys.path`` (the
-    one :func:`importlib.metadata.version` reads, without importing that module: 25 ms of a start)."""
-    for entry in sys.path:
-        for meta in glob.glob(os.path.join(glob.escape(entry or "."), "trimtab-*.dist-info", "METADATA")):
-            try:
-                with open(meta, encoding="utf-8") as f:
-                    for line in f:
-                        if line.startswith("Version:"):
-                            return line.split(":", 1)[1].strip()
-                        if not line.strip():
-                            break
-            except OSError:
-                continue
-    return "unknown (not installed as a package)"
 
 
 def model_file(engine, config: Config) -> dict:

@@ -20,17 +20,20 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from models import LinearModel, Rows
 from models.snapshot import pack, unpack
 
-from service.config import MonitorConfig
 from service.monitor import rules
 from service.monitor.detectors import ChangeDetector
 from service.monitor.rules import MIN_EVENTS, CheckFigures, RuleState, step_scale_change
 from service.monitor.window import HeldOutWindow
+
+if TYPE_CHECKING:
+    from service.config import MonitorConfig
 
 __all__ = ["LAYOUT", "Monitor"]
 

@@ -8,11 +8,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from service.config import MonitorConfig
 from service.monitor.detectors import ChangeDetector
+
+if TYPE_CHECKING:
+    from service.config import MonitorConfig
 
 __all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "non_finite_update",
            "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average", "welch_pvalue"]

@@ -32,14 +32,18 @@ import sys
 import threading
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from models import InvalidSettings
 
-from service.config import Config, load_config
+from service.config_cache import load_config_cached
 from service.replay.painter import ReportFailed
 from service.replay.progress import Progress, progress_mode
+
+if TYPE_CHECKING:
+    from service.config import Config
 
 __all__ = ["BAD_LINES_KEPT", "reason_key", "replay_main", "run_all", "run_replay", "write_outputs"]
 
@@ -372,7 +376,8 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
 
 
 def _configs(paths: list[str]) -> list[Config]:
-    configs = [load_config(p) for p in paths]
+    # validated by pydantic once per file; later runs of the same file read the cache (no pydantic)
+    configs = [load_config_cached(p) for p in paths]
     seen: dict[str, str] = {}
     for path, cfg in zip(paths, configs):
         if cfg.name in seen:

@@ -50,7 +50,7 @@ import orjson
 
 from models import TrimtabError
 
-from service.config import ConfigError
+from service.config_common import ConfigError, fingerprint
 from service.storage import seen
 from service.storage.dirlock import DataDirLock
 from service.storage.health import scan_wal, storage_fault
@@ -70,13 +70,6 @@ CREATE TABLE IF NOT EXISTS incidents (n INTEGER PRIMARY KEY AUTOINCREMENT, ts RE
                                       kind TEXT NOT NULL, reason TEXT NOT NULL, evidence BLOB NOT NULL);
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 """ + seen.SCHEMA
-
-
-def fingerprint(config) -> str:
-    """SHA-256 of the settings that decide learned state; a journal only continues under the same."""
-    d = config.resolved()
-    keep = {k: d[k] for k in ("features", "model", "constraint", "steps", "averaging", "monitor")}
-    return hashlib.sha256(orjson.dumps(keep, option=orjson.OPT_SORT_KEYS)).hexdigest()
 
 
 class StorageUnavailable(TrimtabError):

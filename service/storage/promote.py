@@ -24,18 +24,21 @@ import hashlib
 import json
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from models import SnapshotError
 
-from service.config import Config, ConfigError, load_config
+# the learning sections and the fingerprint without pydantic, the journal (sqlite3) only when a data dir
+# is started: a replay writes its runs' states through this module
+from service.config_common import LEARNING_SECTIONS, ConfigError, fingerprint
 from service.engine import Engine
-from service.storage.journal import Journal, fingerprint
+
+if TYPE_CHECKING:
+    from service.config import Config
 
 __all__ = ["LEARNING_SECTIONS", "STATE_FORMAT", "RunState", "read_run_state", "settings_differences", "start_from",
            "write_run_state"]
 
-#: the config sections that decide learned state (the journal's fingerprint covers the same)
-LEARNING_SECTIONS = ("features", "model", "constraint", "steps", "averaging", "monitor")
 #: what ``state.bin`` holds, as ``state.json`` says it
 STATE_FORMAT = "trimtab checkpoint format (docs/checkpoint-format.md): Engine.to_bytes(); load with Engine.from_bytes"
 
@@ -91,6 +94,8 @@ def read_run_state(folder: str | Path) -> RunState:
                           f"{str(meta.get('sha256'))[:16]}...: the file was changed or damaged", where=where)
     learning = meta.get("learning")
     if learning is None and (folder / "config.toml").is_file():
+        from service.config import load_config
+
         resolved = load_config(folder / "config.toml").resolved()
         learning = {k: resolved[k] for k in LEARNING_SECTIONS}
     if learning is None:
@@ -138,6 +143,8 @@ def start_from(config: Config, data_dir: str | Path, folder: str | Path) -> dict
         raise ConfigError(f"{run.folder / 'state.bin'} cannot be read by this version: {exc}",
                           where="--start-from") from None
     source = f"the replay state {run.folder} (state digest {engine.state_digest[:16]}, {engine.events:,} events)"
+    from service.storage.journal import Journal
+
     journal = Journal(data_dir, sync=config.service.journal_sync)
     try:
         journal.claim(fingerprint(config))
