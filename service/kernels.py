@@ -20,7 +20,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import os
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -79,6 +78,8 @@ def build_later() -> bool:
     except OSError:
         return False
     try:
+        import subprocess  # here: only a command that found a module missing starts a build
+
         env = {**os.environ, "PYTHONPATH": os.pathsep.join(filter(None, [str(_ROOT), os.environ.get("PYTHONPATH")]))}
         log = open(lock.with_name("build.log"), "ab")
         with log:

@@ -29,7 +29,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import subprocess
 import sys
 from pathlib import Path
 
@@ -134,6 +133,8 @@ def warm_parallel(groups, kernels=("lazy",)) -> bool:
     cold = not is_cached(everything, kernels)
     helpers = []
     if cold:
+        import subprocess  # here: with the kernels cached no helper starts
+
         env = {**os.environ, "PYTHONPATH": os.pathsep.join(filter(None, [str(_ROOT), os.environ.get("PYTHONPATH")]))}
         for group in groups[1:]:
             cmd = [sys.executable, "-m", "service.warmup", *group]

@@ -20,7 +20,6 @@ The format comes from the suffix (``.ndjson``, ``.jsonl``, ``.json``, ``.csv``, 
 
 from __future__ import annotations
 
-import gzip
 import io
 import os
 import re
@@ -99,7 +98,12 @@ class _Source:
         self.size = max(os.fstat(self.raw.fileno()).st_size, 1)
         gz = self.raw.read(2) == b"\x1f\x8b"
         self.raw.seek(0)
-        self.stream = gzip.GzipFile(fileobj=self.raw, mode="rb") if gz else self.raw
+        if gz:
+            import gzip  # here: most feeds are not compressed
+
+            self.stream = gzip.GzipFile(fileobj=self.raw, mode="rb")
+        else:
+            self.stream = self.raw
 
     def read(self, n: int) -> bytes:
         return self.stream.read(n)

@@ -20,9 +20,7 @@ from __future__ import annotations
 
 import os
 import pickle
-import subprocess
 import sys
-import tempfile
 from pathlib import Path
 
 __all__ = ["Painter", "ReportFailed"]
@@ -40,6 +38,9 @@ class Painter:
     """
 
     def __init__(self, runs: int = 1) -> None:
+        import subprocess  # here: a replay without a report imports this module for ReportFailed only
+        import tempfile
+
         root = str(Path(__file__).resolve().parents[2])
         env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")])))
         # stderr goes to a file, not a pipe: a chatty painter can never block on a full pipe while

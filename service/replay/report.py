@@ -20,7 +20,6 @@ that imports only numpy and matplotlib.
 from __future__ import annotations
 
 import base64
-import html
 import math
 from pathlib import Path
 
@@ -44,6 +43,13 @@ _LOSS_UNITS = {
     "huber": "Huber, target unit",
     "logistic": "log loss, nats",
 }
+
+
+def _escape(text: str) -> str:
+    """:func:`html.escape`, imported on first use: every replay reads :func:`verdict`, only a report draws."""
+    import html
+
+    return html.escape(text)
 
 
 def _events(items: list[dict], limit: int = 6) -> str:
@@ -138,9 +144,9 @@ def _table(runs: list[dict]) -> str:
                  _num(len(r.get("rollbacks") or [])), _num(len(r.get("restarts") or [])),
                  _num(len(r.get("warnings") or [])), _num(round(r.get("events_per_second") or 0)),
                  _certificate(r.get("certificate") or {}), f"<code>{r['state_digest'][:16]}</code>"]
-        rows.append("<tr>" + "".join(f"<td>{c if c.startswith('<code>') else html.escape(c)}</td>" for c in cells)
+        rows.append("<tr>" + "".join(f"<td>{c if c.startswith('<code>') else _escape(c)}</td>" for c in cells)
                     + "</tr>")
-    return ("<div class='wide'><table><thead><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head)
+    return ("<div class='wide'><table><thead><tr>" + "".join(f"<th>{_escape(h)}</th>" for h in head)
             + "</tr></thead><tbody>" + "".join(rows) + "</tbody></table></div>")
 
 
@@ -158,11 +164,11 @@ def _binary_table(runs: list[dict]) -> str:
             cells = [r["name"], f"{label} ({metrics.get('iterate', '-')} iterate)", _num(m.get("count")),
                      _num(m.get("accuracy")), _num(m.get("roc_auc")), _num(m.get("brier")), _num(m.get("log_loss")),
                      _num(m.get("base_rate"))]
-            rows.append("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in cells) + "</tr>")
+            rows.append("<tr>" + "".join(f"<td>{_escape(c)}</td>" for c in cells) + "</tr>")
     if not rows:
         return ""
     return ("<h3>Binary metrics</h3><div class='wide'><table><thead><tr>"
-            + "".join(f"<th>{html.escape(h)}</th>" for h in head) + "</tr></thead><tbody>" + "".join(rows)
+            + "".join(f"<th>{_escape(h)}</th>" for h in head) + "</tr></thead><tbody>" + "".join(rows)
             + "</tbody></table></div><p><small>The progressive ROC AUC is that of the probabilities rounded down "
               "to 1/1024 (a running histogram); the held-out one is exact.</small></p>")
 
@@ -171,7 +177,7 @@ def _warnings(run: dict) -> str:
     items = run.get("warnings") or []
     if not items:
         return ""
-    return "<ul class='warnings'>" + "".join(f"<li><b>Warning:</b> {html.escape(w)}</li>" for w in items) + "</ul>"
+    return "<ul class='warnings'>" + "".join(f"<li><b>Warning:</b> {_escape(w)}</li>" for w in items) + "</ul>"
 
 
 def _scale(incident: dict) -> str:
@@ -185,7 +191,7 @@ def _incidents(run: dict) -> str:
     items.sort(key=lambda t: t[1]["event"])
     if not items:
         return "<p>No rollbacks or restarts.</p>"
-    lis = "".join(f"<li><b>{kind}</b> at event {i['event']:,}: {html.escape(i['reason'])}{_scale(i)}</li>"
+    lis = "".join(f"<li><b>{kind}</b> at event {i['event']:,}: {_escape(i['reason'])}{_scale(i)}</li>"
                   for kind, i in items[:40])
     more = f"<li>... and {len(items) - 40} more (see summary.json)</li>" if len(items) > 40 else ""
     return f"<ul>{lis}{more}</ul>"
@@ -195,15 +201,15 @@ def _rejections(run: dict) -> str:
     reasons = run.get("rejected_by_reason") or {}
     if not reasons:
         return ""
-    lis = "".join(f"<li>{n:,} &times; {html.escape(k)}</li>" for k, n in sorted(reasons.items(), key=lambda t: -t[1]))
+    lis = "".join(f"<li>{n:,} &times; {_escape(k)}</li>" for k, n in sorted(reasons.items(), key=lambda t: -t[1]))
     return f"<details><summary>{run['rejected']:,} rejected lines by reason</summary><ul>{lis}</ul></details>"
 
 
 def _notes_html(notes: list[dict]) -> str:
     if not notes:
         return ""
-    lis = "".join(f"<li>{html.escape(n['label'])}: events {n['start']:,} to {n['stop']:,}</li>" if "start" in n
-                  else f"<li>{html.escape(n['label'])}: event {n['event']:,}</li>" for n in notes)
+    lis = "".join(f"<li>{_escape(n['label'])}: events {n['start']:,} to {n['stop']:,}</li>" if "start" in n
+                  else f"<li>{_escape(n['label'])}: event {n['event']:,}</li>" for n in notes)
     return f"<h2>What the feed contains</h2><ul>{lis}</ul>"
 
 
@@ -217,7 +223,7 @@ background:#fdf5ef}ul.warnings{color:#8c2d04}img{max-width:100%;border:1px solid
 
 def _img(png: bytes, alt: str) -> str:
     data = base64.b64encode(png).decode("ascii")
-    return f"<img src='data:image/png;base64,{data}' alt='{html.escape(alt)}'>"
+    return f"<img src='data:image/png;base64,{data}' alt='{_escape(alt)}'>"
 
 
 def write_report(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
@@ -244,19 +250,19 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
         acted = " acted" if (run.get("rollbacks") or run.get("restarts") or run.get("warnings")
                              or run.get("diverged")) else ""
         sections.append(
-            f"<h2>{html.escape(run['name'])}</h2><p class='verdict{acted}'>{html.escape(run['verdict'])}</p>"
+            f"<h2>{_escape(run['name'])}</h2><p class='verdict{acted}'>{_escape(run['verdict'])}</p>"
             f"{_warnings(run)}{_img(png, 'loss with its baseline, step size and distance of run ' + run['name'])}"
             f"<h3>What the monitor did</h3>{_incidents(run)}{_rejections(run)}")
     compare = ""
     if len(runs) > 1:
         unit = _LOSS_UNITS.get(results[0].get("loss", "squared"), "loss")
         compare = _img(compare_figure(runs, plots, unit, notes), "progressive and held-out loss of every run")
-    feeds = ", ".join(html.escape(f) for f in summary.get("feeds", [summary.get("feed")]))
-    verdicts = "".join(f"<li><b>{html.escape(r['name'])}</b>: {html.escape(r['verdict'])}</li>" for r in runs)
+    feeds = ", ".join(_escape(f) for f in summary.get("feeds", [summary.get("feed")]))
+    verdicts = "".join(f"<li><b>{_escape(r['name'])}</b>: {_escape(r['verdict'])}</li>" for r in runs)
     title = "Runs side by side" if len(runs) > 1 else "The run"
     page = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>trimtab replay report</title>"
             f"<style>{_STYLE}</style></head><body><h1>Replay report</h1><p>Feed: <code>{feeds}</code></p>"
-            f"<div class='caution'><b>Caution.</b> {html.escape(caution)}</div>"
+            f"<div class='caution'><b>Caution.</b> {_escape(caution)}</div>"
             f"{_notes_html(notes)}<h2>{title}</h2>{_table(runs)}{_binary_table(runs)}<ul>{verdicts}</ul>{compare}"
             f"{''.join(sections)}<p><small>Loss is the config's loss; the baseline predicts the running mean "
             "of the target (the base rate for a binary task) from the events learned so far, scored on the same "
