@@ -258,6 +258,8 @@ def _clean(obj):
     if isinstance(obj, dict):
         return {str(k): _clean(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
+        if all(type(v) is float and v - v == 0.0 for v in obj):  # finite floats (a model's coefficients): as they are
+            return list(obj)
         return [_clean(v) for v in obj]
     if isinstance(obj, (np.floating, float)):
         x = float(obj)
