@@ -4,16 +4,18 @@ without importing pydantic (about 0.15 s of a start, a third of a short replay's
 :func:`load_config_cached` validates a file it has not seen with :func:`service.config.load_config`
 (pydantic, strict: every check and every message as always) and stores the validated settings in
 ``<cache>/configs/<key>.json`` (``<cache>`` as for the compiled kernels: ``TRIMTAB_CACHE_DIR``, else
-``$XDG_CACHE_HOME/trimtab``, else ``~/.cache/trimtab``). The key is the SHA-256 of the file's bytes,
-the source of the modules that define and check the settings (``service/config.py``,
-``service/config_common.py``, this one), pydantic's ``version.py``, Python's version and trimtab's.
+``$XDG_CACHE_HOME/trimtab``, else ``~/.cache/trimtab``; the newest :data:`KEEP` entries are kept).
+The key is the SHA-256 of the file's bytes, the source of the modules that define and check the
+settings (``service/config.py``, ``service/config_common.py``, this one), pydantic's ``version.py``,
+Python's version and trimtab's.
 A later load whose key finds an entry rebuilds the settings as a :class:`CachedConfig` from it.
 
 Any other case validates in full: a changed file (another key), another trimtab, pydantic or Python,
 an entry that cannot be read, is not JSON, or does not hold the key and the expected parts. An entry
 is written only if what it rebuilds is the validated config value for value (same types, same
 ``resolved()``), and a failed write is ignored (the cache only saves time). Each cache hit still
-builds the :class:`models.ModelSpec` (its checks run again, as in validation).
+builds the :class:`models.ModelSpec` (its checks run again, as in validation; an entry they refuse
+is validated in full, so every error a user sees comes from :func:`service.config.load_config`).
 
 A :class:`CachedConfig` offers what consumers of a validated config read: the sections as attributes
 (``config.monitor.window``; ``feed`` and ``publish`` may be ``None``), :meth:`CachedConfig.model_spec`,
@@ -30,15 +32,15 @@ import os
 import sys
 from pathlib import Path
 
-from models import InvalidSettings
-
-from service.config_common import ConfigError, model_spec_of, publish_key_of
+from service.config_common import model_spec_of, publish_key_of
 from service.version import trimtab_version
 
 __all__ = ["CachedConfig", "CachedSection", "config_key", "load_config_cached"]
 
 #: Part of every key and entry: raise it when an entry's layout changes.
 FORMAT = 1
+#: Entries kept (the newest written; an entry is about 3 kB).
+KEEP = 64
 _HERE = Path(__file__).resolve().parent
 _SCHEMA_SOURCES = (_HERE / "config.py", _HERE / "config_common.py", _HERE / "config_cache.py")
 
@@ -118,15 +120,12 @@ def config_key(data: bytes) -> str:
 
 
 def _rebuild(entry, key: str) -> CachedConfig:
-    """The config an entry holds; ``ValueError`` when it is not an entry of ``key``."""
+    """The config an entry holds; an exception when it is not a usable entry of ``key``."""
     if not (isinstance(entry, dict) and entry.get("format") == FORMAT and entry.get("key") == key
             and isinstance(entry.get("values"), dict) and isinstance(entry.get("resolved"), dict)):
         raise ValueError("not an entry of this key")
     config = CachedConfig(entry["values"], entry["resolved"])
-    try:
-        config.model_spec()  # the model's own checks, as validation ran them (a ConfigError naming the key)
-    except InvalidSettings as exc:
-        raise ConfigError(exc.message, where=exc.where) from None
+    config.model_spec()  # the model's own checks run again, as in validation: an entry they refuse is not used
     return config
 
 
@@ -160,6 +159,9 @@ def _store(folder: Path, key: str, config) -> None:
         os.replace(tmp, folder / f"{key}.json")
     finally:
         tmp.unlink(missing_ok=True)
+    entries = sorted(folder.glob("*.json"), key=lambda e: e.stat().st_mtime_ns, reverse=True)
+    for old in entries[KEEP:]:
+        old.unlink(missing_ok=True)
 
 
 def load_config_cached(path: str | Path):
@@ -177,8 +179,6 @@ def load_config_cached(path: str | Path):
     if data is not None:
         try:
             return _rebuild(json.loads((folder / f"{key}.json").read_bytes()), key)
-        except ConfigError:
-            raise
         except Exception:  # noqa: BLE001 - no entry, or one that cannot be used: validate in full
             pass
     from service.config import load_config, parse_config
