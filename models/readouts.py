@@ -43,6 +43,11 @@ def materialize(lazy, st, sc, iterate, out):
 @_jit
 def iterate_distance(lazy, st, sc):
     """``||(w_raw, b_raw) - (w_avg, b_avg)||`` in one pass, without building either vector."""
+    return _distance(lazy, st, sc)
+
+
+@_inline
+def _distance(lazy, st, sc):
     if sc[S_Z] <= 0.0:
         return 0.0
     d2 = 0.0
@@ -99,14 +104,17 @@ def _kth_smallest(a, k):
 
 @_jit
 def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref, sample_max, absurd, losses,
-                 usable):
+                 usable, above):
     """The held-out monitor's figures of a window of rows in one pass (the rules that read them are in
     ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
     and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
-    the smaller is at most ``absurd`` times the reference. The reference is the median averaged-iterate
-    loss of a regular sample of rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count
-    (a partition finds the median). Returns ``(reference, n_usable, raw_sum, avg_sum)``, the sums of the
-    usable rows' losses added in row order from 0.0 (numpy's order for a column-major ``(2, n)`` array)."""
+    the smaller is at most ``absurd`` times the reference; ``above``, 1.0 or 0.0 for each of the last
+    ``len(above)`` rows: whether its averaged-iterate loss exceeds the reference. The reference is the
+    median averaged-iterate loss of a regular sample of rows ``0..n_ref``: every ``max(1, n_ref //
+    sample_max)``-th, an odd count (a partition finds the median). Returns ``(reference, n_usable,
+    raw_sum, avg_sum, n_above, distance)``: the sums of the usable rows' losses added in row order from
+    0.0 (numpy's order for a column-major ``(2, n)`` array), how many rows are above, and
+    :func:`iterate_distance`."""
     code, delta = int(prm[P_LOSS]), prm[P_DELTA]
     n = losses.shape[1]
     width = 1
@@ -133,4 +141,8 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
             raw_sum += a
             avg_sum += b
             n_usable += 1
-    return reference, n_usable, raw_sum, avg_sum
+    first, n_above = n - above.shape[0], 0
+    for i in range(first, n):
+        above[i - first] = 1.0 if losses[1, i] > reference else 0.0
+        n_above += int(above[i - first])
+    return reference, n_usable, raw_sum, avg_sum, n_above, _distance(lazy, st, sc)

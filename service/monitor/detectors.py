@@ -5,8 +5,9 @@ and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing
 river's own classes, loaded from their modules without ``river.drift``'s package import, which
 imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
 
-river's detector (and with it ``river.stats``, about 0.1 s of a start) is built when the first value
-arrives, not with the monitor: a replay learns its first events before the monitor's first check.
+river's module (and with it ``river.stats``, about 0.1 s of a start) is loaded by a background thread
+that a new detector starts, and the detector is built when the first value arrives: the learning thread
+does not wait for the load (it usually waits for its first events meanwhile).
 
 Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
 the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
@@ -31,11 +32,15 @@ _LOADING = threading.Lock()
 _PH_FIELDS = ("_sum_increase", "_sum_decrease", "_min_increase", "_max_decrease")
 
 
+def _loaded(module: str):
+    return sys.modules.get(f"river.drift.{module}") or sys.modules.get(f"_trimtab_river_{module}")
+
+
 def river_detector(name: str):
     """river's detector class ``name`` (``"PageHinkley"`` or ``"ADWIN"``), see the module docstring."""
     module = {"PageHinkley": "page_hinkley", "ADWIN": "adwin"}[name]
-    with _LOADING:  # parse threads build engines at once: none may see a module still executing
-        loaded = sys.modules.get(f"river.drift.{module}") or sys.modules.get(f"_trimtab_river_{module}")
+    with _LOADING:  # a detector's background load and the threads that use it: none may see a module still executing
+        loaded = _loaded(module)
         if loaded is None:
             path = Path(importlib.util.find_spec("river").origin).parent / "drift" / f"{module}.py"
             spec = importlib.util.spec_from_file_location(f"_trimtab_river_{module}", path)
@@ -54,8 +59,9 @@ class ChangeDetector:
     def __init__(self, kind: str, **params) -> None:
         if kind not in self.KINDS:
             raise ValueError(f"Invalid detector {kind!r}. Valid values are: {', '.join(self.KINDS)}")
-        self.kind = kind
-        self.params = dict(params)
+        self.kind, self.params, self._river = kind, dict(params), "PageHinkley" if kind == "page_hinkley" else "ADWIN"
+        if not _loaded(kind):
+            threading.Thread(target=river_detector, args=(self._river,), name="trimtab-river-load", daemon=True).start()
         self.reset()
 
     def reset(self) -> None:
@@ -65,7 +71,7 @@ class ChangeDetector:
     @property
     def _det(self):
         if self._fresh is None:
-            self._fresh = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+            self._fresh = river_detector(self._river)(**self.params)
         return self._fresh
 
     def rearm(self) -> None:
@@ -80,17 +86,17 @@ class ChangeDetector:
 
     def feed(self, values) -> bool:
         """Feed ``values`` in order up to the first that signals a change (``True``; the rest are not fed)."""
+        if self._fresh is not None and self._fresh.drift_detected:  # only the last value of a feed can be
+            self.reset()
         det = self._det
+        update = det.update
         for x in values:
-            if det.drift_detected:
-                self.reset()
-                det = self._det
             if self._fed is not None:
                 if len(self._fed) >= ADWIN_MEMORY:  # rebuilt from the newest half, as a restored state is
                     self.load_state({"kind": "adwin"}, np.asarray(self._fed[len(self._fed) // 2:]))
-                    det = self._det
+                    det, update = self._det, self._det.update
                 self._fed.append(x)
-            det.update(x)
+            update(x)
             if det.drift_detected:
                 return True
         return False

@@ -120,13 +120,13 @@ class Monitor:
         if not len(events):
             return None
         n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
-        losses, usable, sums, n_usable, reference = model.score_window(
-            rows, y, n_old if n_old >= MIN_EVENTS else len(events), _MEDIAN_SAMPLE, self._absurd)
-        raw, avg = (sums[0] / n_usable, sums[1] / n_usable) if n_usable else (math.nan, math.nan)
+        s = model.score_window(rows, y, n_old if n_old >= MIN_EVENTS else len(events), _MEDIAN_SAMPLE, self._absurd,
+                               n_old)
+        raw, avg = (s.sums[0] / s.n_usable, s.sums[1] / s.n_usable) if s.n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
-        return CheckFigures(losses, events, usable, n_usable, n_old, losses[1, n_old:] > reference, raw, avg,
-                            model.distance(), allowance)
+        return CheckFigures(s.losses, events, s.usable, s.n_usable, n_old, s.above, s.n_above, raw, avg, s.distance,
+                            allowance)
 
     def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
         """Score the window up to ``event``, apply the rules, act; return the check's record."""
@@ -141,7 +141,7 @@ class Monitor:
             record.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, held_out=len(fig.events),
                           excluded=len(fig.events) - fig.n_usable, allowance=fig.allowance)
             if len(fig.above) and fig.n_old >= MIN_EVENTS:
-                record["exceedance"] = np.count_nonzero(fig.above) / len(fig.above)
+                record["exceedance"] = fig.n_above / len(fig.above)
         rolled = self._rollback_rules(model, fig, event, ts, record)
         if fig is not None and self._detector is not None and not rolled:
             self._change_rules(model, fig, event, ts, record)

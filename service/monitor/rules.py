@@ -56,7 +56,8 @@ class CheckFigures:
     usable: np.ndarray  # not garbage: under at least one iterate within ``absurd_factor`` references
     n_usable: int
     n_old: int
-    above: np.ndarray  # per new event: its averaged-iterate loss is above the median of the older ones
+    above: np.ndarray  # per new event, 1.0 or 0.0: its averaged-iterate loss is above the median of the older ones
+    n_above: int
     raw: float  # mean loss over the usable events, raw iterate
     averaged: float
     distance: float  # ||w_raw - w_avg||
@@ -121,7 +122,7 @@ def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
     values (Siegmund's approximation of the average run length: some 60,000 events at a 5% hold-out),
     9 in 10 above in about 30 values, 6 in 10 in about 200. Garbage counts too: an alarm only opens
     the question that :func:`change_confirmed` answers."""
-    return detector.feed(fig.above.astype(np.float64).tolist())
+    return detector.feed(fig.above.tolist())
 
 
 def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) -> dict | None:
