@@ -199,10 +199,7 @@ class LinearModel:
         reference, n_usable, raw_sum, avg_sum, n_above, distance = C.score_window(
             self._lazy, self._st, self._sc, self._prm, self._mean, self._std, rows.indptr, rows.indices,
             rows.values, y, n_ref, sample_max, absurd, losses, usable, above)
-        # the sums numpy gives for ``losses[:, usable]``, bit for bit: pairwise along the rows when every row
-        # is usable (no copy), in row order (the kernel's) over the column-major copy it makes otherwise
-        sums = tuple(losses.sum(axis=1).tolist()) if n_usable == n else (raw_sum, avg_sum)
-        return WindowScores(losses, usable, sums, n_usable, reference, above, n_above, distance)
+        return WindowScores(losses, usable, (raw_sum, avg_sum), n_usable, reference, above, n_above, distance)
 
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""

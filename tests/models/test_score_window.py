@@ -87,3 +87,17 @@ def test_selection_equals_numpys_partition():
         k = int(rng.integers(0, n))
         want, got = np.partition(a, k)[k], _kth(a.copy(), k)
         assert want == got or (np.isnan(want) and np.isnan(got)), (a, k)
+
+
+@numba.njit
+def _row_sums(a):
+    return R._numpy_row_sum(a, 0), R._numpy_row_sum(a, 1)
+
+
+def test_row_sums_equal_numpys():
+    """The kernel's sums of a window's losses are numpy's ``losses.sum(axis=1)``, bit for bit, on every
+    length up to 300 and 200 longer ones (heavy-tailed values, so the order of the additions shows)."""
+    rng = np.random.default_rng(5)
+    for n in list(range(1, 301)) + [int(k) for k in rng.integers(301, 20_000, size=200)]:
+        losses = np.abs(rng.standard_cauchy((2, n))) * rng.random()
+        assert _row_sums(losses) == tuple(losses.sum(axis=1).tolist()), n
