@@ -79,9 +79,7 @@ def too_far_from_average(fig: CheckFigures, limit: float) -> str | None:
     """**Distance** -> rollback. Watches ``||w_raw - w_avg||``. Threshold: ``divergence_radii`` times
     the constraint's radius (without one: times the averaged iterate's norm, at least 1). The average
     moves slowly, so a raw iterate this far from it has been thrown off by a few events."""
-    if fig.distance > limit:
-        return f"raw iterate {fig.distance:.3g} from the average (limit {limit:.3g})"
-    return None
+    return f"raw iterate {fig.distance:.3g} from the average (limit {limit:.3g})" if fig.distance > limit else None
 
 
 def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, recent: int) -> str | None:
@@ -140,8 +138,7 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     fresh = fig.after(state.alarm_check)
     early = int(fig.events.searchsorted(state.alarm_from))  # events[:early]: before the alarm
     pick, before = fig.usable[fresh:], fig.usable[:early]
-    n = int(np.count_nonzero(pick))
-    garbage = len(pick) - n
+    n, garbage = int(np.count_nonzero(pick)), int(np.count_nonzero(~pick))
     if n < MIN_FRESH or garbage * 2 >= n + garbage or np.count_nonzero(before) < MIN_EVENTS:
         return None
     raw, avg = fig.losses

@@ -108,7 +108,7 @@ def test_threads_loading_a_detector_at_once_all_get_river_s_class(name, monkeypa
     def load():
         start.wait()
         try:
-            got.append(river_detector(name))
+            got.append(river_detector(module))
         except Exception as exc:  # recorded, so that the assertion below names it
             got.append(exc)
 
