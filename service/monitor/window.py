@@ -30,7 +30,7 @@ class HeldOutWindow:
         """Buffer rows ``(lo, hi)`` of the newest ``size`` events up to event ``upto`` (``None``: all)."""
         hi = self._hi
         if upto is not None and hi > self._lo and self._events[hi - 1] > upto:
-            hi = self._lo + int(np.searchsorted(self._events[self._lo:hi], upto, "right"))
+            hi = self._lo + int(self._events[self._lo:hi].searchsorted(upto, "right"))
         return max(self._lo, hi - self.size), hi
 
     def __len__(self) -> int:
