@@ -80,10 +80,10 @@ class ChangeDetector:
     def feed(self, values) -> bool:
         """Feed ``values`` in order up to the first that signals a change (``True``; the rest are not fed)."""
         det = self._det
+        if det.drift_detected:  # at the last value of the previous feed (a feed stops at a detection)
+            self.reset()
+            det = self._det
         for x in values:
-            if det.drift_detected:
-                self.reset()
-                det = self._det
             if self._fed is not None:
                 if len(self._fed) >= ADWIN_MEMORY:  # rebuilt from the newest half, as a restored state is
                     self.load_state({"kind": "adwin"}, np.asarray(self._fed[len(self._fed) // 2:]))
