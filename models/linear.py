@@ -5,6 +5,7 @@ from __future__ import annotations
 import copy
 import math
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -16,7 +17,7 @@ from .features import FeatureMapper, Rows
 from .snapshot import pack, unpack
 from .spec import ModelSpec
 
-__all__ = ["ITERATES", "LinearModel", "Outcome"]
+__all__ = ["ITERATES", "LinearModel", "Outcome", "WindowScores"]
 
 #: Names of the two iterates a model can score with.
 ITERATES = {"raw": 0, "averaged": 1}
@@ -38,6 +39,19 @@ class Outcome:
     @classmethod
     def empty(cls, n: int) -> Outcome:
         return cls(np.zeros(n), np.full(n, np.nan), np.zeros(n, dtype=np.int8))
+
+
+class WindowScores(NamedTuple):
+    """:meth:`LinearModel.score_window`'s figures of a window of rows."""
+
+    losses: np.ndarray  # (2, n): row 0 the raw iterate's loss of each row, row 1 the averaged one's
+    usable: np.ndarray  # bool per row: neither loss overflowed and the smaller is within ``absurd`` references
+    sums: tuple  # the usable rows' losses summed: (raw, averaged)
+    n_usable: int
+    reference: float  # the median averaged-iterate loss of the reference rows
+    above: np.ndarray  # 1.0 or 0.0 per row from ``new_from`` on: its averaged-iterate loss is above the reference
+    n_above: int
+    distance: float  # ||w_raw - w_avg||, intercepts included
 
 
 class LinearModel:
@@ -174,21 +188,18 @@ class LinearModel:
                           rows.indptr, rows.indices, rows.values, out)
         return out
 
-    def score_window(self, rows: Rows, y: np.ndarray, n_ref: int, sample_max: int,
-                     absurd: float) -> tuple[np.ndarray, np.ndarray, tuple[float, float], int, float]:
+    def score_window(self, rows: Rows, y: np.ndarray, n_ref: int, sample_max: int, absurd: float,
+                     new_from: int | None = None) -> WindowScores:
         """The held-out monitor's figures of ``rows`` (targets ``y``) in one compiled pass
-        (``readouts.score_window``): ``(losses, usable, sums, n_usable, reference)``, the losses of both
-        iterates (row 0 raw, row 1 averaged), which rows are usable, the sums of their losses (raw,
-        averaged), how many, and the reference median."""
+        (``readouts.score_window``; its docstring defines them), for the rows from ``new_from`` on (none:
+        no row) whether each is above the reference, and the distance between the iterates."""
         n = len(rows)
         losses, usable = np.empty((2, n)), np.empty(n, dtype=np.bool_)
-        reference, n_usable, raw_sum, avg_sum = C.score_window(
+        above = np.empty(n - (n if new_from is None else new_from))
+        reference, n_usable, raw_sum, avg_sum, n_above, distance = C.score_window(
             self._lazy, self._st, self._sc, self._prm, self._mean, self._std, rows.indptr, rows.indices,
-            rows.values, y, n_ref, sample_max, absurd, losses, usable)
-        # the sums numpy gives for ``losses[:, usable]``, bit for bit: pairwise along the rows when every row
-        # is usable (no copy), in row order (the kernel's) over the column-major copy it makes otherwise
-        sums = tuple(losses.sum(axis=1).tolist()) if n_usable == n else (raw_sum, avg_sum)
-        return losses, usable, sums, n_usable, reference
+            rows.values, y, n_ref, sample_max, absurd, losses, usable, above)
+        return WindowScores(losses, usable, (raw_sum, avg_sum), n_usable, reference, above, n_above, distance)
 
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:
         """Predictions of ``rows``: the score for regression, ``P(y = 1)`` for binary tasks."""

@@ -43,6 +43,11 @@ def materialize(lazy, st, sc, iterate, out):
 @_jit
 def iterate_distance(lazy, st, sc):
     """``||(w_raw, b_raw) - (w_avg, b_avg)||`` in one pass, without building either vector."""
+    return _distance(lazy, st, sc)
+
+
+@_inline
+def _distance(lazy, st, sc):
     if sc[S_Z] <= 0.0:
         return 0.0
     d2 = 0.0
@@ -97,16 +102,65 @@ def _kth_smallest(a, k):
     return a[k]
 
 
+@_inline
+def _block_sum(a, r, lo, n):
+    """numpy's sum of a block of ``a[r, lo:lo + n]``, ``n <= 128``: eight running sums, then the rest."""
+    if n < 8:
+        res = -0.0
+        for i in range(lo, lo + n):
+            res += a[r, i]
+        return res
+    s0, s1, s2, s3, s4, s5, s6, s7 = a[r, lo], a[r, lo + 1], a[r, lo + 2], a[r, lo + 3], a[r, lo + 4], \
+        a[r, lo + 5], a[r, lo + 6], a[r, lo + 7]
+    i = lo + 8
+    while i < lo + n - n % 8:
+        s0, s1, s2, s3 = s0 + a[r, i], s1 + a[r, i + 1], s2 + a[r, i + 2], s3 + a[r, i + 3]
+        s4, s5, s6, s7 = s4 + a[r, i + 4], s5 + a[r, i + 5], s6 + a[r, i + 6], s7 + a[r, i + 7]
+        i += 8
+    res = ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
+    for k in range(i, lo + n):
+        res += a[r, k]
+    return res
+
+
+@_inline
+def _numpy_row_sum(a, r):
+    """``a[r].sum()`` bit for bit: numpy's pairwise summation (``pairwise_sum`` in numpy's
+    ``loops_utils.h``: halves, rounded down to a multiple of 8, until blocks of at most 128), added to
+    0.0; its recursion unrolled on a stack of (start, length, halves summed)."""
+    todo, sums = np.empty((64, 3), np.int64), np.empty(64)
+    todo[0, 0], todo[0, 1], todo[0, 2], top, done = 0, a.shape[1], 0, 1, 0
+    while top:
+        top -= 1
+        lo, n, halves = todo[top, 0], todo[top, 1], todo[top, 2]
+        if n <= 128:
+            sums[done] = _block_sum(a, r, lo, n)
+            done += 1
+        elif halves:
+            done -= 1
+            sums[done - 1] += sums[done]
+        else:
+            n2 = n // 2 - (n // 2) % 8
+            todo[top, 2] = 1
+            todo[top + 1, 0], todo[top + 1, 1], todo[top + 1, 2] = lo + n2, n - n2, 0
+            todo[top + 2, 0], todo[top + 2, 1], todo[top + 2, 2] = lo, n2, 0
+            top += 3
+    return 0.0 + sums[0]
+
+
 @_jit
 def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref, sample_max, absurd, losses,
-                 usable):
+                 usable, above):
     """The held-out monitor's figures of a window of rows in one pass (the rules that read them are in
     ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
     and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
-    the smaller is at most ``absurd`` times the reference. The reference is the median averaged-iterate
-    loss of a regular sample of rows ``0..n_ref``: every ``max(1, n_ref // sample_max)``-th, an odd count
-    (a partition finds the median). Returns ``(reference, n_usable, raw_sum, avg_sum)``, the sums of the
-    usable rows' losses added in row order from 0.0 (numpy's order for a column-major ``(2, n)`` array)."""
+    the smaller is at most ``absurd`` times the reference; ``above``, 1.0 or 0.0 for each of the last
+    ``len(above)`` rows: whether its averaged-iterate loss exceeds the reference. The reference is the
+    median averaged-iterate loss of a regular sample of rows ``0..n_ref``: every ``max(1, n_ref //
+    sample_max)``-th, an odd count (a partition finds the median). Returns ``(reference, n_usable,
+    raw_sum, avg_sum, n_above, distance)``: the sums of the usable rows' losses as numpy sums
+    ``losses[:, usable]`` (pairwise along each row when every row is usable, else in row order from 0.0
+    over the column-major copy numpy makes), how many rows are above, and :func:`iterate_distance`."""
     code, delta = int(prm[P_LOSS]), prm[P_DELTA]
     n = losses.shape[1]
     width = 1
@@ -133,4 +187,10 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
             raw_sum += a
             avg_sum += b
             n_usable += 1
-    return reference, n_usable, raw_sum, avg_sum
+    if n_usable == n:
+        raw_sum, avg_sum = _numpy_row_sum(losses, 0), _numpy_row_sum(losses, 1)
+    first, n_above = n - above.shape[0], 0
+    for i in range(first, n):
+        above[i - first] = 1.0 if losses[1, i] > reference else 0.0
+        n_above += int(above[i - first])
+    return reference, n_usable, raw_sum, avg_sum, n_above, _distance(lazy, st, sc)

@@ -3,10 +3,9 @@
 Page-Hinkley (E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41) and ADWIN (A. Bifet
 and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing", SIAM SDM) are
 river's own classes, loaded from their modules without ``river.drift``'s package import, which
-imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``).
-
-river's detector (and with it ``river.stats``, about 0.1 s of a start) is built when the first value
-arrives, not with the monitor: a replay learns its first events before the monitor's first check.
+imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``),
+by a background thread that a new detector starts (with ``river.stats``, about 0.1 s of CPU): the
+learning thread meanwhile waits for its first events, not for river.
 
 Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
 the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
@@ -29,12 +28,12 @@ __all__ = ["ADWIN_MEMORY", "ChangeDetector", "river_detector"]
 ADWIN_MEMORY = 1 << 16
 _LOADING = threading.Lock()
 _PH_FIELDS = ("_sum_increase", "_sum_decrease", "_min_increase", "_max_decrease")
+_CLASSES = {"adwin": "ADWIN", "page_hinkley": "PageHinkley"}  # module: river's class
 
 
-def river_detector(name: str):
-    """river's detector class ``name`` (``"PageHinkley"`` or ``"ADWIN"``), see the module docstring."""
-    module = {"PageHinkley": "page_hinkley", "ADWIN": "adwin"}[name]
-    with _LOADING:  # parse threads build engines at once: none may see a module still executing
+def river_detector(module: str):
+    """river's detector class of ``module`` (``"page_hinkley"`` or ``"adwin"``), see the module docstring."""
+    with _LOADING:  # a background load and the threads that use it: none may see a module still executing
         loaded = sys.modules.get(f"river.drift.{module}") or sys.modules.get(f"_trimtab_river_{module}")
         if loaded is None:
             path = Path(importlib.util.find_spec("river").origin).parent / "drift" / f"{module}.py"
@@ -42,20 +41,20 @@ def river_detector(name: str):
             loaded = importlib.util.module_from_spec(spec)
             spec.loader.exec_module(loaded)
             sys.modules[spec.name] = loaded
-    return getattr(loaded, name)
+    return getattr(loaded, _CLASSES[module])
 
 
 class ChangeDetector:
     """A river detector, ``"page_hinkley"`` or ``"adwin"``; ``params`` go to river's class unchanged
     (none: river's defaults). After a detection it starts afresh at the next value, as river's do."""
 
-    KINDS = ("adwin", "page_hinkley")
+    KINDS = tuple(_CLASSES)
 
     def __init__(self, kind: str, **params) -> None:
         if kind not in self.KINDS:
             raise ValueError(f"Invalid detector {kind!r}. Valid values are: {', '.join(self.KINDS)}")
-        self.kind = kind
-        self.params = dict(params)
+        self.kind, self.params = kind, dict(params)
+        threading.Thread(target=river_detector, args=(kind,), name="trimtab-river-load", daemon=True).start()
         self.reset()
 
     def reset(self) -> None:
@@ -65,7 +64,7 @@ class ChangeDetector:
     @property
     def _det(self):
         if self._fresh is None:
-            self._fresh = river_detector("PageHinkley" if self.kind == "page_hinkley" else "ADWIN")(**self.params)
+            self._fresh = river_detector(self.kind)(**self.params)
         return self._fresh
 
     def rearm(self) -> None:
@@ -81,10 +80,10 @@ class ChangeDetector:
     def feed(self, values) -> bool:
         """Feed ``values`` in order up to the first that signals a change (``True``; the rest are not fed)."""
         det = self._det
+        if det.drift_detected:  # at the last value of the previous feed (a feed stops at a detection)
+            self.reset()
+            det = self._det
         for x in values:
-            if det.drift_detected:
-                self.reset()
-                det = self._det
             if self._fed is not None:
                 if len(self._fed) >= ADWIN_MEMORY:  # rebuilt from the newest half, as a restored state is
                     self.load_state({"kind": "adwin"}, np.asarray(self._fed[len(self._fed) // 2:]))
@@ -103,10 +102,8 @@ class ChangeDetector:
         if self._fresh is None:  # never fed since its reset: nothing to save, and no river to load
             return {"kind": self.kind, "fresh": True}, np.zeros(0)
         det = self._det
-        fields = {k: float(getattr(det, k)) for k in _PH_FIELDS}
-        fields.update(kind="page_hinkley", n=float(det._x_mean.n), mean=float(det._x_mean._mean),
-                      detected=bool(det._drift_detected))
-        return fields, np.zeros(0)
+        return {**{k: float(getattr(det, k)) for k in _PH_FIELDS}, "kind": "page_hinkley", "n": float(det._x_mean.n),
+                "mean": float(det._x_mean._mean), "detected": bool(det._drift_detected)}, np.zeros(0)
 
     def load_state(self, fields: dict, values: np.ndarray) -> None:
         if fields.get("kind") != self.kind:
@@ -115,11 +112,9 @@ class ChangeDetector:
         if self._fed is not None:
             for x in values.tolist():  # on past a detection, as the first time
                 self.feed((x,))
-            return
-        if fields.get("fresh"):
-            return
-        det = self._det
-        for k in _PH_FIELDS:
-            setattr(det, k, float(fields[k]))
-        det._x_mean.n, det._x_mean._mean = float(fields["n"]), float(fields["mean"])
-        det._drift_detected = bool(fields["detected"])
+        elif not fields.get("fresh"):
+            det = self._det
+            for k in _PH_FIELDS:
+                setattr(det, k, float(fields[k]))
+            det._x_mean.n, det._x_mean._mean = float(fields["n"]), float(fields["mean"])
+            det._drift_detected = bool(fields["detected"])

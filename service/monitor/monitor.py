@@ -1,13 +1,13 @@
 """The stability monitor: held-out loss, rollback to the averaged model, restart after a real change.
 
 Projected SGD's guarantees hold on a stationary feed; live feeds change and labels are sometimes wrong.
-Every ``check_every`` learned events the monitor scores its window (``window.py``: the newest held-out
-events, never learned) with both iterates and applies the rules of ``rules.py``, each documented there,
-in order: *non-finite update*, *distance*, *rollback* -> roll back (restore the newest *trusted copy*,
-taken every ``snapshot_every`` healthy checks in a row since a uniform average absorbs each astray
-update at once; raw := averaged; later steps times ``rollback_shrink``); *change confirmed* -> restart
-(the average, step schedule and ``G`` start again; older held-out events and the trusted copy are
-dropped); *boundary pinned* -> incident and warning. Every change of the step scale is an incident.
+Every ``check_every`` learned events the monitor scores its window (``window.py``) with both iterates
+and applies the rules of ``rules.py``, each documented there, in order: *non-finite update*, *distance*,
+*rollback* -> roll back (restore the newest *trusted copy*, taken every ``snapshot_every`` healthy
+checks in a row since a uniform average absorbs each astray update at once; raw := averaged; later steps
+times ``rollback_shrink``); *change confirmed* -> restart (the average, step schedule and ``G`` start
+again; older held-out events and the trusted copy are dropped); *boundary pinned* -> incident and
+warning. Every change of the step scale is an incident.
 
 One rule lives here, *garbage*: the window's mean losses leave out events whose loss under both
 iterates exceeds ``absurd_factor`` times the median of the older window events (a garbage target is
@@ -46,25 +46,15 @@ _KEPT_CHECKS = 64  # event indices of the last checks kept (patience beyond this
 
 
 class Monitor:
-    """Watches a model on held-out events and decides rollbacks, restarts and the serving iterate.
+    """Watches a model (``model``: its loss and constraint set fix the rules' scales) on held-out events
+    under the ``[monitor]`` settings ``cfg``, and decides rollbacks, restarts and the serving iterate.
 
-    Parameters
-    ----------
-    cfg
-        The ``[monitor]`` settings.
-    model
-        The model watched (its loss and constraint set fix the rules' scales).
-
-    Notes
-    -----
     The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events, and
     adopts the model :meth:`take_restored` returns after a rollback. ``incidents``: ``{kind, event, ts,
-    reason, evidence}``.
-    """
+    reason, evidence}``."""
 
     def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
-        self.cfg = cfg
-        spec = model.spec
+        self.cfg, spec = cfg, model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self._ball = spec.constraint_set.kind == "ball"
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
@@ -85,8 +75,7 @@ class Monitor:
 
     @property
     def restarted_at(self) -> int | None:
-        """The event of the last restart (``None``: never restarted); ``state.ignored`` counts the rollback
-        triggers seen while ``rollback = false``."""
+        """The event of the last restart (``None``: never restarted)."""
         return self.state.restarted_at if self.state.restarted_at >= 0 else None
 
     @property
@@ -113,8 +102,7 @@ class Monitor:
 
     def note_rejected(self, rejected: int, total: int, event: int, ts: float | None = None) -> None:
         """Count input rejected at the boundary (the *rejected burst* rule)."""
-        burst = rules.rejected_burst(self.state, rejected, total, self.cfg)
-        if burst is not None:
+        if (burst := rules.rejected_burst(self.state, rejected, total, self.cfg)) is not None:
             self._incident("rejected_burst", event, ts, *burst)
 
     def _figures(self, model: LinearModel, upto: int | None = None) -> CheckFigures | None:
@@ -123,13 +111,13 @@ class Monitor:
         if not len(events):
             return None
         n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
-        losses, usable, sums, n_usable, reference = model.score_window(
-            rows, y, n_old if n_old >= MIN_EVENTS else len(events), _MEDIAN_SAMPLE, self._absurd)
-        raw, avg = (sums[0] / n_usable, sums[1] / n_usable) if n_usable else (math.nan, math.nan)
+        n_ref = n_old if n_old >= MIN_EVENTS else len(events)  # too few older events: the whole window's median
+        s = model.score_window(rows, y, n_ref, _MEDIAN_SAMPLE, self._absurd, n_old)
+        raw, avg = (s.sums[0] / s.n_usable, s.sums[1] / s.n_usable) if s.n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
-        return CheckFigures(losses, events, usable, n_usable, n_old, losses[1, n_old:] > reference, raw, avg,
-                            model.distance(), allowance)
+        return CheckFigures(s.losses, events, s.usable, s.n_usable, n_old, s.above, s.n_above, raw, avg, s.distance,
+                            allowance)
 
     def check(self, model: LinearModel, event: int, ts: float | None = None) -> dict:
         """Score the window up to ``event``, apply the rules, act; return the check's record."""
@@ -144,9 +132,8 @@ class Monitor:
             record.update(holdout_raw=fig.raw, holdout_avg=fig.averaged, held_out=len(fig.events),
                           excluded=len(fig.events) - fig.n_usable, allowance=fig.allowance)
             if len(fig.above) and fig.n_old >= MIN_EVENTS:
-                record["exceedance"] = np.count_nonzero(fig.above) / len(fig.above)
-        rolled = self._rollback_rules(model, fig, event, ts, record)
-        if fig is not None and self._detector is not None and not rolled:
+                record["exceedance"] = fig.n_above / len(fig.above)
+        if not self._rollback_rules(model, fig, event, ts, record) and fig is not None and self._detector is not None:
             self._change_rules(model, fig, event, ts, record)
         if self.cfg.serve == "better" and fig is not None and math.isfinite(fig.raw):
             state.raw_served = fig.raw < fig.averaged
@@ -246,9 +233,8 @@ class Monitor:
             self._incident("step_scale", event, ts, *step_scale_change(old, new, cause, self.cfg.rollback_shrink))
 
     def _incident(self, kind: str, event: int, ts, reason: str, evidence: dict) -> None:
-        self.incidents.append({"kind": kind, "event": int(event), "ts": ts, "reason": reason,
-                               "evidence": {k: (float(v) if isinstance(v, (float, np.floating)) else v)
-                                            for k, v in evidence.items()}})
+        clean = {k: (float(v) if isinstance(v, (float, np.floating)) else v) for k, v in evidence.items()}
+        self.incidents.append({"kind": kind, "event": int(event), "ts": ts, "reason": reason, "evidence": clean})
 
     def to_bytes(self) -> bytes:
         """The state in ``models.snapshot``'s container (no pickle): a JSON header and the arrays."""
@@ -273,6 +259,5 @@ class Monitor:
             self._detector.load_state(header["detector"], arrays["detector_fed"])
         self.window.load_arrays(arrays)
         self.state, self.incidents, self._restored = RuleState(**header["rules"]), header["incidents"], None
-        trusted = arrays["trusted"].tobytes()
+        trusted, self._trusted_event = arrays["trusted"].tobytes(), header["trusted_event"]
         self._trusted = LinearModel.from_bytes(trusted) if trusted else None
-        self._trusted_event = header["trusted_event"]

@@ -59,7 +59,8 @@ class CheckFigures:
     usable: np.ndarray  # not garbage: under at least one iterate within ``absurd_factor`` references
     n_usable: int
     n_old: int
-    above: np.ndarray  # per new event: its averaged-iterate loss is above the median of the older ones
+    above: np.ndarray  # per new event, 1.0 or 0.0: its averaged-iterate loss is above the median of the older ones
+    n_above: int
     raw: float  # mean loss over the usable events, raw iterate
     averaged: float
     distance: float  # ||w_raw - w_avg||
@@ -81,9 +82,7 @@ def too_far_from_average(fig: CheckFigures, limit: float) -> str | None:
     """**Distance** -> rollback. Watches ``||w_raw - w_avg||``. Threshold: ``divergence_radii`` times
     the constraint's radius (without one: times the averaged iterate's norm, at least 1). The average
     moves slowly, so a raw iterate this far from it has been thrown off by a few events."""
-    if fig.distance > limit:
-        return f"raw iterate {fig.distance:.3g} from the average (limit {limit:.3g})"
-    return None
+    return f"raw iterate {fig.distance:.3g} from the average (limit {limit:.3g})" if fig.distance > limit else None
 
 
 def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, recent: int) -> str | None:
@@ -124,7 +123,7 @@ def feed_detector(detector: ChangeDetector, fig: CheckFigures) -> bool:
     values (Siegmund's approximation of the average run length: some 60,000 events at a 5% hold-out),
     9 in 10 above in about 30 values, 6 in 10 in about 200. Garbage counts too: an alarm only opens
     the question that :func:`change_confirmed` answers."""
-    return detector.feed(fig.above.astype(np.float64).tolist())
+    return detector.feed(fig.above.tolist())
 
 
 def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) -> dict | None:
@@ -142,8 +141,7 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     fresh = fig.after(state.alarm_check)
     early = int(fig.events.searchsorted(state.alarm_from))  # events[:early]: before the alarm
     pick, before = fig.usable[fresh:], fig.usable[:early]
-    n = int(np.count_nonzero(pick))
-    garbage = len(pick) - n
+    n, garbage = int(np.count_nonzero(pick)), int(np.count_nonzero(~pick))
     if n < MIN_FRESH or garbage * 2 >= n + garbage or np.count_nonzero(before) < MIN_EVENTS:
         return None
     raw, avg = fig.losses

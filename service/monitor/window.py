@@ -30,7 +30,7 @@ class HeldOutWindow:
         """Buffer rows ``(lo, hi)`` of the newest ``size`` events up to event ``upto`` (``None``: all)."""
         hi = self._hi
         if upto is not None and hi > self._lo and self._events[hi - 1] > upto:
-            hi = self._lo + int(np.searchsorted(self._events[self._lo:hi], upto, "right"))
+            hi = self._lo + int(self._events[self._lo:hi].searchsorted(upto, "right"))
         return max(self._lo, hi - self.size), hi
 
     def __len__(self) -> int:
@@ -47,8 +47,7 @@ class HeldOutWindow:
     def add(self, rows: Rows, y: np.ndarray, picked: np.ndarray, events: np.ndarray) -> None:
         """Keep rows ``picked`` of ``rows`` (targets ``y[picked]``, event indices ``events``), which are
         newer than every event kept so far and than every check made so far."""
-        n = len(picked)
-        if n == 0:
+        if (n := len(picked)) == 0:
             return
         self._lo = max(self._lo, self._hi - self.size)  # no check to come reaches further back
         starts = rows.indptr[picked]
@@ -73,10 +72,10 @@ class HeldOutWindow:
         if hi + rows < len(self._ptr) and last + coords <= len(self._indices):
             return
         room, coord_room = max(len(self._y), 2 * (hi - lo + rows)), max(len(self._indices), 2 * (last - first + coords))
-        self._ptr = _moved(self._ptr, lo, hi + 1, room + 1) - first
-        self._y, self._events = _moved(self._y, lo, hi, room), _moved(self._events, lo, hi, room)
-        self._indices = _moved(self._indices, first, last, coord_room)
-        self._values = _moved(self._values, first, last, coord_room)
+        self._ptr = np.pad(self._ptr[lo:hi + 1], (0, room - (hi - lo))) - first
+        self._y, self._events = (np.pad(a[lo:hi], (0, room - (hi - lo))) for a in (self._y, self._events))
+        self._indices, self._values = (np.pad(a[first:last], (0, coord_room - (last - first)))
+                                       for a in (self._indices, self._values))
         self._lo, self._hi = 0, hi - lo
 
     def drop_before(self, event: int) -> None:
@@ -97,9 +96,3 @@ class HeldOutWindow:
         self._lo = self._hi = 0
         self.add(rows, arrays["window_y"], np.arange(len(lens)), arrays["window_events"])
 
-
-def _moved(a: np.ndarray, lo: int, hi: int, size: int) -> np.ndarray:
-    """``a[lo:hi]`` at the front of a new zeroed array of ``size`` elements."""
-    out = np.zeros(size, dtype=a.dtype)
-    out[:hi - lo] = a[lo:hi]
-    return out

@@ -51,7 +51,9 @@ def test_window_figures_equal_numpys(loss, n_ref, sample_max):
     rows, yw = model.rows(feats[2000:]), y[2000:].copy()
     if not binary:
         yw[[5, 700, 1500]] = [1e4, -3e3, 1e200]  # garbage targets, one whose loss overflows
-    losses, usable, sums, n_usable, reference = model.score_window(rows, yw, n_ref, sample_max, 30.0)
+    new_from = max(n_ref - 30, 0)  # the rows whose place against the reference is asked for
+    losses, usable, sums, n_usable, reference, above, n_above, distance = model.score_window(
+        rows, yw, n_ref, sample_max, 30.0, new_from)
     ref_losses, ref_usable, ref_sums, ref_reference = numpy_figures(model, rows, yw, n_ref, sample_max, 30.0)
     assert np.array_equal(losses, ref_losses)
     assert np.array_equal(usable, ref_usable)
@@ -59,6 +61,11 @@ def test_window_figures_equal_numpys(loss, n_ref, sample_max):
     assert n_usable == np.count_nonzero(ref_usable)
     assert np.array_equal(np.array(sums), ref_sums)
     assert binary or not usable[[5, 700, 1500]].any()
+    assert np.array_equal(above, (ref_losses[1, new_from:] > ref_reference).astype(np.float64))
+    assert n_above == np.count_nonzero(ref_losses[1, new_from:] > ref_reference) and len(above) == 2000 - new_from
+    (w_raw, b_raw), (w_avg, b_avg) = model.weights("raw"), model.weights("averaged")
+    assert distance == model.distance()  # the same compiled pass
+    assert math.isclose(distance, math.sqrt(np.sum((w_raw - w_avg) ** 2) + (b_raw - b_avg) ** 2), rel_tol=1e-9)
 
 
 @numba.njit
@@ -80,3 +87,17 @@ def test_selection_equals_numpys_partition():
         k = int(rng.integers(0, n))
         want, got = np.partition(a, k)[k], _kth(a.copy(), k)
         assert want == got or (np.isnan(want) and np.isnan(got)), (a, k)
+
+
+@numba.njit
+def _row_sums(a):
+    return R._numpy_row_sum(a, 0), R._numpy_row_sum(a, 1)
+
+
+def test_row_sums_equal_numpys():
+    """The kernel's sums of a window's losses are numpy's ``losses.sum(axis=1)``, bit for bit, on every
+    length up to 300 and 200 longer ones (heavy-tailed values, so the order of the additions shows)."""
+    rng = np.random.default_rng(5)
+    for n in list(range(1, 301)) + [int(k) for k in rng.integers(301, 20_000, size=200)]:
+        losses = np.abs(rng.standard_cauchy((2, n))) * rng.random()
+        assert _row_sums(losses) == tuple(losses.sum(axis=1).tolist()), n

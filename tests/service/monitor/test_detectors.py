@@ -108,7 +108,7 @@ def test_threads_loading_a_detector_at_once_all_get_river_s_class(name, monkeypa
     def load():
         start.wait()
         try:
-            got.append(river_detector(name))
+            got.append(river_detector(module))
         except Exception as exc:  # recorded, so that the assertion below names it
             got.append(exc)
 
@@ -135,3 +135,21 @@ def test_unfed_detector_saved_and_restored_fires_as_river(kind):
     expected = _fires(reference, stream)
     assert expected, "the stream should hold changes"
     assert [i for i, x in enumerate(stream) if restored.feed((x,))] == expected
+
+
+@pytest.mark.parametrize("kind", ["page_hinkley", "adwin"])
+def test_a_new_detector_loads_river_s_module_in_the_background(kind, monkeypatch):
+    """A new detector loads river's module on a thread of its own, so that the learning thread's first
+    check finds it loaded; the detector then is river's class, fed as usual."""
+    import sys
+    import threading
+
+    monkeypatch.delitem(sys.modules, f"_trimtab_river_{kind}", raising=False)
+    monkeypatch.delitem(sys.modules, f"river.drift.{kind}", raising=False)
+    det = ChangeDetector(kind)
+    for t in [t for t in threading.enumerate() if t.name == "trimtab-river-load"]:
+        t.join(timeout=60)
+    assert f"_trimtab_river_{kind}" in sys.modules  # loaded before any value was fed
+    assert det._fresh is None
+    det.feed([0.0, 1.0])
+    assert type(det._fresh).__module__ == f"_trimtab_river_{kind}"
