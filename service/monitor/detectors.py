@@ -1,16 +1,13 @@
 """river's change detectors behind one small interface whose state is plain data (no pickle).
 
-Page-Hinkley (E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41) and ADWIN (A. Bifet
-and R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing", SIAM SDM) are
-river's own classes, loaded from their modules without ``river.drift``'s package import, which
-imports scikit-learn through ``river.datasets`` (1.9 s of a replay's start, ``python -X importtime``),
-by a background thread that a new detector starts (with ``river.stats``, about 0.1 s of CPU): the
-learning thread meanwhile waits for its first events, not for river.
-
-Page-Hinkley is saved by its fields. river's ADWIN hides its buckets in compiled code, so it is saved as
-the values fed to it since its last reset and rebuilt by feeding them again (it is deterministic), at
-most ``ADWIN_MEMORY`` of them: beyond, it is rebuilt from the newest half, alike with and without
-checkpoints.
+Page-Hinkley (E. S. Page, 1954, "Continuous inspection schemes", Biometrika 41) and ADWIN (A. Bifet and
+R. Gavaldà, 2007, "Learning from time-changing data with adaptive windowing", SIAM SDM) are river's own
+classes, loaded from their modules without ``river.drift``'s package import (which imports scikit-learn:
+1.9 s of a start) by a thread that :meth:`ChangeDetector.preload` starts at the monitor's first check
+(about 0.1 s of CPU with ``river.stats``), while learning goes on; a feed too short to be checked never
+loads river. Page-Hinkley is saved by its fields; river's ADWIN hides its buckets in compiled code, so it
+is saved as the values fed since its last reset (at most ``ADWIN_MEMORY``; beyond, the newest half) and
+rebuilt by feeding them again (it is deterministic), alike with and without checkpoints.
 """
 
 from __future__ import annotations
@@ -53,9 +50,14 @@ class ChangeDetector:
     def __init__(self, kind: str, **params) -> None:
         if kind not in self.KINDS:
             raise ValueError(f"Invalid detector {kind!r}. Valid values are: {', '.join(self.KINDS)}")
-        self.kind, self.params = kind, dict(params)
-        threading.Thread(target=river_detector, args=(kind,), name="trimtab-river-load", daemon=True).start()
+        self.kind, self.params, self._loading = kind, dict(params), False
         self.reset()
+
+    def preload(self) -> None:
+        """Start loading river's module on a thread of its own (once), ahead of the first value."""
+        if not self._loading:
+            self._loading = True
+            threading.Thread(target=river_detector, args=(self.kind,), name="trimtab-river-load", daemon=True).start()
 
     def reset(self) -> None:
         self._fresh = None  # river's detector, built on first use (see the module docstring)

@@ -180,6 +180,7 @@ class Monitor:
     def _change_rules(self, model: LinearModel, fig: CheckFigures, event: int, ts, record: dict) -> None:
         """Feed the detector and open an alarm, or confirm (restart) or dismiss the open one."""
         state = self.state
+        self._detector.preload()  # river loads while the learning goes on to the check that first feeds it
         if state.alarm_check < 0:
             if fig.n_old >= MIN_EVENTS and rules.feed_detector(self._detector, fig):
                 state.alarm_from = (state.checks[-1] + 1) if state.checks else 0

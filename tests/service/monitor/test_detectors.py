@@ -138,15 +138,18 @@ def test_unfed_detector_saved_and_restored_fires_as_river(kind):
 
 
 @pytest.mark.parametrize("kind", ["page_hinkley", "adwin"])
-def test_a_new_detector_loads_river_s_module_in_the_background(kind, monkeypatch):
-    """A new detector loads river's module on a thread of its own, so that the learning thread's first
-    check finds it loaded; the detector then is river's class, fed as usual."""
+def test_a_preloaded_detector_loads_river_s_module_in_the_background(kind, monkeypatch):
+    """A new detector loads nothing; :meth:`ChangeDetector.preload` (the monitor's first check) loads
+    river's module on a thread of its own, so that the check that first feeds it finds it loaded;
+    the detector then is river's class, fed as usual."""
     import sys
     import threading
 
     monkeypatch.delitem(sys.modules, f"_trimtab_river_{kind}", raising=False)
     monkeypatch.delitem(sys.modules, f"river.drift.{kind}", raising=False)
     det = ChangeDetector(kind)
+    assert f"_trimtab_river_{kind}" not in sys.modules
+    det.preload()
     for t in [t for t in threading.enumerate() if t.name == "trimtab-river-load"]:
         t.join(timeout=60)
     assert f"_trimtab_river_{kind}" in sys.modules  # loaded before any value was fed
