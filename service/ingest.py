@@ -117,8 +117,11 @@ class Item:
     def __len__(self) -> int:
         return len(self.body) if self.body is not None else len(self.events)
 
-    def ids(self) -> list:
-        return self.body.ids if self.body is not None else [e.id for e in self.events]
+    def keys(self) -> list:
+        """The deduplication key of each event's id (``None`` without an id)."""
+        if self.body is not None:
+            return self.body.keys
+        return [None if e.id is None else id_key(e.id) for e in self.events]
 
     def weight(self) -> int:
         return max(1, len(self))
@@ -259,7 +262,7 @@ class Ingestor:
 
         A parsed body becomes one row of its new events' lines (kind ``LINES``, ``seq`` its last
         position); other items one row per event."""
-        keys = [[None if i is None else id_key(i) for i in it.ids()] for it in items]
+        keys = [it.keys() for it in items]
         known = self.journal.known(list({k for ks in keys for k in ks if k is not None}))
         parts, pairs, seq = [], [], self._next_seq
         for it, ks in zip(items, keys):

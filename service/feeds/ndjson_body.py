@@ -24,6 +24,7 @@ import numpy as np
 from service.feeds.columns import Prepared, take_prepared
 from service.feeds.ndjson_columns import ArrowNdjson, available, scan_lines
 from service.kernels import FEEDS
+from service.storage.seen import id_key
 
 __all__ = ["BodyParser", "ParsedBody", "available"]
 
@@ -33,7 +34,8 @@ class ParsedBody:
     """One body's accepted events (prepared, in line order) and its rejections.
 
     ``rejected`` holds :class:`service.events.Rejection` in line order; ``where[k]`` is the 0-based
-    line of accepted event ``k`` (as the per-event path numbers them); ``ids[k]`` its id or ``None``.
+    line of accepted event ``k`` (as the per-event path numbers them); ``ids[k]`` its id or ``None``
+    and ``keys[k]`` the id's deduplication key (:func:`service.storage.seen.id_key`) or ``None``.
     """
 
     buf: bytes
@@ -41,6 +43,7 @@ class ParsedBody:
     rejected: list
     where: list
     ids: list
+    keys: list
     starts: np.ndarray
     ends: np.ndarray
 
@@ -87,14 +90,16 @@ class BodyParser:
     def parse(self, body: bytes) -> ParsedBody:
         """Parse and check ``body``; bad lines are rejected with ``line N`` (1-based) and why."""
         reader = self._reader()
-        starts, ends, _, _ = scan_lines(body, reader.validator.max_line)
-        prepared, rejected = reader.chunk(body, 1)
+        scanned = scan_lines(body, reader.validator.max_line)
+        prepared, rejected = reader.chunk_lines(body, 1, scanned)
+        starts, ends = scanned[0], scanned[1]
         if prepared is None:
-            return ParsedBody(body, None, [r for _, r in rejected], [], [], starts, ends)
+            return ParsedBody(body, None, [r for _, r in rejected], [], [], [], starts, ends)
         where = (prepared.where - 1).tolist()
         ids = prepared.batch.ids
         ids = ids.to_pylist() if hasattr(ids, "to_pylist") else list(ids)
-        return ParsedBody(body, prepared, [r for _, r in rejected], where, ids, starts, ends)
+        keys = [None if i is None else id_key(i) for i in ids]  # here, on a parse thread, not the journal's
+        return ParsedBody(body, prepared, [r for _, r in rejected], where, ids, keys, starts, ends)
 
     def lines(self, payload: bytes) -> Prepared:
         """The prepared events of a journal row of lines (:meth:`ParsedBody.lines`); raises
