@@ -114,7 +114,8 @@ class Item:
         self.future: asyncio.Future = asyncio.get_running_loop().create_future()
         self.receipt = Receipt()
 
-    def __len__(self) -> int:
+    def size(self) -> int:
+        """How many events the item holds (an operator action holds none)."""
         return len(self.body) if self.body is not None else len(self.events)
 
     def keys(self) -> list:
@@ -124,7 +125,7 @@ class Item:
         return [None if e.id is None else id_key(e.id) for e in self.events]
 
     def weight(self) -> int:
-        return max(1, len(self))
+        return max(1, self.size())
 
 
 class Ingestor:
@@ -297,10 +298,10 @@ class Ingestor:
                 self._wake.clear()
                 await self._wake.wait()
             items, n = [], 0
-            while self._pending and (not items or n + len(self._pending[0]) <= self._chunk):
+            while self._pending and (not items or n + self._pending[0].size() <= self._chunk):
                 it = self._pending.popleft()
                 items.append(it)
-                n += len(it)
+                n += it.size()
             start = time.perf_counter()
             try:
                 await self.db(self._commit, items)
