@@ -87,7 +87,7 @@ async def test_bad_lines_and_duplicates_leave_out_of_the_row_and_a_restart_gives
 
 @pytest.mark.asyncio
 async def test_a_body_of_only_bad_lines_changes_nothing(aiohttp_client, tmp_path):
-    cfg = make_config(tmp_path)
+    cfg = make_config(tmp_path, prune_journal=False)
     client = await _started(aiohttp_client, cfg)
     r = await client.post("/v1/events", data=b'{"features": 3}\n[1, 2]\n', headers=NDJSON)
     body = await r.json()
