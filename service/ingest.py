@@ -1,7 +1,10 @@
 """The ingestion loop: a bounded queue, the journal commit, and the one learner that owns the engine.
 
 Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its events as one
-*item*; the answer waits on the item's future. Two stages drain the queue, in order:
+*item*; the answer waits on the item's future. An NDJSON body is parsed into columns
+(:attr:`Ingestor.parser`, :mod:`service.feeds.ndjson_body`, with pyarrow) and queued whole: it is
+journaled as one row of its new events' lines and applied as its prepared batch; other requests
+queue validated events, journaled one row each. Two stages drain the queue, in order:
 
 1. the *committer* takes queued items (up to ``service.chunk_events`` events) and, on the journal's
    own thread, drops ids ever accepted before (the whole-history index of
