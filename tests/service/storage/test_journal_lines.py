@@ -131,3 +131,21 @@ def test_format_1_files_are_read_and_marked_2_at_their_first_row_of_lines(tmp_pa
     with pytest.raises(StorageUnavailable, match="format 3, written by a newer trimtab"):
         Journal(tmp_path)
     Journal(tmp_path / "other").close()  # the refusal let go of the data-dir lock of the first
+
+
+@pytest.mark.asyncio
+async def test_without_pyarrow_bodies_go_event_by_event_as_before(aiohttp_client, tmp_path, monkeypatch):
+    monkeypatch.setattr("service.ingest.columnar_available", lambda: False)
+    cfg = make_config(tmp_path, prune_journal=False)
+    client = await _started(aiohttp_client, cfg)
+    events = demo_events(50)
+    got = await (await client.post("/v1/events", data=b"\n".join(orjson.dumps(e) for e in events),
+                                   headers=NDJSON)).json()
+    assert got["accepted"] == 50 and got["seq"] == [1, 50]
+    ref = Engine(cfg)
+    ref.apply_events([EventValidator(cfg).validate(e) for e in events])
+    assert (await (await client.get("/v1/model")).json())["state_digest"] == ref.state_digest
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    assert db.execute("SELECT kind, count(*) FROM journal GROUP BY kind").fetchall() == [(EVENT, 50)]
+    db.close()
+    await client.close()
