@@ -9,6 +9,13 @@ time) and the best of three repeats kept:
   (SQLite WAL, ``synchronous=FULL``, in a temporary folder), as the committer runs them;
 * ``prepare``: ``Engine.prepare`` (feature mapping, holdout hash); ``apply``: ``Engine.apply``.
 
+The same bodies the way the service takes NDJSON now (columns, one journal row per body):
+
+* ``body_parse``: :meth:`service.feeds.ndjson_body.BodyParser.parse` (the compiled line scan,
+  Arrow's JSON reader, every event rule per column, the mapping to rows, the id keys);
+* ``body_commit``: the dedup lookup, numbering, one row of the body's lines and its id keys;
+* ``body_apply``: ``Engine.apply`` of the prepared batch.
+
 Baseline from the same run: ``orjson_loop``, a loop that only parses the same lines with orjson.
 Prints ``stage_vs_orjson`` ratios; the last line is one JSON object. HTTP, the event loop, thread
 hand-offs and publication are not included (``benchmarks/service.py`` measures the whole process).
@@ -50,7 +57,8 @@ def main() -> int:
     from service.engine import Engine
     from service.events import EventValidator
     from service.http.handlers import _parse_ndjson
-    from service.storage.journal import Journal
+    from service.feeds.ndjson_body import BodyParser
+    from service.storage.journal import LINES, Journal
     from service.storage.seen import id_key, number_events
 
     bench = _service_bench()
@@ -59,7 +67,10 @@ def main() -> int:
     data = bench.bodies(a.bodies, size=500, tag="s")
     n = 500 * a.bodies
     cpu = time.thread_time
-    spent: dict[str, list[float]] = {k: [] for k in ("orjson_loop", "parse", "commit", "prepare", "apply")}
+    spent: dict[str, list[float]] = {k: [] for k in ("orjson_loop", "parse", "commit", "prepare", "apply",
+                                                     "body_parse", "body_commit", "body_apply")}
+    parser = BodyParser(cfg)
+    parser.parse(data[0])  # the reader of this thread, built once
     for _ in range(3):
         t = cpu()
         for body in data:
@@ -89,10 +100,32 @@ def main() -> int:
         for batch in batches:
             engine.apply(batch)
         spent["apply"].append(cpu() - t)
+
+        t = cpu()
+        bodies = [parser.parse(body) for body in data]
+        spent["body_parse"].append(cpu() - t)
+        folder = tempfile.mkdtemp()
+        journal = Journal(folder, sync="full")
+        t = cpu()
+        seq = 1
+        for body in bodies:
+            seqs, pairs = number_events(body.keys, journal.known(body.keys), seq)
+            journal.append([(seq + len(body) - 1, None, LINES, body.lines())], pairs)
+            seq += len(body)
+        spent["body_commit"].append(cpu() - t)
+        journal.close()
+        shutil.rmtree(folder)
+        engine = Engine(cfg)
+        t = cpu()
+        for body in bodies:
+            engine.apply(body.prepared.batch)
+        spent["body_apply"].append(cpu() - t)
     us = {k: round(1e6 * min(v) / n, 2) for k, v in spent.items()}
     stages = ("parse", "commit", "prepare", "apply")
+    body_stages = ("body_parse", "body_commit", "body_apply")
     res = {"us_cpu_per_event": us, "stages_us": round(sum(us[k] for k in stages), 2),
-           "stage_vs_orjson": {k: round(us[k] / us["orjson_loop"], 2) for k in stages}, "events": n}
+           "body_stages_us": round(sum(us[k] for k in body_stages), 2),
+           "stage_vs_orjson": {k: round(us[k] / us["orjson_loop"], 2) for k in stages + body_stages}, "events": n}
     print(f"CPU us per event: {us}", file=sys.stderr)
     print(json.dumps(res))
     return 0

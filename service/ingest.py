@@ -1,7 +1,10 @@
 """The ingestion loop: a bounded queue, the journal commit, and the one learner that owns the engine.
 
 Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its events as one
-*item*; the answer waits on the item's future. Two stages drain the queue, in order:
+*item*; the answer waits on the item's future. An NDJSON body is parsed into columns
+(:attr:`Ingestor.parser`, :mod:`service.feeds.ndjson_body`, with pyarrow) and queued whole: it is
+journaled as one row of its new events' lines and applied as its prepared batch; other requests
+queue validated events, journaled one row each. Two stages drain the queue, in order:
 
 1. the *committer* takes queued items (up to ``service.chunk_events`` events) and, on the journal's
    own thread, drops ids ever accepted before (the whole-history index of
@@ -35,14 +38,17 @@ from contextlib import suppress
 
 import orjson
 
-from service.engine import Engine
+from models import Rows
+
+from service.engine import Engine, PreparedBatch
 from service.publish import take_snapshot
 from service.errors import JournalUnavailable, NotReady, Overloaded
 from service.monitor.rules import step_scale_change
 from service.events import Event
 from service.storage.guard import StorageGuard
 from service.storage.health import storage_fault
-from service.storage.journal import NOTE, ROLLBACK, Journal
+from service.feeds.ndjson_body import BodyParser, ParsedBody, available as columnar_available
+from service.storage.journal import LINES, NOTE, ROLLBACK, Journal
 from service.startup import recover
 from service.storage.recovery import encode_event, serving_view
 from service.storage.seen import id_key, number_events
@@ -51,6 +57,15 @@ from service.warmup import STARTING
 __all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
 
 log = logging.getLogger("trimtab.service")
+
+
+def slice_batch(batch: PreparedBatch, lo: int, hi: int) -> PreparedBatch:
+    """Events ``lo`` to ``hi`` of a prepared batch (copies of its arrays)."""
+    rows = batch.rows
+    a, b = int(rows.indptr[lo]), int(rows.indptr[min(hi, len(batch))])
+    part = Rows(rows.indptr[lo:hi + 1] - a, rows.indices[a:b].copy(), rows.values[a:b].copy())
+    return PreparedBatch(batch.ids[lo:hi], batch.ts[lo:hi].copy(), part, batch.y[lo:hi].copy(),
+                         batch.mode[lo:hi].copy())
 
 
 def background_thread() -> None:
@@ -85,20 +100,35 @@ class Receipt:
 
 
 class Item:
-    """Events of one request with their payloads, an optional rejection note and operator action."""
+    """Events of one request with their payloads, an optional rejection note and operator action.
 
-    __slots__ = ("events", "payloads", "note", "action", "future", "receipt")
+    An NDJSON body parsed into columns comes as ``body`` (a :class:`ParsedBody`) instead of
+    ``events`` and ``payloads``: it is journaled as one row of its accepted lines and applied as
+    its prepared batch."""
 
-    def __init__(self, events, payloads, note=None, action=None) -> None:
+    __slots__ = ("events", "payloads", "body", "note", "action", "future", "receipt")
+
+    def __init__(self, events, payloads, note=None, action=None, body: ParsedBody | None = None) -> None:
         self.events = events
         self.payloads = payloads
+        self.body = body
         self.note = note          # (rejected, total, ts) for engine.note_rejected
         self.action = action      # None | ("rollback", reason) | ("checkpoint",)
         self.future: asyncio.Future = asyncio.get_running_loop().create_future()
         self.receipt = Receipt()
 
+    def size(self) -> int:
+        """How many events the item holds (an operator action holds none)."""
+        return len(self.body) if self.body is not None else len(self.events)
+
+    def keys(self) -> list:
+        """The deduplication key of each event's id (``None`` without an id)."""
+        if self.body is not None:
+            return self.body.keys
+        return [None if e.id is None else id_key(e.id) for e in self.events]
+
     def weight(self) -> int:
-        return max(1, len(self.events))
+        return max(1, self.size())
 
 
 class Ingestor:
@@ -136,6 +166,8 @@ class Ingestor:
         self.unpublished = False              # the engine changed since the last publication
         self.published_version = 0
         self.published_wall = 0.0             # Unix time of the last publication
+        #: parses NDJSON bodies into columns (None without pyarrow: bodies go event by event)
+        self.parser = BodyParser(config) if columnar_available() else None
 
     # ---------------------------------------------------------------- serving
     def set_view(self, force: bool = False) -> None:
@@ -209,10 +241,11 @@ class Ingestor:
         """Give back a reservation that did not become an item."""
         self.queued_events -= n
 
-    def submit(self, events: list[Event], payloads: list[bytes], note=None, action=None, reserved: int = 0) -> Item:
-        """Queue one request's events (using a reservation if one was made); raises
-        :class:`Overloaded` when the queue is full."""
-        item = Item(events, payloads, note, action)
+    def submit(self, events: list[Event], payloads: list[bytes], note=None, action=None, reserved: int = 0,
+               body: ParsedBody | None = None) -> Item:
+        """Queue one request's events, or its parsed NDJSON ``body`` (using a reservation if one was
+        made); raises :class:`Overloaded` when the queue is full."""
+        item = Item(events, payloads, note, action, body)
         extra = item.weight() - reserved
         if extra > 0:
             try:
@@ -229,21 +262,30 @@ class Ingestor:
     # ---------------------------------------------------------------- stage 1: journal commit
     def _commit(self, items: list[Item]) -> None:
         """On the journal thread: deduplicate against the whole history, number and commit the items'
-        rows and their id keys in one transaction. The first occurrence of an id in queue order wins."""
-        keys = [[None if e.id is None else id_key(e.id) for e in it.events] for it in items]
+        rows and their id keys in one transaction. The first occurrence of an id in queue order wins.
+
+        A parsed body becomes one row of its new events' lines (kind ``LINES``, ``seq`` its last
+        position); other items one row per event."""
+        keys = [it.keys() for it in items]
         known = self.journal.known(list({k for ks in keys for k in ks if k is not None}))
         parts, pairs, seq = [], [], self._next_seq
         for it, ks in zip(items, keys):
             seqs, new = number_events(ks, known, seq)
             it.receipt.seqs = seqs
-            if len(new) == len(ks):  # the common case: every event has an id and is new (keeps them all)
-                ids, payloads = [e.id for e in it.events], it.payloads
+            keep = None if len(new) == len(ks) else [k for k, s in enumerate(seqs) if s is not None]
+            if it.body is not None:
+                count = len(ks) if keep is None else len(keep)
+                if count:
+                    parts.append((seq + count - 1, None, LINES, it.body.lines(keep)))
+                    seq += count
             else:
-                keep = [k for k, s in enumerate(seqs) if s is not None]
-                ids, payloads = [it.events[k].id for k in keep], [it.payloads[k] for k in keep]
-            if payloads:
-                parts.append((seq, ids, payloads))
-                seq += len(payloads)
+                if keep is None:  # the common case: every event has an id and is new (keeps them all)
+                    ids, payloads = [e.id for e in it.events], it.payloads
+                else:
+                    ids, payloads = [it.events[k].id for k in keep], [it.payloads[k] for k in keep]
+                if payloads:
+                    parts.append((seq, ids, payloads))
+                    seq += len(payloads)
             pairs += new
             if it.note is not None or (it.action and it.action[0] == "rollback"):
                 kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
@@ -259,10 +301,10 @@ class Ingestor:
                 self._wake.clear()
                 await self._wake.wait()
             items, n = [], 0
-            while self._pending and (not items or n + len(self._pending[0].events) <= self._chunk):
+            while self._pending and (not items or n + self._pending[0].size() <= self._chunk):
                 it = self._pending.popleft()
                 items.append(it)
-                n += len(it.events)
+                n += it.size()
             start = time.perf_counter()
             try:
                 await self.db(self._commit, items)
@@ -284,22 +326,41 @@ class Ingestor:
         """Learner thread: apply events in order, one slice at a time under the engine lock."""
         engine, step = self.engine, self._slice
         for i in range(0, len(events), step):
-            batch = engine.prepare(events[i:i + step])  # pure: no lock needed
-            start = time.perf_counter()
-            with self.lock:
-                engine.apply(batch)
-                self.set_view()
-            took = time.perf_counter() - start
-            self.metrics.apply_seconds.observe(took)
-            if took > 0:
-                self._rate = 0.9 * self._rate + 0.1 * (len(batch) / took)
+            self._apply_slice(engine.prepare(events[i:i + step]))  # prepare is pure: no lock needed
+
+    def apply_prepared(self, prepared) -> None:
+        """Learner thread: apply a prepared batch (:class:`service.feeds.columns.Prepared`) in order,
+        one slice at a time under the engine lock; its categorical values join the values seen first,
+        as a replay remembers them."""
+        engine, step = self.engine, self._slice
+        bucket = engine.model.mapper.bucket
+        for name, text in prepared.categories:
+            bucket(name, text)  # the values seen, for reporting: the mapping itself is fixed
+        batch = prepared.batch
+        for i in range(0, len(batch), step):
+            self._apply_slice(batch if len(batch) <= step else slice_batch(batch, i, i + step))
+
+    def _apply_slice(self, batch: PreparedBatch) -> None:
+        start = time.perf_counter()
+        with self.lock:
+            self.engine.apply(batch)
+            self.set_view()
+        took = time.perf_counter() - start
+        self.metrics.apply_seconds.observe(took)
+        if took > 0:
+            self._rate = 0.9 * self._rate + 0.1 * (len(batch) / took)
 
     def _apply_sync(self, it: Item) -> None:
         """Learner thread: one item's new events, then its rejection note or rollback."""
         r = it.receipt
-        new = [e for e, s in zip(it.events, r.seqs) if s is not None]
-        if new:
-            self.apply_events(new)
+        if it.body is not None:
+            if r.accepted:
+                keep = None if r.accepted == len(r.seqs) else [k for k, s in enumerate(r.seqs) if s is not None]
+                self.apply_prepared(it.body.kept(keep))
+        else:
+            new = [e for e, s in zip(it.events, r.seqs) if s is not None]
+            if new:
+                self.apply_events(new)
         if it.note is not None:
             with self.lock:
                 self.engine.note_rejected(*it.note)

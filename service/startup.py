@@ -8,7 +8,8 @@
 2. the service incidents kept in the journal, then :func:`check_storage`;
 3. :func:`load_state`: the newest usable checkpoint (or an empty engine for a whole journal);
 4. the journal rows after that position, re-applied on the learner thread in journal order, in
-   pieces of :data:`REPLAY_ROWS`; a gap in the positions refuses the start.
+   pieces of about :data:`REPLAY_ROWS` positions (a row of an NDJSON body's lines stands for one
+   position per line); a gap in the positions refuses the start.
 
 It uses the ingestor's threads, lock and metrics but never imports :mod:`service.ingest`.
 """
@@ -17,13 +18,14 @@ from __future__ import annotations
 
 import time
 
+from service.storage.journal import first_position
 from service.storage.recovery import RecoveryRefused, check_storage, load_state, replay_rows
 from service.kernels import build_later
 from service.warmup import is_cached, kernels_of, warm_parallel
 
 __all__ = ["REPLAY_ROWS", "recover"]
 
-#: journal rows read and re-applied at a time during recovery
+#: journal positions (events, notes, rollbacks) read and re-applied at a time during recovery
 REPLAY_ROWS = 5000
 
 
@@ -54,14 +56,14 @@ async def recover(ing) -> tuple[int, int, int]:
         rows = await ing.db(ing.journal.rows_after, after, REPLAY_ROWS)
         if not rows:
             break
-        if rows[0][0] != after + 1:
-            raise RecoveryRefused(f"the journal continues at position {rows[0][0]} after the state at "
-                                  f"position {after}: rows are missing")
+        if first_position(rows[0]) != after + 1:
+            raise RecoveryRefused(f"the journal continues at position {first_position(rows[0])} after the state "
+                                  f"at position {after}: rows are missing or a row spans that position")
         await ing.learn(replay_rows, ing, rows)
-        replayed += len(rows)
+        replayed += rows[-1][0] - after
+        ing.metrics.replayed.inc(rows[-1][0] - after)
         after = rows[-1][0]
         ing.recovery["replayed"] = replayed
-        ing.metrics.replayed.inc(len(rows))
     next_seq = max(after, await ing.db(ing.journal.last_seq)) + 1
     ing.recovery.update(state="ready", seconds=round(time.perf_counter() - t0, 3))
     return pos, replayed, next_seq

@@ -133,7 +133,11 @@ class ArrowNdjson:
 
     def chunk(self, buf: bytes, first_line: int) -> tuple[Prepared | None, list]:
         """Prepared events of ``buf`` (whole lines) in line order, and ``[(line, Rejection)]`` in line order."""
-        starts, ends, flags, escaped = scan_lines(buf, self.validator.max_line)
+        return self.chunk_lines(buf, first_line, scan_lines(buf, self.validator.max_line))
+
+    def chunk_lines(self, buf: bytes, first_line: int, scanned) -> tuple[Prepared | None, list]:
+        """:meth:`chunk` of ``buf`` with its lines already found (``scanned``: :func:`scan_lines`)."""
+        starts, ends, flags, escaped = scanned
         lines = first_line + np.arange(len(starts), dtype=np.int64)
         parts: list[Prepared] = []
         slow: list[int] = list(np.flatnonzero(flags == CHECK))

@@ -202,15 +202,19 @@ def _parse_array(body: bytes, v: EventValidator, limit: int):
     return events, payloads, rejected, where
 
 
-async def _ingest(svc: Service, events: list[Event], payloads, rejected, where, *, note: bool = True,
-                  extra: dict | None = None, known: list | None = None, reserved: int = 0) -> web.Response:
+async def _ingest(svc: Service, events: list[Event] | None, payloads, rejected, where, *, note: bool = True,
+                  extra: dict | None = None, known: list | None = None, reserved: int = 0,
+                  body=None) -> web.Response:
     """Queue valid events (and a note of the rejected ones), answer once they are journaled and applied.
 
     ``known``: positions already known to be duplicates (labels for ids learned before);
-    ``reserved``: queue room claimed before parsing (see :meth:`Ingestor.reserve`).
+    ``reserved``: queue room claimed before parsing (see :meth:`Ingestor.reserve`); ``body``: an
+    NDJSON body parsed into columns (:class:`service.feeds.ndjson_body.ParsedBody`) in place of
+    ``events`` and ``payloads``.
     """
     ing = _ready(svc)
-    total = len(events) + len(rejected)
+    n = len(body) if body is not None else len(events)
+    total = n + len(rejected)
     extra = extra or {}
     svc.metrics.events.labels("rejected").inc(len(rejected))
     if total == 0:
@@ -219,14 +223,14 @@ async def _ingest(svc: Service, events: list[Event], payloads, rejected, where, 
                       "applied_seq": ing.applied_seq, **extra})
     rej = [r.as_dict() for r in rejected]
     item = ing.submit(events, payloads, note=(len(rejected), total, time.time()) if (rejected and note) else None,
-                      reserved=reserved)
+                      reserved=reserved, body=body)
     receipt = await item.future
     dups = receipt.duplicates()
     svc.metrics.events.labels("accepted").inc(receipt.accepted)
     svc.metrics.events.labels("duplicate").inc(len(dups))
     out = {"accepted": receipt.accepted, "duplicates": sorted((known or []) + [where[k] for k in dups]),
            "rejected": rej, "seq": receipt.seq_range(), "applied_seq": receipt.applied_seq, **extra}
-    if not events and not known:
+    if not n and not known:
         first = rejected[0]
         return error_response(InvalidInput(f"all {len(rejected)} item(s) were rejected; first: {first.reason}",
                                            where=first.where), rejected=rej, **extra)
@@ -249,13 +253,17 @@ async def post_events(request: web.Request) -> web.Response:
         # every event has a "features" key: counting them bounds the batch before parsing
         reserved = ing.reserve(min(body.count(b'"features"'), limit))
     try:
-        if ctype == "application/x-ndjson":
+        if ctype == "application/x-ndjson" and ing.parser is not None:
+            parsed = await _off_loop(body, ing.parser.parse, body)
+        elif ctype == "application/x-ndjson":
             parsed = await _off_loop(body, _parse_ndjson, body, svc.validator)
         else:
             parsed = await _off_loop(body, _parse_array, body, svc.validator, limit)
     except BaseException:
         ing.release(reserved)
         raise
+    if not isinstance(parsed, tuple):  # columnar: one journal row of the body's accepted lines
+        return await _ingest(svc, None, None, parsed.rejected, parsed.where, reserved=reserved, body=parsed)
     return await _ingest(svc, *parsed, reserved=reserved)
 
 

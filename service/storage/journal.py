@@ -6,8 +6,10 @@ Tables:
   changes the engine, in the order it is applied. ``kind`` 0 is an event (``payload`` is the
   validated event as orjson, ``id`` its id for readers of the file), 1 a note of input rejected at
   the boundary (``[rejected, total, ts]``, it feeds the monitor's rejected-burst rule), 2 an operator
-  rollback (``{"reason": ...}``). Replaying the rows in ``seq`` order through :meth:`Engine.apply`
-  rebuilds the engine bit for bit.
+  rollback (``{"reason": ...}``), 3 the accepted lines of one NDJSON body (``payload``: the lines,
+  each followed by a newline; ``id`` null): the row stands for as many consecutive positions as it
+  has lines and ``seq`` is the *last* of them (:func:`first_position`). Replaying the rows in
+  ``seq`` order through :meth:`Engine.apply` rebuilds the engine bit for bit.
 * ``seen(h, seq)``: the deduplication index over the whole history (:mod:`service.storage.seen`);
   never pruned. A Bloom filter of its keys (:mod:`service.storage.keyfilter`), built at open and
   kept up to date by every commit, lets most new ids skip the index lookup.
@@ -16,8 +18,14 @@ Tables:
   the SHA-256 of the blob, checked on load so a corrupt or truncated checkpoint is detected and an
   older one used.
 * ``incidents`` (service incidents that must outlive a restart, such as a corrupt checkpoint) and
-  ``meta`` (the fingerprint of the learning config the journal belongs to, and ``pruned_to``: the
-  last position deleted from ``journal``, absent while it holds the whole history).
+  ``meta`` (the fingerprint of the learning config the journal belongs to, ``pruned_to``: the
+  last position deleted from ``journal``, absent while it holds the whole history, and
+  ``journal_format``).
+
+Format versions (``meta.journal_format``): 1 (the key absent) has event, note and rollback rows
+only; 2 adds the rows of lines (kind 3). A file is marked 2 when it is created or when its first
+row of lines is written, so a format-1 file stays readable by the versions before until then; a
+file of a format above :data:`JOURNAL_FORMAT` is refused at open with a message saying so.
 
 Durability: with ``synchronous=FULL`` (the default, ``service.journal_sync``) SQLite fsyncs the WAL
 on every commit, so an event acknowledged after :meth:`Journal.append` returns survives a process
@@ -56,9 +64,12 @@ from service.storage.dirlock import DataDirLock
 from service.storage.health import scan_wal, storage_fault
 from service.storage.keyfilter import KeyFilter
 
-__all__ = ["EVENT", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable", "fingerprint"]
+__all__ = ["EVENT", "JOURNAL_FORMAT", "LINES", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable",
+           "fingerprint", "first_position", "positions"]
 
-EVENT, NOTE, ROLLBACK = 0, 1, 2
+EVENT, NOTE, ROLLBACK, LINES = 0, 1, 2, 3
+#: the journal format this version writes and the newest it reads (see the module docstring)
+JOURNAL_FORMAT = 2
 FILE_NAME = "trimtab.sqlite"
 
 _SCHEMA = """
@@ -84,6 +95,16 @@ def _as_text(ids: list) -> list:
         return ids
     except UnicodeEncodeError:
         return [None if i is None else i.encode("utf-8", "surrogatepass").decode("utf-8", "replace") for i in ids]
+
+
+def positions(row: tuple) -> int:
+    """How many journal positions a row ``(seq, id, kind, payload)`` stands for."""
+    return row[3].count(b"\n") if row[2] == LINES else 1
+
+
+def first_position(row: tuple) -> int:
+    """The first journal position of a row (its ``seq`` but for a row of lines, which ends there)."""
+    return row[0] - positions(row) + 1
 
 
 class Checkpoint(tuple):
@@ -140,6 +161,7 @@ class Journal:
             self._db.executescript(_SCHEMA)
             self._buffer = set()
             self._filter = KeyFilter()
+            self._format = JOURNAL_FORMAT
         except BaseException:
             self.dir_lock.release()
             raise
@@ -164,9 +186,20 @@ class Journal:
                                    f"SQLite's checksum (SQLite replayed {accepted} of {frames.frames}); "
                                    f"acknowledged events may be missing. A copy is in {copy.name}")
         tables = {r[0] for r in self._db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+        self._format = 1
+        if "meta" in tables:
+            row = self._db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()
+            self._format = int(row[0]) if row is not None else 1
+            if self._format > JOURNAL_FORMAT:
+                self._db.close()
+                raise StorageUnavailable(f"{self.path} is a journal of format {self._format}, written by a newer "
+                                         f"trimtab; this version reads formats 1 to {JOURNAL_FORMAT}",
+                                         where="service.data_dir")
         self._db.executescript(_SCHEMA)
         if "journal" not in tables:  # a new file: it holds the whole history from the start
             self._db.execute("INSERT OR IGNORE INTO meta VALUES ('pruned_to', '0')")
+            self._db.execute("INSERT OR REPLACE INTO meta VALUES ('journal_format', ?)", (str(JOURNAL_FORMAT),))
+            self._format = JOURNAL_FORMAT
         self._buffer = seen.load_buffer(self._db)  # the unindexed tail of the index, mirrored in memory
         if "journal" in tables and "seen" not in tables:
             self._index_retained_ids()
@@ -279,12 +312,16 @@ class Journal:
 
         Each part is a row ``(seq, id, kind, payload)`` or a run of events ``(first_seq, ids, payloads)``
         numbered from ``first_seq``; ``keys`` are the ``(id key, seq)`` pairs of the new events. Ids
-        and payloads are bound as parameters, never parsed by SQLite.
+        and payloads are bound as parameters, never parsed by SQLite. The first row of lines written
+        to a format-1 file marks it format 2 in the same transaction.
         """
         if not parts:
             return
+        upgrade = self._format < JOURNAL_FORMAT and any(len(p) == 4 and p[2] == LINES for p in parts)
 
         def body(db):
+            if upgrade:
+                db.execute("INSERT OR REPLACE INTO meta VALUES ('journal_format', ?)", (str(JOURNAL_FORMAT),))
             for part in parts:
                 if len(part) == 3:
                     first, ids, payloads = part
@@ -297,6 +334,8 @@ class Journal:
 
         moved = self._transaction(body)
         with self._lock:  # only once the keys are committed: the filter must never hold back a key
+            if upgrade:
+                self._format = JOURNAL_FORMAT
             if moved:
                 self._buffer = set()
             else:
@@ -304,10 +343,25 @@ class Journal:
             self._filter.add([k for k, _ in keys])
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
-        """Up to ``limit`` rows with a position above ``seq``, in order."""
+        """The rows with a position above ``seq``, in order, until they stand for ``limit`` positions
+        (a row of lines counts its lines; the last row may take the count past ``limit``)."""
+        out: list[tuple] = []
+        held = 0
         with self._lock:
-            return self._db.execute("SELECT seq, id, kind, payload FROM journal WHERE seq > ? ORDER BY seq LIMIT ?",
-                                    (seq, limit)).fetchall()
+            cur = self._db.execute("SELECT seq, id, kind, payload FROM journal WHERE seq > ? ORDER BY seq", (seq,))
+            while held < limit:
+                rows = cur.fetchmany(limit - held)
+                if not rows:
+                    break
+                out += rows
+                held += sum(positions(r) for r in rows)
+            cur.close()
+        return out
+
+    @property
+    def format(self) -> int:
+        """The file's journal format (see the module docstring)."""
+        return self._format
 
     def count(self) -> int:
         with self._lock:

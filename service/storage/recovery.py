@@ -12,8 +12,9 @@ Recovery, in order (each refusal leaves the service not ready, with an incident 
    if it holds the whole history (never pruned); otherwise recovery is refused, because a model
    built from part of the history would silently drop acknowledged events;
 3. the journal rows after that position, re-applied on the learner thread through
-   :meth:`Ingestor.apply_events`, the same code that applies live items, so the state after
-   recovery is bit-identical to the state before.
+   :meth:`Ingestor.apply_events` and :meth:`Ingestor.apply_prepared` (a row of an NDJSON body's
+   lines is parsed again by the same columnar reader), the same code that applies live items, so
+   the state after recovery is bit-identical to the state before.
 """
 
 from __future__ import annotations
@@ -28,7 +29,7 @@ from models import TrimtabError
 
 from service.engine import Engine
 from service.events import Event
-from service.storage.journal import EVENT, NOTE, ROLLBACK
+from service.storage.journal import EVENT, LINES, NOTE, ROLLBACK
 
 __all__ = ["DAMAGE_MARK", "RecoveryRefused", "check_storage", "decode_event", "encode_event", "load_state",
            "newest_good_checkpoint", "replay_rows", "serving_view"]
@@ -146,14 +147,25 @@ async def load_state(ing) -> tuple[Engine, int]:
 
 
 def replay_rows(ing, rows: list[tuple]) -> None:
-    """Learner thread: journal rows in order, through the same code as live items."""
+    """Learner thread: journal rows in order, through the same code as live items. A row of lines
+    is parsed by the reader that parsed its body (``ing.parser``) and applied as a prepared batch."""
     events: list[Event] = []
-    for _seq, _id, kind, payload in rows:
+    for seq, _id, kind, payload in rows:
         if kind == EVENT:
             events.append(decode_event(payload))
             continue
         ing.apply_events(events)
         events = []
+        if kind == LINES:
+            if ing.parser is None:
+                raise RecoveryRefused(f"journal row {seq} holds NDJSON lines, which need pyarrow to be read; "
+                                      "install it (the 'parquet' extra)")
+            try:
+                prepared = ing.parser.lines(payload)
+            except ValueError as exc:
+                raise RecoveryRefused(f"journal row {seq} cannot be re-applied: {exc}") from None
+            ing.apply_prepared(prepared)
+            continue
         body = orjson.loads(payload)
         with ing.lock:
             if kind == NOTE:

@@ -73,12 +73,32 @@ def insert_keys(db: sqlite3.Connection, buffer: set[bytes], pairs: list[tuple[by
 
     Returns whether the buffer was moved into ``seen`` (the caller then empties its mirror).
     """
-    db.executemany("INSERT INTO seen_new (h, seq) VALUES (?, ?)", pairs)
+    _insert_pairs(db, pairs)
     if len(buffer) + len(pairs) < BUFFER_KEYS:
         return False
     db.execute("INSERT INTO seen (h, seq) SELECT h, seq FROM seen_new ORDER BY h")
     db.execute("DELETE FROM seen_new")
     return True
+
+
+def _insert_pairs(db: sqlite3.Connection, pairs: list[tuple[bytes, int]]) -> None:
+    """``INSERT INTO seen_new`` of ``pairs``, in their order, in statements of many rows each.
+
+    A row per statement (``executemany``) costs about 3 us of CPU per key with the commit; a
+    statement of 256 rows about half of that (measured, 500 keys per commit). The statement sizes are
+    powers of two, so that a few prepared statements (the sqlite3 module caches them) cover any count.
+    """
+    at = 0
+    for size in _ROW_RUNS:
+        while len(pairs) - at >= size:
+            run = pairs[at:at + size]
+            db.execute(_INSERT_SQL[size], [x for pair in run for x in pair])
+            at += size
+
+
+#: rows per insert statement, largest first (256 rows bind 512 parameters, far below SQLite's limit)
+_ROW_RUNS = (256, 64, 16, 4, 1)
+_INSERT_SQL = {n: "INSERT INTO seen_new (h, seq) VALUES " + ",".join(("(?, ?)",) * n) for n in _ROW_RUNS}
 
 
 def number_events(keys: list[bytes | None], known: set[bytes], first_seq: int) -> tuple[list, list]:

@@ -25,7 +25,7 @@ from service.http.app import create_app
 from service.config import config_from_dict
 
 __all__ = ["AUTH", "FEATURES", "TOKEN", "TOKEN_ENV", "ServeProcess", "ServerThread", "demo_events", "free_port",
-           "make_config", "toml_text", "wait_ready"]
+           "journal_positions", "make_config", "toml_text", "wait_ready"]
 
 ROOT = Path(__file__).resolve().parents[2]
 FEED = ROOT / "replay_data" / "coldchain-demo.ndjson.gz"
@@ -34,6 +34,21 @@ TOKEN = "test-token-7c1e0f9a2b"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
 FEATURES = {"numeric": ["ambient_c", "compressor_duty", "door_open_s", "load_kg"], "categorical": ["van", "route"],
             "hash_bits": 10, "scaling": "warmup", "warmup_events": 200}
+
+
+def journal_positions(db) -> list[tuple[int, int, object]]:
+    """``(position, kind, content)`` for every position of a journal file (a ``sqlite3`` connection),
+    read with orjson only: an event row (kind 0) gives its decoded payload ``[id, ts, features,
+    target]``; a row of an NDJSON body's lines (kind 3, ``seq`` its last position) gives each of its
+    lines as kind 3 with the line's decoded JSON object; notes and rollbacks their decoded payload."""
+    out = []
+    for seq, kind, payload in db.execute("SELECT seq, kind, payload FROM journal ORDER BY seq"):
+        if kind == 3:
+            lines = payload.split(b"\n")[:-1]
+            out += [(seq - len(lines) + 1 + k, 3, orjson.loads(line)) for k, line in enumerate(lines)]
+        else:
+            out.append((seq, kind, orjson.loads(payload)))
+    return out
 
 
 def free_port() -> int:

@@ -14,7 +14,7 @@ import orjson
 
 from service.engine import Engine
 from service.events import EventValidator
-from service.storage.journal import EVENT, ROLLBACK
+from service.storage.journal import EVENT, LINES, ROLLBACK
 from tests.service.servicekit import ServeProcess, make_config, toml_text
 
 __all__ = ["STARTED", "TOKEN", "Client", "journal_replay", "start", "write_config"]
@@ -95,26 +95,36 @@ def journal_replay(config, db_path: Path) -> tuple[str, int, list[str], int]:
     """Replay the journal file offline: ``(state_digest, updates, event ids in order, last position)``.
 
     The rows are read with ``sqlite3`` and applied in position order to a fresh :class:`Engine`
-    (events in chunks, operator rollbacks between them), which is what a restart must reproduce.
+    (events in chunks, operator rollbacks between them), which is what a restart must reproduce. The
+    lines of an NDJSON body's row go through :meth:`EventValidator.parse_line` and ``Engine.prepare``,
+    not the service's columnar reader.
     """
     db = sqlite3.connect(db_path)
     try:
         rows = db.execute("SELECT seq, kind, payload FROM journal ORDER BY seq").fetchall()
     finally:
         db.close()
-    assert [r[0] for r in rows] == list(range(1, len(rows) + 1)), "the journal must hold the whole history"
     v = EventValidator(config)
     engine = Engine(config)
-    ids, chunk = [], []
-    for _seq, kind, payload in rows:
+    ids, chunk, seqs = [], [], []
+    for seq, kind, payload in rows:
         if kind == EVENT:
             obj = orjson.loads(payload)
             ids.append(obj[0])
             chunk.append(v.validate({"id": obj[0], "ts": obj[1], "features": obj[2], "target": obj[3]}))
+            seqs.append(seq)
             continue
+        if kind == LINES:  # an NDJSON body's accepted lines, ending at position seq: through the validator
+            lines = payload.split(b"\n")[:-1]
+            chunk += [v.parse_line(line, "journal") for line in lines]
+            ids += [e.id for e in chunk[len(chunk) - len(lines):]]
+            seqs += range(seq - len(lines) + 1, seq + 1)
+            continue
+        seqs.append(seq)
         engine.apply_events(chunk)
         chunk = []
         if kind == ROLLBACK:
             engine.rollback(orjson.loads(payload)["reason"])
     engine.apply_events(chunk)
-    return engine.state_digest, engine.model.n_updates, ids, len(rows)
+    assert seqs == list(range(1, len(seqs) + 1)), "the journal must hold the whole history"
+    return engine.state_digest, engine.model.n_updates, ids, len(seqs)

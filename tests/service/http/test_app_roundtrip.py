@@ -82,11 +82,16 @@ async def test_json_ndjson_score_card_read_your_writes(aiohttp_client, tmp_path)
 
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     rows = db.execute("SELECT seq, id, kind, payload FROM journal ORDER BY seq").fetchall()
-    assert [r[0] for r in rows] == list(range(1, 1251))
-    assert [r[1] for r in rows] == [e["id"] for e in events]
+    # JSON bodies: one row per event; the NDJSON body: one row of its lines, at its last position
+    assert [r[0] for r in rows] == list(range(1, 601)) + [1200] + list(range(1201, 1251))
+    per_event = rows[:600] + rows[601:]
+    assert [r[1] for r in per_event] == [e["id"] for e in events[:600] + events[1200:]]
     v = EventValidator(cfg)
-    for (_, _, kind, payload), e in zip(rows, events):
+    for (_, _, kind, payload), e in zip(per_event, events[:600] + events[1200:]):
         assert kind == 0 and orjson.loads(payload) == list(v.validate(e))
+    _, ident, kind, payload = rows[600]
+    assert (ident, kind) == (None, 3) and payload == nd + b"\n"  # the body's lines, as sent
+    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "2"
     assert db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
 
 

@@ -24,7 +24,7 @@ from service.events import EventValidator
 from service.ingest import encode_event
 from service.storage.journal import Journal
 from service.storage.seen import id_key
-from tests.service.servicekit import AUTH, TOKEN, ServeProcess, demo_events, make_config, toml_text, wait_ready
+from tests.service.servicekit import AUTH, TOKEN, ServeProcess, demo_events, journal_positions, make_config, toml_text, wait_ready
 
 
 def _post(url: str, events: list[dict], ndjson: bool) -> dict:
@@ -101,7 +101,7 @@ def test_sigkill_at_random_moments_loses_and_repeats_nothing(tmp_path):
     assert acked == {e["id"] for e in events}
 
     db = sqlite3.connect(tmp_path / "data" / "trimtab.sqlite")
-    ids = [r[0] for r in db.execute("SELECT id FROM journal WHERE kind = 0 ORDER BY seq")]
+    ids = [c[0] if kind == 0 else c["id"] for _, kind, c in journal_positions(db) if kind in (0, 3)]
     assert len(ids) == len(set(ids)) == len(acked) and set(ids) == acked
     by_id = {e["id"]: e for e in events}
     want = reference_digest(cfg, [by_id[i] for i in ids])
