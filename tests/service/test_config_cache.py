@@ -183,7 +183,7 @@ def test_a_replay_from_the_cache_imports_nothing_the_first_event_does_not_need(t
     from service.replay.scenario import write_ndjson
 
     feed = tmp_path / "feed.ndjson"
-    write_ndjson(feed, 300, seed=3, malformed_share=0.0, gzip=False)
+    write_ndjson(feed, 200, seed=3, malformed_share=0.0, gzip=False)  # fewer than check_every: no check, no river
     config = _config(tmp_path, GUARDED.read_text(encoding="utf-8"), "guarded.toml")
     env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])),
                TRIMTAB_CACHE_DIR=str(tmp_path / "cache"))  # an empty cache: the first replay validates
