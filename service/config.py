@@ -216,10 +216,11 @@ class ServiceConfig(_Section):
     #: once per this many milliseconds (0: after every slice); a held-back state follows within it
     publish_every_ms: float = Field(0.0, ge=0.0, le=60_000.0)
     #: Linux scheduling policy of the learner's threads when scorer processes run (they also run at
-    #: nice +5): "batch" (SCHED_BATCH: never preempts a scorer, longer slices), "idle" (SCHED_IDLE:
-    #: runs only on a core no scorer wants; ingest may stall on a saturated machine), "normal" (the
-    #: nice value alone); see docs/architecture.md, "Priorities"
-    learner_policy: Literal["batch", "idle", "normal"] = "batch"
+    #: nice +5): "auto" (SCHED_IDLE while the learner keeps up, SCHED_BATCH while it falls behind),
+    #: "batch" (SCHED_BATCH: never preempts a scorer, longer slices), "idle" (SCHED_IDLE: runs only on
+    #: a core no scorer wants; ingest may stall on a saturated machine), "normal" (the nice value
+    #: alone); see docs/architecture.md, "Priorities"
+    learner_policy: Literal["auto", "batch", "idle", "normal"] = "auto"
 
     @field_validator("scorers", mode="before")
     @classmethod

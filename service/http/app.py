@@ -32,7 +32,7 @@ from service.http import timeline
 from service.http.modelmetrics import ModelHealthCollector
 from service.http.pulse import PULSE, Pulse, pulse_context
 from service.http.bodies import BodyReader
-from service.http.fleet import ScorerFleet, ScorerSetup, auto_scorers, lower_learner_priority
+from service.http.fleet import PolicyGuard, ScorerFleet, ScorerSetup, auto_scorers, lower_learner_priority
 from service.http.looplag import LoopLag
 from service.http.transport import GuardedRunner, handler_options
 from service.config import Config, ConfigError, load_config
@@ -93,7 +93,7 @@ async def _lifecycle(app: web.Application):
     m.watch("trimtab_model_updates", lambda: ing.engine.model.n_updates if ing.engine else 0)
     m.watch("trimtab_ready", lambda: 1.0 if ing.ready else 0.0)
     m.watch("trimtab_remembered", lambda: len(svc.labels))
-    lag = LoopLag()
+    lag = svc.loop_lag = LoopLag()
     m.watch("trimtab_loop_lag_max_seconds", lambda: lag.max_s)  # since ready
     m.watch("trimtab_loop_busy_max_seconds", lambda: lag.busy_max_s)
     m.watch("trimtab_body_bytes_in_flight", lambda: svc.bodies.held)
@@ -280,7 +280,16 @@ async def _serve(config: Config, token: str | None) -> None:
         svc.metrics.watch("trimtab_scorers_running", lambda: len(fleet.pids))
         svc.metrics.watch("trimtab_scorer_restarts", lambda: fleet.restarts)
         # after the fleet's thread started, and not for it: replacements keep the scorers' priority
-        lowered = lower_learner_priority(cfg.learner_policy, keep=(fleet.watcher_id(),))
+        keep = (fleet.watcher_id(),)
+        if cfg.learner_policy == "auto":
+            ing, lag = svc.ingestor, svc.loop_lag
+            guard = PolicyGuard(lambda: (ing.queued_events, ing.applied_seq, lag.samples), cfg.queue_limit, keep)
+            lowered = guard.start()
+            fleet.on_tick = guard.tick
+            svc.metrics.watch("trimtab_learner_behind", lambda: guard.policy == "batch" and guard.adaptive)
+            svc.metrics.watch("trimtab_learner_policy_switches", lambda: guard.switches)
+        else:
+            lowered = lower_learner_priority(cfg.learner_policy, keep=keep)
         log.info("learner on local socket unix:@%s; %d scorer processes on the address; learner threads: %s",
                  name[1:], scorers, lowered)
     # the objects alive now (modules, the recovered engine) never become garbage: move them out of

@@ -27,12 +27,13 @@ import subprocess
 import sys
 import threading
 import time
+from collections.abc import Callable
 from contextlib import suppress
 from dataclasses import dataclass, field
 
 import orjson
 
-__all__ = ["LEARNER_NICE", "ScorerFleet", "ScorerSetup", "auto_scorers", "lower_learner_priority"]
+__all__ = ["LEARNER_NICE", "PolicyGuard", "ScorerFleet", "ScorerSetup", "auto_scorers", "lower_learner_priority"]
 
 log = logging.getLogger("trimtab.service")
 
@@ -40,6 +41,10 @@ log = logging.getLogger("trimtab.service")
 LEARNER_NICE = 5
 #: the environment variable that carries a scorer's setup (JSON) from the learner to the child
 SETUP_ENV = "TRIMTAB_SCORER_SETUP"
+#: ``learner_policy = "auto"``: the learner is behind after this many seconds without applying an event
+#: while events wait (or with half the queue waiting), and caught up after this many with at most a
+#: quarter waiting (values of common practice for a watchdog's hysteresis, no published source)
+STARVED_S, CALM_S = 0.5, 5.0
 
 
 def auto_scorers() -> int:
@@ -77,6 +82,76 @@ def lower_learner_priority(policy: str, keep: tuple[int, ...] = ()) -> str:
             except OSError:
                 kind = None  # not permitted here: the nice value alone
     return done + (f", {policy.upper()} scheduling" if kind is not None else "")
+
+
+def _may_leave_idle() -> bool:
+    """Whether this process's threads may go from ``SCHED_IDLE`` back to another policy: Linux lets a
+    thread do so only with ``CAP_SYS_NICE`` or an ``RLIMIT_NICE`` that admits its nice value. Tried on a
+    short-lived thread of its own, so no thread that matters is left under ``SCHED_IDLE``."""
+    if not hasattr(os, "SCHED_IDLE"):
+        return False
+    answer = []
+
+    def probe():
+        tid = threading.get_native_id()
+        try:
+            os.setpriority(os.PRIO_PROCESS, tid, min(19, os.getpriority(os.PRIO_PROCESS, tid) + LEARNER_NICE))
+            os.sched_setscheduler(tid, os.SCHED_IDLE, os.sched_param(0))
+            os.sched_setscheduler(tid, os.SCHED_BATCH, os.sched_param(0))
+            answer.append(True)
+        except OSError:
+            answer.append(False)
+
+    t = threading.Thread(target=probe, name="trimtab-policy-probe")
+    t.start()
+    t.join()
+    return answer[0]
+
+
+class PolicyGuard:
+    """``service.learner_policy = "auto"``: the learner's threads under ``SCHED_IDLE`` (scores never wait
+    for learning) while the learner keeps up, under ``SCHED_BATCH`` (a share of its own) while it falls
+    behind: for :data:`STARVED_S` the event loop did not run (so no request was even read) or events
+    waited and none was applied, or half of ``service.queue_limit`` waits. Back to ``SCHED_IDLE`` after
+    :data:`CALM_S` with at most a quarter waiting. Where the process may not leave ``SCHED_IDLE`` (no
+    ``CAP_SYS_NICE``, ``RLIMIT_NICE`` too low) it stays under ``SCHED_BATCH``. :meth:`tick` runs on the scorers' watcher thread, which keeps its priority, so a
+    starved learner cannot starve its own guard.
+
+    ``backlog()`` returns ``(events waiting, journal position applied, event-loop heartbeat)``, the
+    heartbeat a count the loop advances every few milliseconds (:class:`service.http.looplag.LoopLag`);
+    ``keep`` as for :func:`lower_learner_priority`."""
+
+    def __init__(self, backlog: Callable[[], tuple[int, int, int]], limit: int, keep: tuple[int, ...]) -> None:
+        self.backlog, self.limit, self.keep = backlog, limit, keep
+        self.policy, self.switches = "batch", 0
+        self.adaptive = _may_leave_idle()
+        self._applied = self._beat = -1
+        self._progress_at = self._calm_since = time.monotonic()
+
+    def start(self) -> str:
+        """Lower the learner's threads; return what was done (for the log)."""
+        self.policy = "idle" if self.adaptive else "batch"
+        done = lower_learner_priority(self.policy, self.keep)
+        return done + (" while it keeps up, BATCH while it falls behind" if self.adaptive
+                       else " (SCHED_IDLE could not be left again here: no CAP_SYS_NICE, RLIMIT_NICE too low)")
+
+    def tick(self, now: float) -> None:
+        waiting, applied, beat = self.backlog()
+        if beat != self._beat and (applied != self._applied or not waiting):
+            self._progress_at = now
+        self._applied, self._beat = applied, beat
+        behind = waiting >= self.limit / 2 or now - self._progress_at >= STARVED_S
+        if behind or waiting > self.limit / 4:
+            self._calm_since = now
+        if self.adaptive and behind and self.policy == "idle":
+            self._switch("batch", f"no progress for {now - self._progress_at:.1f} s, {waiting} events waiting")
+        elif self.policy == "batch" and self.adaptive and now - self._calm_since >= CALM_S:
+            self._switch("idle", f"caught up ({waiting} events waiting)")
+
+    def _switch(self, policy: str, why: str) -> None:
+        lower_learner_priority(policy, self.keep)
+        self.policy, self.switches = policy, self.switches + 1
+        log.info("learner threads now under SCHED_%s: %s", policy.upper(), why)
 
 
 @dataclass
@@ -128,6 +203,8 @@ class ScorerFleet:
     _thread: threading.Thread | None = None
     _life_w: int = -1
     _lock: threading.Lock = field(default_factory=threading.Lock)
+    #: called with ``time.monotonic()`` on every round of the watcher thread (a :class:`PolicyGuard`)
+    on_tick: Callable[[float], None] | None = None
 
     def watcher_id(self) -> int:
         """Native id of the thread that watches and replaces the scorers (0 before :meth:`start`)."""
@@ -165,6 +242,11 @@ class ScorerFleet:
         started.set()
         while not self._stop.wait(0.05):
             now = time.monotonic()
+            if self.on_tick is not None:
+                try:
+                    self.on_tick(now)
+                except Exception:  # noqa: BLE001 - the scorers are watched whatever the guard does
+                    log.exception("the learner's priority guard failed")
             with self._lock:
                 for slot in self._slots:
                     if slot.proc is not None:

@@ -62,6 +62,7 @@ class Service:
     publisher: object | None = None  # service.publish.SnapshotPublisher when scorer processes run
     fleet: object | None = None  # service.http.fleet.ScorerFleet when scorer processes run
     bodies: BodyReader | None = None  # set by the app factory
+    loop_lag: object | None = None  # service.http.looplag.LoopLag, sampling the event loop once started
     card_lock: asyncio.Lock = field(default_factory=asyncio.Lock)
     card_cache: tuple | None = None  # (state key, serialized model card)
     openapi: bytes = b""

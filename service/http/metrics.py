@@ -81,6 +81,10 @@ class Metrics:
                 ("trimtab_published_age_seconds", "Seconds since the newest model was published"),
                 ("trimtab_scorers_running", "Scorer processes running"),
                 ("trimtab_scorer_restarts", "Scorer processes started to replace one that exited"),
+                ("trimtab_learner_behind", "1 while the learner's threads run under SCHED_BATCH because it fell "
+                 "behind (service.learner_policy = \"auto\")"),
+                ("trimtab_learner_policy_switches", "Switches of the learner's scheduling policy between SCHED_IDLE "
+                 "and SCHED_BATCH (service.learner_policy = \"auto\")"),
             )}
 
     def watch(self, name: str, fn: Callable[[], float]) -> None:

@@ -11,6 +11,7 @@ import json
 import os
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import pytest
@@ -87,4 +88,55 @@ def test_serve_runs_its_learner_under_the_configured_policy(tmp_path):
         assert {_state(int(t)) for t in os.listdir(f"/proc/{scorer}/task")} == {("SCHED_OTHER", base)}
         assert any("nice +5, IDLE scheduling" in line for line in server.log), "".join(server.log)
     finally:
+        assert server.stop() == 0
+
+
+_HOG = "import sys, time\nend = time.monotonic() + float(sys.argv[1])\nwhile time.monotonic() < end:\n    pass\n"
+
+
+def _learner_policies(server) -> set[str]:
+    """The policies of the learner's threads but the scorers' watcher (the one at the default policy)."""
+    states = [_state(int(t))[0] for t in os.listdir(f"/proc/{server.proc.pid}/task")]
+    states.remove("SCHED_OTHER")
+    return set(states)
+
+
+def test_auto_puts_scores_first_and_lets_a_starved_learner_catch_up(tmp_path):
+    """The default, ``"auto"``: the learner's threads under SCHED_IDLE while it keeps up. With every core
+    taken by busy processes at the default priority (bounded: 40 s), a learner left under SCHED_IDLE
+    would get a few thousandths of a core and take many seconds to answer a 500-event body; the guard
+    moves it to SCHED_BATCH within about half a second, the body is acknowledged, and once the cores
+    are free the learner returns to SCHED_IDLE. The log and ``/metrics`` say what happened."""
+    from tests.service.publish.scorerkit import Conn
+    from tests.service.servicekit import demo_events
+
+    _, server = start_serve(tmp_path, scorers=1)
+    hogs: list[subprocess.Popen] = []
+    try:
+        wait_for(lambda: len(scorer_pids(server)) == 1)
+        assert _learner_policies(server) == {"SCHED_IDLE"}
+        assert any("IDLE scheduling while it keeps up" in line for line in server.log), "".join(server.log)
+        hogs = [subprocess.Popen([sys.executable, "-c", _HOG, "40"]) for _ in range(os.cpu_count() or 2)]
+        time.sleep(1.0)
+        start = time.monotonic()
+        conn = Conn(server.url)
+        status, answer = conn.call("POST", "/v1/events", demo_events(500, tag="starved"), ndjson=True)
+        took = time.monotonic() - start
+        conn.close()
+        assert status == 200 and answer["accepted"] == 500, answer
+        assert took < 15.0, took
+        assert any("now under SCHED_BATCH" in line for line in server.log), "".join(server.log)
+        for hog in hogs:
+            hog.kill()
+        wait_for(lambda: _learner_policies(server) == {"SCHED_IDLE"}, timeout=30)
+        assert any("now under SCHED_IDLE: caught up" in line for line in server.log), "".join(server.log)
+        conn = Conn(server.url)
+        _, metrics = conn.call("GET", "/metrics")
+        conn.close()
+        switches = [line for line in metrics["text"].splitlines() if line.startswith("trimtab_learner_policy_switches ")]
+        assert switches and float(switches[0].split()[1]) >= 2.0, switches
+    finally:
+        for hog in hogs:
+            hog.kill()
+            hog.wait()
         assert server.stop() == 0
