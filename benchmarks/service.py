@@ -535,6 +535,16 @@ def publish_to_serve(url: str, rounds: int = 200) -> dict:
     return {"p50_ms": 1e3 * out[len(out) // 2], "p99_ms": 1e3 * out[int(0.99 * len(out))], "max_ms": 1e3 * out[-1]}
 
 
+def _gauge(url: str, name: str) -> float | None:
+    """The value of metric ``name`` in the service's ``/metrics`` (``None`` when it does not show it)."""
+    req = urllib.request.Request(url + "/metrics", headers={"Authorization": f"Bearer {TOKEN}"})
+    with urllib.request.urlopen(req, timeout=30) as answer:
+        for line in answer.read().decode().splitlines():
+            if line.startswith(name + " "):
+                return float(line.split()[1])
+    return None
+
+
 def _spread(values: list[float]) -> dict:
     """Median, lowest and highest of repeated figures (a noisy machine: one run is one draw)."""
     v = sorted(values)
@@ -581,6 +591,8 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
                 idle = run_load("rate", url, str(secs), "1000")
                 phases = [_under_ingest(url, secs, f"g{mode}{k}", rss) for k in range(repeat)]
                 pts = publish_to_serve(url) if scorers != 0 else None
+                auto = scorers != 0 and policy in (None, "auto")  # the default policy is "auto"
+                switches = _gauge(url, "trimtab_learner_policy_switches") if auto else None
             finally:
                 svc.terminate()
                 svc.wait(60)
@@ -606,6 +618,8 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
             r["repeats"] = {"score_p99_ms_under_ingest": _spread(p99s), "ingest_events_per_s": _spread(rates)}
         if scorers != 0:  # the scorer processes' CPU per score (forwarded producer bodies included)
             r["scorer_cpu_us_per_score_under_ingest"] = _spread(scorer_us) if repeat > 1 else round(scorer_us[0], 1)
+        if switches is not None:  # times the learner went from SCHED_IDLE to SCHED_BATCH or back
+            r["learner_policy_switches"] = int(switches)
         if pts is not None:
             r["publish_to_serve_ms_p99"] = round(pts["p99_ms"], 2)
             r["publish_to_serve_ms_p50"] = round(pts["p50_ms"], 2)
@@ -616,7 +630,8 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
               f"{busy['client_gc_max_ms']} ms), its own send lateness p99 {busy['client_send_late_p99_ms']} ms; "
               f"ingest client CPU {ing['client_cpu_share']:.2f}; server CPU s in the {secs:g} s of scores under "
               f"ingest {busy['server_cpu_s']}; peak RSS MB {peaks}"
-              + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else ""), file=sys.stderr)
+              + (f"; publish-to-serve p99 {pts['p99_ms']:.2f} ms" if pts else "")
+              + (f"; learner policy switches {int(switches)}" if switches is not None else ""), file=sys.stderr)
     s, m = res["single"], res["scorers"]
     res["ratios"] = {"score_p99_under_ingest_scorers_vs_single": round(m["score_p99_ms_under_ingest"]
                                                                        / s["score_p99_ms_under_ingest"], 3),
