@@ -133,7 +133,8 @@ class PolicyGuard:
         self.policy = "idle" if self.adaptive else "batch"
         done = lower_learner_priority(self.policy, self.keep)
         return done + (" while it keeps up, BATCH while it falls behind" if self.adaptive
-                       else " (SCHED_IDLE could not be left again here: no CAP_SYS_NICE, RLIMIT_NICE too low)")
+                       else " (the idle policy is not used: this system has none, or a thread under it could not "
+                             "leave it again: no CAP_SYS_NICE, RLIMIT_NICE too low)")
 
     def tick(self, now: float) -> None:
         waiting, applied, beat = self.backlog()
