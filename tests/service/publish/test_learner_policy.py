@@ -140,3 +140,51 @@ def test_auto_puts_scores_first_and_lets_a_starved_learner_catch_up(tmp_path):
             hog.kill()
             hog.wait()
         assert server.stop() == 0
+
+
+def test_the_guard_s_rule_on_a_made_up_clock(monkeypatch):
+    """:class:`PolicyGuard`'s decisions alone, on a clock and a backlog of our own: behind after
+    ``STARVED_S`` without progress while events wait (or with half the queue waiting, progress or
+    not), never while nothing waits and the loop runs, back after ``CALM_S`` of calm; and never a
+    switch where the process may not leave SCHED_IDLE. (What a switch does to the threads is the
+    test above, on a real server.)"""
+    from service.http import fleet
+
+    done = []
+    monkeypatch.setattr(fleet, "lower_learner_priority", lambda policy, keep=(): done.append(policy) or "")
+    monkeypatch.setattr(fleet, "_may_leave_idle", lambda: True)
+    state = {"waiting": 0, "applied": 0, "beat": 0}
+    guard = fleet.PolicyGuard(lambda: (state["waiting"], state["applied"], state["beat"]), 1000, ())
+    guard.start()
+    assert guard.policy == "idle" and done == ["idle"]
+
+    def run(t0: float, t1: float, step: float = 0.05, **change) -> None:
+        t = t0
+        while t <= t1 + 1e-9:
+            state["beat"] += 1  # the event loop runs
+            for key, delta in change.items():
+                state[key] += delta
+            guard.tick(t)
+            t += step
+
+    run(0.0, 10.0)  # nothing waits: never behind
+    state["waiting"] = 10
+    run(10.0, 10.0 + fleet.STARVED_S - 0.1)  # events wait, none applied yet, not for long
+    assert guard.policy == "idle"
+    run(10.5, 11.0)
+    assert guard.policy == "batch" and done == ["idle", "batch"]
+    run(11.0, 11.0 + fleet.CALM_S - 0.2, applied=5)  # progress again, a few events waiting: calm, not yet long enough
+    assert guard.policy == "batch"
+    run(16.0, 17.0, applied=5)
+    assert guard.policy == "idle" and guard.switches == 2
+    state["waiting"] = 600  # half the queue waits, though events are applied
+    run(17.0, 17.1, applied=5)
+    assert guard.policy == "batch"
+
+    monkeypatch.setattr(fleet, "_may_leave_idle", lambda: False)
+    done.clear()
+    stuck = fleet.PolicyGuard(lambda: (10, 0, 0), 1000, ())
+    assert "not used" in stuck.start() and done == ["batch"]
+    for k in range(100):
+        stuck.tick(k * 0.1)
+    assert stuck.policy == "batch" and stuck.switches == 0 and done == ["batch"]
