@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import json
 import os
+import resource
+import shutil
 import subprocess
 import sys
 import time
@@ -188,3 +190,36 @@ def test_the_guard_s_rule_on_a_made_up_clock(monkeypatch):
     for k in range(100):
         stuck.tick(k * 0.1)
     assert stuck.policy == "batch" and stuck.switches == 0 and done == ["batch"]
+
+
+_GUARD_CHILD = """
+import json, os, threading
+from service.http.fleet import PolicyGuard
+guard = PolicyGuard(lambda: (0, 0, 0), 1000, ())
+said = guard.start()
+print(json.dumps({"adaptive": guard.adaptive, "said": said, "policy": os.sched_getscheduler(threading.get_native_id()),
+                  "nice": os.getpriority(os.PRIO_PROCESS, threading.get_native_id())}))
+"""
+
+
+@pytest.mark.skipif(shutil.which("setpriv") is None or os.geteuid() != 0, reason="util-linux setpriv, run as root")
+def test_a_learner_that_could_not_leave_the_idle_policy_stays_under_batch():
+    """Linux lets a thread leave SCHED_IDLE only with CAP_SYS_NICE or an RLIMIT_NICE that admits its nice
+    value. A process started without CAP_SYS_NICE (``setpriv``) and with RLIMIT_NICE 0 (the usual
+    default) finds out on its throw-away thread and puts the learner under SCHED_BATCH, saying why;
+    the same code with CAP_SYS_NICE uses the idle policy."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    limit = resource.getrlimit(resource.RLIMIT_NICE)[0]
+    if limit == resource.RLIM_INFINITY or limit >= 15:
+        pytest.skip(f"RLIMIT_NICE {limit} admits nice +5 here")
+    bare = subprocess.run(["setpriv", "--inh-caps=-sys_nice", "--bounding-set=-sys_nice", "--", sys.executable,
+                           "-c", _GUARD_CHILD], env=env, capture_output=True, text=True, timeout=60, cwd=ROOT)
+    assert bare.returncode == 0, bare.stderr[-2000:]
+    got = json.loads(bare.stdout.strip().splitlines()[-1])
+    assert got["adaptive"] is False and "not used" in got["said"], got
+    assert got["policy"] == os.SCHED_BATCH and got["nice"] >= 5, got
+    full = subprocess.run([sys.executable, "-c", _GUARD_CHILD], env=env, capture_output=True, text=True, timeout=60,
+                          cwd=ROOT)
+    assert full.returncode == 0, full.stderr[-2000:]
+    got = json.loads(full.stdout.strip().splitlines()[-1])
+    assert got["adaptive"] is True and got["policy"] == os.SCHED_IDLE, got
