@@ -14,7 +14,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 from service.config_common import fingerprint
-from service.version import trimtab_version as _trimtab_version
+from service.version import trimtab_version
 
 if TYPE_CHECKING:
     from service.config import Config
@@ -48,7 +48,7 @@ def model_file(engine, config: Config) -> dict:
         return {"intercept": b, "numeric": w[:n].tolist(), "buckets": w[n:].tolist()}
 
     return {
-        "format": "trimtab-model", "version": MODEL_FILE_VERSION, "trimtab_version": _trimtab_version(),
+        "format": "trimtab-model", "version": MODEL_FILE_VERSION, "trimtab_version": trimtab_version(),
         "name": config.name, "config_fingerprint": fingerprint(config), "state_digest": engine.state_digest,
         "events_seen": engine.events, "learned": engine.learned, "updates": model.n_updates,
         "task": spec.task, "loss": spec.loss, "link": "logistic" if spec.task == "binary" else "identity",

@@ -352,10 +352,10 @@ def test_model_file_version_is_the_installed_distribution():
     reads for the installed distribution (found without importing it)."""
     from importlib.metadata import PackageNotFoundError, version
 
-    from service.model_file import _trimtab_version
+    from service.version import trimtab_version
 
     try:
         expected = version("trimtab")
     except PackageNotFoundError:
         expected = "unknown (not installed as a package)"
-    assert _trimtab_version() == expected
+    assert trimtab_version() == expected
