@@ -156,3 +156,43 @@ def test_a_preloaded_detector_loads_river_s_module_in_the_background(kind, monke
     assert det._fresh is None
     det.feed([0.0, 1.0])
     assert type(det._fresh).__module__ == f"_trimtab_river_{kind}"
+
+
+LIGHT_LOAD = """
+import json, random, sys
+from service.monitor.detectors import ChangeDetector, river_detector
+cls = river_detector("page_hinkley")
+heavy = sorted({m.split(".")[0] for m in sys.modules if m.startswith(("narwhals", "scipy", "river.stats"))})
+from river import drift, stats  # the usual import, after ours: river's own package
+rng = random.Random(int(sys.argv[1]))
+stream = [rng.gauss(0.0, 1.0) + (3.0 if 300 <= i < 600 else 0.0) for i in range(1500)]
+det, ref = ChangeDetector("page_hinkley", threshold=5.0, mode="both"), drift.PageHinkley(threshold=5.0, mode="both")
+ours = [i for i, x in enumerate(stream) if det.feed([x])]
+theirs = []
+for i, x in enumerate(stream):
+    ref.update(x)
+    if ref.drift_detected:
+        theirs.append(i)
+print(json.dumps({"module": cls.__module__, "heavy": heavy, "ours": ours, "theirs": theirs,
+                  "stats_is_package": stats.__name__ == "river.stats" and hasattr(stats, "Var")}))
+"""
+
+
+def test_page_hinkley_loaded_without_river_stats_package_fires_as_river_s():
+    """In a fresh process, Page-Hinkley loads with river's ``Mean`` from its own file (no ``river.stats``
+    package, narwhals or scipy); it then fires at the same indices as ``river.drift.PageHinkley``
+    imported the usual way afterwards, and ``river.stats`` is river's whole package."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[3]
+    for seed in (1, 2):
+        out = subprocess.run([sys.executable, "-c", LIGHT_LOAD, str(seed)], capture_output=True, text=True,
+                             cwd=root, env={**__import__("os").environ, "PYTHONPATH": str(root)}, timeout=120)
+        assert out.returncode == 0, out.stderr[-2000:]
+        got = json.loads(out.stdout.strip().splitlines()[-1])
+        assert got["module"] == "_trimtab_river_page_hinkley"
+        assert got["heavy"] == []
+        assert got["ours"] == got["theirs"] and got["ours"]
+        assert got["stats_is_package"]
