@@ -19,7 +19,7 @@ alike), each as its own ``python`` process timed from start to exit:
 * ``first_learned``: seconds from spawning ``trimtab replay`` of the whole NDJSON feed (``--no-report``)
   to the end of its first ``Engine.apply``, i.e. its first chunk learned (a wrapper patches that one
   method in the child and prints the time); the issue's own measure, ``first_event`` bounds it;
-* ``draw``: in this process, drawing one run's report page (matplotlib loaded beforehand) from the
+* ``draw``: in this process, drawing one run's report page (its SVG figures and the HTML) from the
   feed's trace and from the same trace ten times over (``report_draw_seconds_per_run`` and
   ``..._10x_feed``: the page's drawing time should not grow with the feed; goal <= 0.5 s).
 
@@ -189,14 +189,9 @@ def commands(folder: Path, nd: Path, parquet: Path, one: Path) -> dict[str, list
 
 
 def drawing(nd: Path, folder: Path, repeat: int) -> dict:
-    """Seconds to draw one run's report page in this process (matplotlib already loaded), for the
-    feed's own trace and for the same trace ten times over (a feed ten times longer), median of
-    ``repeat``: the envelope should make the two equal."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot  # noqa: F401
-
+    """Seconds to draw one run's report page in this process, for the feed's own trace and for the same
+    trace ten times over (a feed ten times longer), median of ``repeat``: the envelope should make the
+    two equal."""
     from service.config import load_config
     from service.replay.report import write_report
     from service.replay.runner import run_replay

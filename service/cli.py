@@ -8,7 +8,6 @@ module (``replay``, ``demo``, ``app``); this file only parses arguments and maps
 from __future__ import annotations
 
 import argparse
-import contextlib
 import json
 import sys
 
@@ -97,25 +96,13 @@ def _check_config(args) -> int:
     return 0
 
 
-def _painter(args) -> contextlib.AbstractContextManager:
-    """For an offline replay that draws a report, its painter, started before anything else is imported
-    (its own start-up, matplotlib's import, then runs beside this process's imports); else nothing."""
-    if args.command != "replay" or args.to or args.no_report or not args.config or not args.out:
-        return contextlib.nullcontext()
-    from service.replay.painter import Painter
-
-    return Painter(runs=len(args.config))
-
-
 def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
-    with _painter(args) as painter:
-        return _run(args, painter)
+    return _run(build_parser().parse_args(argv))
 
 
-def _run(args, painter) -> int:
+def _run(args) -> int:
     from models import InvalidSettings, TrimtabError
-    from service.replay.painter import ReportFailed
+    from service.replay.report import ReportFailed
     from service.storage.dirlock import DataDirLocked
 
     try:
@@ -128,7 +115,7 @@ def _run(args, painter) -> int:
         if args.command == "replay":
             from service.replay.runner import replay_main
 
-            return replay_main(args, painter)
+            return replay_main(args)
         if args.command == "sweep":
             from service.replay.sweep import sweep_main
 

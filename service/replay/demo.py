@@ -60,17 +60,13 @@ def run_demo(out: str | Path, events: int | None = None, *, mode: str = "lines")
     feed, _ = _feed(out, events)
     configs = [load_config(p) for p in config_paths]
     start = time.perf_counter()
-    from service.replay.painter import Painter
-
-    with Painter(len(configs)) as painter:  # imports matplotlib in its own process while the kernels compile and the runs go
-        results = run_all([feed], configs, [str(p) for p in config_paths], jobs=min(2, os.cpu_count() or 1),
-                          mode=mode)
-        report, truth = _finish(out, feed, results, painter)
+    results = run_all([feed], configs, [str(p) for p in config_paths], jobs=min(2, os.cpu_count() or 1), mode=mode)
+    report, truth = _finish(out, feed, results)
     return {"feed": str(feed), "truth": truth, "report": str(report), "seconds": time.perf_counter() - start,
             "runs": [r["summary"] for r in results]}
 
 
-def _finish(out: Path, feed: Path, results: list[dict], painter) -> tuple[Path, dict]:
+def _finish(out: Path, feed: Path, results: list[dict]) -> tuple[Path, dict]:
     """Mark the scenario's known events in the results and write the outputs; the report's path and the truth."""
     from service.replay.report import DEMO_CAUTION
     from service.replay.runner import write_outputs
@@ -83,7 +79,7 @@ def _finish(out: Path, feed: Path, results: list[dict], painter) -> tuple[Path, 
              {"event": t.recalibration_index, "label": "probe recalibration (a real change)"}]
     for r in results:
         r["summary"]["progressive_loss_outside_fault"] = outside_window(r["trace"], t.fault_start, t.fault_stop)
-    return write_outputs(out, [feed], results, notes=notes, caution=DEMO_CAUTION, painter=painter), truth
+    return write_outputs(out, [feed], results, notes=notes, caution=DEMO_CAUTION), truth
 
 
 def outside_window(trace: dict, start: int, stop: int) -> float | None:

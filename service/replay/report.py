@@ -1,7 +1,7 @@
 """The replay report: one self-contained HTML page with its plots embedded, readable offline.
 
-``report.html`` carries its PNG plots inside the page (``data:`` URIs; no scripts, no fonts, no
-network), so the one file can be mailed and opened from disk. For each run the page shows a verdict
+``report.html`` carries its plots inside the page as inline SVG (:mod:`service.replay.figures`; no
+scripts, no fonts, no network), so the one file can be mailed and opened from disk. For each run the page shows a verdict
 in plain words and its warnings, a figure of held-out loss (raw vs averaged) with the progressive
 loss and the baseline's (the running mean of the target, or the base rate), the step size and the
 distance between the two iterates, with rollbacks and restarts marked; with several runs one figure
@@ -12,20 +12,21 @@ Every series is thinned to a min/max envelope of at most a few thousand points
 (:mod:`service.replay.plotdata`), so drawing takes the same time whatever the feed's length. A run
 without held-out events (monitor off, ``holdout_share = 0``, a feed too short) or without any
 check draws what it has and says what is missing instead of failing on an empty log axis.
-
-``trimtab replay`` draws the page in its own process (:mod:`service.replay.painter`), an interpreter
-that imports only numpy and matplotlib.
+Drawing a page takes a few tens of milliseconds in the replay's own process.
 """
 
 from __future__ import annotations
 
-import base64
 import math
 from pathlib import Path
 
 from service.replay.plotdata import thin_trace
 
-__all__ = ["CAUTION", "DEMO_CAUTION", "verdict", "write_report"]
+__all__ = ["CAUTION", "DEMO_CAUTION", "ReportFailed", "verdict", "write_report"]
+
+
+class ReportFailed(Exception):
+    """The page could not be drawn or written (the run's other outputs are not affected); ``str()`` says why."""
 
 #: The caution for any feed: what a replay's numbers are, and are not, good for.
 CAUTION = ("Decision support only. A replay shows how a learning configuration behaves on a recorded "
@@ -218,12 +219,12 @@ max-width:1100px;color:#222;padding:0 1em}table{border-collapse:collapse;font-si
 padding:4px 6px;text-align:right;vertical-align:top}th{background:#f3f3f3}td:first-child,th:first-child{text-align:left}
 .caution{border:2px solid #b35806;background:#fff4e5;padding:0.8em 1em;margin:1em 0}.verdict{font-size:1.1em;
 padding:0.4em 0.8em;border-left:5px solid #1b9e77;background:#f4faf7}.verdict.acted{border-left-color:#d95f02;
-background:#fdf5ef}ul.warnings{color:#8c2d04}img{max-width:100%;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}"""
+background:#fdf5ef}ul.warnings{color:#8c2d04}figure.chart{margin:1em 0}figure.chart svg{max-width:100%;height:auto;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}"""
 
 
-def _img(png: bytes, alt: str) -> str:
-    data = base64.b64encode(png).decode("ascii")
-    return f"<img src='data:image/png;base64,{data}' alt='{_escape(alt)}'>"
+def figure(svg: str, alt: str) -> str:
+    """An inline ``<svg>`` figure with its text alternative (screen readers read ``aria-label``)."""
+    return f"<figure class='chart' aria-label='{_escape(alt)}'>{svg}</figure>"
 
 
 def write_report(out: str | Path, summary: dict, results: list[dict], notes: list[dict] | None = None,
@@ -246,17 +247,17 @@ def write_report(out: str | Path, summary: dict, results: list[dict], notes: lis
     sections = []
     for run, res, plot in zip(runs, results, plots):
         unit = _LOSS_UNITS.get(res.get("loss", "squared"), "loss")
-        png = run_figure(run, plot, unit, notes)
+        svg = run_figure(run, plot, unit, notes)
         acted = " acted" if (run.get("rollbacks") or run.get("restarts") or run.get("warnings")
                              or run.get("diverged")) else ""
         sections.append(
             f"<h2>{_escape(run['name'])}</h2><p class='verdict{acted}'>{_escape(run['verdict'])}</p>"
-            f"{_warnings(run)}{_img(png, 'loss with its baseline, step size and distance of run ' + run['name'])}"
+            f"{_warnings(run)}{figure(svg, 'loss with its baseline, step size and distance of run ' + run['name'])}"
             f"<h3>What the monitor did</h3>{_incidents(run)}{_rejections(run)}")
     compare = ""
     if len(runs) > 1:
         unit = _LOSS_UNITS.get(results[0].get("loss", "squared"), "loss")
-        compare = _img(compare_figure(runs, plots, unit, notes), "progressive and held-out loss of every run")
+        compare = figure(compare_figure(runs, plots, unit, notes), "progressive and held-out loss of every run")
     feeds = ", ".join(_escape(f) for f in summary.get("feeds", [summary.get("feed")]))
     verdicts = "".join(f"<li><b>{_escape(r['name'])}</b>: {_escape(r['verdict'])}</li>" for r in runs)
     title = "Runs side by side" if len(runs) > 1 else "The run"

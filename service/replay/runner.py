@@ -39,8 +39,8 @@ import numpy as np
 from models import InvalidSettings
 
 from service.config_cache import load_config_cached
-from service.replay.painter import ReportFailed
 from service.replay.progress import Progress, progress_mode
+from service.replay.report import ReportFailed
 
 if TYPE_CHECKING:
     from service.config import Config
@@ -341,15 +341,14 @@ def run_all(feeds, configs: list[Config], paths: list[str], *, jobs: int, mode: 
 
 
 def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool = True, notes=None,
-                  caution: str | None = None, painter=None) -> Path:
+                  caution: str | None = None) -> Path:
     """Write ``summary.json``, ``<name>/model.json``, ``<name>/state.bin`` and ``state.json`` (for results
-    that carry their state) and (unless ``report=False``) ``report.html``
-    (with ``caution``, or the general caution of :data:`service.replay.report.CAUTION`), drawn by
-    ``painter`` (a :class:`service.replay.painter.Painter` started earlier) or a fresh one while the
-    other files are written. Returns the page's path (``summary.json``'s without a report).
+    that carry their state) and (unless ``report=False``) ``report.html`` (with ``caution``, or the general
+    caution of :data:`service.replay.report.CAUTION`). Returns the page's path (``summary.json``'s without
+    a report).
 
-    Raises :class:`service.replay.painter.ReportFailed` if the page could not be drawn; every other
-    output is written by then.
+    Raises :class:`service.replay.report.ReportFailed` if the page could not be drawn or written; every
+    other output is written by then.
     """
     from service.storage.promote import write_run_state
 
@@ -358,23 +357,21 @@ def write_outputs(out: str | Path, feeds, results: list[dict], *, report: bool =
     feeds = [str(f) for f in feeds]
     summary = {"feed": feeds[0] if len(feeds) == 1 else feeds, "feeds": feeds,
                "runs": [r["summary"] for r in results]}
-    with contextlib.ExitStack() as stack:
-        if report:
-            from service.replay.painter import Painter
+    for r in results:
+        folder = out / r["summary"]["name"]
+        folder.mkdir(exist_ok=True)
+        (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
+        if "state" in r and "config" in r:  # the final state, for trimtab serve --start-from DIR/NAME
+            write_run_state(folder, r["state"], r["summary"], r["config"])
+    (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
+    if not report:
+        return out / "summary.json"
+    from service.replay.report import CAUTION, write_report
 
-            # matplotlib in a fresh process: the replay process (numba, its LLVM, the feed readers) would
-            # otherwise carry the plotting stack too, and its peak memory is part of the replay's contract
-            if painter is None:
-                painter = stack.enter_context(Painter(len(results)))
-            painter.send(out, summary, results, notes, caution)  # drawn while the files below are written
-        for r in results:
-            folder = out / r["summary"]["name"]
-            folder.mkdir(exist_ok=True)
-            (folder / "model.json").write_text(json.dumps(_clean(r["model"]), indent=2) + "\n", encoding="utf-8")
-            if "state" in r and "config" in r:  # the final state, for trimtab serve --start-from DIR/NAME
-                write_run_state(folder, r["state"], r["summary"], r["config"])
-        (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
-        return painter.wait() if report else out / "summary.json"
+    try:
+        return write_report(out, summary, results, notes, caution or CAUTION)
+    except OSError as exc:  # the page's file: the folder is not writable, the disk is full, ...
+        raise ReportFailed(f"{exc.strerror or exc}: {exc.filename or out / 'report.html'}") from exc
 
 
 def _configs(paths: list[str]) -> list[Config]:
@@ -389,12 +386,11 @@ def _configs(paths: list[str]) -> list[Config]:
     return configs
 
 
-def replay_main(args, painter=None) -> int:
+def replay_main(args) -> int:
     """``trimtab replay``: offline runs (``-c ... --out``) or a live replay (``--to URL``).
 
-    ``painter``: the report's :class:`~service.replay.painter.Painter` if the caller started it
-    already (the command line does, before its imports); else one is started here. A report that
-    fails is said on stderr (exit status 1) after the runs' outputs are written and their lines printed.
+    A report that fails is said on stderr (exit status 1) after the runs' outputs are written and their
+    lines printed.
     """
     from service.feeds.files import detect_format
 
@@ -414,18 +410,13 @@ def replay_main(args, painter=None) -> int:
         raise InvalidSettings("must be at least 1", where="--jobs")
     mode = progress_mode(args.no_progress)
     report = not getattr(args, "no_report", False)
-    with contextlib.ExitStack() as stack:
-        if report and painter is None:
-            from service.replay.painter import Painter
-
-            painter = stack.enter_context(Painter(len(configs)))  # loads matplotlib while the runs go
-        results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
-                          columnar=not getattr(args, "exact_parse", False))
-        failed = None
-        try:
-            written = write_outputs(args.out, args.feeds, results, report=report, painter=painter)
-        except ReportFailed as exc:
-            written, failed = Path(args.out) / "summary.json", exc
+    results = run_all(args.feeds, configs, list(args.config), jobs=jobs, mode=mode,
+                      columnar=not getattr(args, "exact_parse", False))
+    failed = None
+    try:
+        written = write_outputs(args.out, args.feeds, results, report=report)
+    except ReportFailed as exc:  # the page only: the runs' outputs are written by now
+        written, failed = Path(args.out) / "summary.json", exc
     for r in results:
         s = r["summary"]
         print(f"{s['name']}: {s['events']:,} events, {s['rejected']:,} rejected, "

@@ -2,13 +2,11 @@
 
 The best runs (by the ranking of :func:`service.replay.sweep.rank`) are drawn by the replay
 report's own figure functions (:mod:`service.replay.figures`), so a sweep's curves read exactly
-like a replay's; their PNGs are embedded in the page as data URIs, so
-``sweep.html`` is one file that can be mailed and opened from disk.
+like a replay's; they are inline SVG, so ``sweep.html`` is one file that can be mailed and opened from disk.
 """
 
 from __future__ import annotations
 
-import base64
 import html
 import json
 from pathlib import Path
@@ -22,7 +20,7 @@ _STYLE = """body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sa
 max-width:1100px;color:#222;padding:0 1em}table{border-collapse:collapse;font-size:13px;margin:1em 0}th,td{border:1px solid #ccc;
 padding:4px 6px;text-align:right;vertical-align:top}th{background:#f3f3f3}td.l,th.l{text-align:left}
 .caution{border:2px solid #b35806;background:#fff4e5;padding:0.8em 1em;margin:1em 0}.note{border-left:5px solid #d95f02;
-background:#fdf5ef;padding:0.4em 0.8em}img{max-width:100%;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}
+background:#fdf5ef;padding:0.4em 0.8em}figure.chart{margin:1em 0}figure.chart svg{max-width:100%;height:auto;border:1px solid #ddd}code{font-size:12px}.wide{overflow-x:auto}
 tr.failed td{color:#a50026}"""
 
 
@@ -32,11 +30,6 @@ def _num(x) -> str:
     if isinstance(x, int):
         return f"{x:,}"
     return f"{x:.5g}"
-
-
-def _img(png: bytes, alt: str) -> str:
-    data = base64.b64encode(png).decode("ascii")
-    return f"<img src='data:image/png;base64,{data}' alt='{html.escape(alt)}'>"
 
 
 def _ranking_table(sweep: dict) -> str:
@@ -64,7 +57,7 @@ def _curves(sweep: dict, results: dict) -> str:
     """The replay report's figures for the best runs, drawn by the same functions and embedded."""
     from service.replay.figures import compare_figure, run_figure
     from service.replay.plotdata import thin_trace
-    from service.replay.report import _LOSS_UNITS
+    from service.replay.report import _LOSS_UNITS, figure
 
     best = [r["name"] for r in sweep["ranking"][:BEST_DRAWN]]
     runs = [results[name]["summary"] for name in best]
@@ -76,10 +69,10 @@ def _curves(sweep: dict, results: dict) -> str:
     unit = _LOSS_UNITS.get(results[best[0]].get("loss", "squared"), "loss")
     if len(best) > 1:
         parts.append("<h2>The best runs side by side</h2>"
-                     + _img(compare_figure(runs, plots, unit, []), "loss of the best runs"))
+                     + figure(compare_figure(runs, plots, unit, []), "loss of the best runs"))
     for name, run, plot in zip(best, runs, plots):
         parts.append(f"<h3>{html.escape(name)}</h3><p>{html.escape(run.get('verdict', ''))}</p>")
-        parts.append(_img(run_figure(run, plot, unit, []), f"loss, step size and distance of run {name}"))
+        parts.append(figure(run_figure(run, plot, unit, []), f"loss, step size and distance of run {name}"))
     return "".join(parts)
 
 

@@ -4,7 +4,7 @@ Two configs replay the first 4,000 lines of the invented binary cold-chain feed:
 with a constant step of 1e6 and no constraint, whose margins grow until its log loss is thousands of
 times the base rate's (a logistic loss has bounded gradients, so the weights grow by about the step
 each update instead of overflowing). The page is checked as ``test_report.check_report`` does
-(embedded PNGs read back with matplotlib); the figures against the run's own summary.json.
+(inline SVG figures parsed as XML); the figures against the run's own summary.json.
 """
 
 from __future__ import annotations
