@@ -21,13 +21,14 @@ _EVENTS = "events replayed (count)"
 
 
 def _line(xy: tuple, color: str, width: float = 1.2, dash: str | None = None, label: str | None = None) -> Line:
-    return Line(np.asarray(xy[0], dtype=float), np.asarray(xy[1], dtype=float), color, width, dash, label)
+    return Line(np.asarray(xy[0], dtype=float), np.asarray(xy[1], dtype=float), color=color, width=width, dash=dash,
+                label=label)
 
 
 def _feed_notes(notes: list[dict], label: bool) -> tuple[list[Span], list[Mark]]:
     """Known facts about the feed: shaded spans (``start``, ``stop``) and dotted lines (``event``)."""
     spans = [Span(n["start"], n["stop"], label=n["label"] if label else None) for n in notes if "start" in n]
-    marks = [Mark([n["event"]], "#555555", 1.4, "1.5 2.5", n["label"] if label else None)
+    marks = [Mark([n["event"]], color="#555555", width=1.4, dash="1.5 2.5", label=n["label"] if label else None)
              for n in notes if "start" not in n]
     return spans, marks
 
@@ -38,7 +39,8 @@ def _run_marks(run: dict, label: bool) -> list[Mark]:
     for items, name, color, width, dash in ((run.get("rollbacks") or [], "rollback", "#d95f02", 1.0, "5 3"),
                                             (run.get("restarts") or [], "restart", "#7570b3", 1.6, None)):
         if items:
-            out.append(Mark([i["event"] for i in items], color, width, dash, name if label else None))
+            out.append(Mark([i["event"] for i in items], color=color, width=width, dash=dash,
+                            label=name if label else None))
     return out
 
 

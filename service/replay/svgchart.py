@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["Line", "Mark", "Panel", "Span", "chart"]
+__all__ = ["Line", "Mark", "Panel", "Span", "Stroke", "chart"]
 
 X_TICKS, Y_TICKS = 7, 5
 _LEFT, _RIGHT, _TOP, _BOTTOM, _GAP = 96, 14, 34, 46, 10  # margins and the space between panels, px
@@ -29,12 +29,10 @@ _TITLE_CHARS = 120
 _FONT = "system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif"
 
 
-@dataclass
-class Line:
-    """A series ``(x, y)`` drawn as a polyline; ``dash`` is an SVG dash pattern (``"6 3"``)."""
+@dataclass(kw_only=True)
+class Stroke:
+    """How a line is drawn: ``dash`` is an SVG dash pattern (``"6 3"``); ``label`` its legend entry."""
 
-    x: np.ndarray
-    y: np.ndarray
     color: str
     width: float = 1.2
     dash: str | None = None
@@ -42,14 +40,18 @@ class Line:
 
 
 @dataclass
-class Mark:
+class Line(Stroke):
+    """A series ``(x, y)`` drawn as a polyline."""
+
+    x: np.ndarray
+    y: np.ndarray
+
+
+@dataclass
+class Mark(Stroke):
     """Vertical lines at events ``at``, one style and one legend entry for all of them."""
 
     at: list[float]
-    color: str
-    width: float = 1.0
-    dash: str | None = None
-    label: str | None = None
 
 
 @dataclass

@@ -16,7 +16,7 @@ SVG = "{http://www.w3.org/2000/svg}"
 def test_gaps_split_a_line_where_values_are_missing_or_not_positive():
     x = np.arange(10.0)
     y = np.array([1, 2, np.nan, 3, 4, 0, -1, 5, 6, 7.0])
-    svg = ET.fromstring(chart([Panel(200, "loss", [Line(x, y, "#123456")])], title="t", xlabel="events"))
+    svg = ET.fromstring(chart([Panel(200, "loss", [Line(x, y, color="#123456")])], title="t", xlabel="events"))
     (path,) = [p for p in svg.iter(f"{SVG}path")]
     d = path.get("d")
     assert d.count("M") == 3 and d.count("L") == 4  # three stretches: 1-2, 3-4, 5-7 (7 points)
@@ -33,9 +33,9 @@ def test_ticks_are_one_two_or_five_times_a_power_of_ten():
 
 def test_text_is_escaped_and_an_empty_panel_says_what_is_missing():
     name = "run <b>&'\"</b>"
-    panels = [Panel(200, "loss\n(unit)", [Line(np.arange(3.0), np.ones(3), "#000", label=name)],
-                    [Mark([1.0], "#d95f02", label="rollback")], [Span(0.5, 1.5, label="fault")], legend=True),
-              Panel(100, "step", [Line(np.arange(3.0), np.zeros(3), "#000")], missing="no step recorded")]
+    panels = [Panel(200, "loss\n(unit)", [Line(np.arange(3.0), np.ones(3), color="#000", label=name)],
+                    [Mark([1.0], color="#d95f02", label="rollback")], [Span(0.5, 1.5, label="fault")], legend=True),
+              Panel(100, "step", [Line(np.arange(3.0), np.zeros(3), color="#000")], missing="no step recorded")]
     svg = ET.fromstring(chart(panels, title=name, xlabel="events"))
     texts = [t.text for t in svg.iter(f"{SVG}text")]
     assert texts.count(name) == 2  # the title and the legend, read back unharmed
