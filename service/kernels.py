@@ -29,7 +29,8 @@ from models.native import MODE_ENV, MODEL, KernelSet, cache_dir
 __all__ = ["FEEDS", "build_all", "build_later", "main"]
 
 #: The feed readers' and the id set's compiled functions.
-FEEDS = KernelSet("feeds", ("service.idhash_kernels", "service.feeds.ndjson_scan"), extra=("models.jit", "service.feeds.scan_codes"))
+FEEDS = KernelSet("feeds", ("service.idhash_kernels", "service.feeds.ndjson_scan", "service.feeds.ndjson_parse"),
+                  extra=("models.jit", "service.feeds.scan_codes"))
 _SETS = (MODEL, FEEDS)
 _ROOT = Path(__file__).resolve().parents[1]
 #: A build lock older than this is taken to be left by a build that died.

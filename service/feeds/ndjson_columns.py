@@ -35,6 +35,7 @@ from models import InvalidInput
 from models.features import categorical_text
 
 from service.feeds.columns import Prepared, from_arrow, holdout_share, take_prepared, to_prepared
+from service.feeds.ndjson_direct import DirectParse
 from service.events import Rejection
 from service.feeds.scan_codes import BOOLEAN, CHECK, NONE, NUMBER, PLAIN, STRING
 from service.idhash import hash_strings
@@ -127,6 +128,7 @@ class ArrowNdjson:
             top.append(pa.field("target", pa.float64()))
         # categorical values and binary targets keep their JSON type (string, integer, boolean)
         self._parse = pj.ParseOptions(explicit_schema=pa.schema(top), unexpected_field_behavior="infer")
+        self._direct = DirectParse(v)
         self._share = holdout_share(engine.config)
         self._cool = 0
         self.fallback_lines = 0
@@ -146,9 +148,14 @@ class ArrowNdjson:
             self._cool -= 1
             slow += list(plain)
         elif len(plain):
-            whole = len(plain) == len(starts)
             before = len(slow)
-            self._fast(buf, plain, (starts, ends, escaped), lines, whole, parts, slow)
+            table, done = self._direct.table(buf, starts, ends, plain)
+            if table is not None:
+                self._columns(table, buf, plain[done], (ends, escaped), lines, parts, slow)
+            rest = plain[~done]
+            if len(rest):
+                whole = len(rest) == len(starts)
+                self._fast(buf, rest, (starts, ends, escaped), lines, whole, parts, slow)
             if len(slow) - before > len(plain) // 4:
                 self._cool = 16  # most lines need the validator: stop bisecting for a while
         self.fallback_lines += len(slow)
@@ -199,17 +206,23 @@ class ArrowNdjson:
                     half = len(sel) // 2
                     todo += [(sel[half:], False), (sel[:half], False)]
                 continue
-            cols, flagged, ambiguous = from_arrow(table, self.validator, nested=True)
-            if ambiguous:
-                # without a backslash a key's bytes are its UTF-8 text, so its absence is certain
-                maybe = escaped.copy()
-                for name in ambiguous:
-                    maybe[_lines_with(buf, b'"' + name.rsplit(".", 1)[-1].encode() + b'"', ends)] = True
-                flagged |= maybe[sel]
-            keep = np.flatnonzero(~flagged)
-            slow.extend(sel[flagged].tolist())
-            if len(keep):
-                parts.append(to_prepared(cols, keep, lines[sel[keep]], self.engine.model.mapper, self._share))
+            self._columns(table, buf, sel, (ends, escaped), lines, parts, slow)
+
+    def _columns(self, table, buf, sel, spans, lines, parts, slow) -> None:
+        """The prepared events of ``table`` (the lines ``sel``); the rows it cannot vouch for are
+        appended to ``slow``."""
+        ends, escaped = spans
+        cols, flagged, ambiguous = from_arrow(table, self.validator, nested=True)
+        if ambiguous:
+            # without a backslash a key's bytes are its UTF-8 text, so its absence is certain
+            maybe = escaped.copy()
+            for name in ambiguous:
+                maybe[_lines_with(buf, b'"' + name.rsplit(".", 1)[-1].encode() + b'"', ends)] = True
+            flagged |= maybe[sel]
+        keep = np.flatnonzero(~flagged)
+        slow.extend(sel[flagged].tolist())
+        if len(keep):
+            parts.append(to_prepared(cols, keep, lines[sel[keep]], self.engine.model.mapper, self._share))
 
     def _validate(self, buf, sel, starts, ends, lines, parts) -> list:
         events, where, rejected = [], [], []
