@@ -11,7 +11,8 @@ Numbers: the significand has at most 15 significant digits (so it is an exact in
 and the decimal exponent ``e`` is within ±22 (so ``10**|e|`` is exact too); the value is then one
 IEEE multiplication or division of two exact doubles, which rounds correctly: the same double as
 any correctly rounded parser such as orjson's (W. D. Clinger, "How to read floating point numbers
-accurately", PLDI 1990, the fast path of section 6). Other numbers are left for the general readers.
+accurately", PLDI 1990, the fast path of section 6). Other numbers, and a negative zero (``-0`` is
+the integer 0 for orjson, ``-0.0`` the float), are left for the general readers.
 
 Kept in a module of its own, with the other byte scans, so that it is built ahead of time
 (:mod:`service.kernels`) and called without importing numba, through ``service.kernels.FEEDS``.
@@ -126,6 +127,8 @@ def _number(buf, i, hi, pow10):
             exp = -exp
     e10 = exp - frac
     if sig == 0:
+        if neg:  # -0 is the integer 0 for orjson, -0.0 the float: left to the general readers
+            return 0.0, -1
         x = 0.0
     elif 0 <= e10 <= 22:
         x = float(sig) * pow10[e10]
