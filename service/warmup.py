@@ -103,8 +103,8 @@ def _functions(part: str, kernels) -> list:
         return [(MODEL, "lazy_process" if k == "lazy" else "dense_process") for k in kernels]
     if part == "read":
         return [(MODEL, "score_rows_both"), (MODEL, "score_window"), (MODEL, "materialize"), (MODEL, "iterate_distance")]
-    return [(FEEDS, n) for n in ("scan_bytes", "parse_events", "gather_spans", "gather_lines", "hash_column",
-                                 "insert_keys", "rehash")]
+    return [(FEEDS, n) for n in ("scan_parse", "gather_spans", "gather_lines", "hash_column", "insert_keys",
+                                 "rehash")]
 
 
 def is_cached(parts, kernels=("lazy",)) -> bool:

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.feeds.columns import Prepared, take_prepared
-from service.feeds.ndjson_columns import ArrowNdjson, available, scan_lines
+from service.feeds.ndjson_columns import ArrowNdjson, available
 from service.kernels import FEEDS
 from service.storage.seen import id_key
 
@@ -90,7 +90,7 @@ class BodyParser:
     def parse(self, body: bytes) -> ParsedBody:
         """Parse and check ``body``; bad lines are rejected with ``line N`` (1-based) and why."""
         reader = self._reader()
-        scanned = scan_lines(body, reader.validator.max_line)
+        scanned = reader.scan(body)
         prepared, rejected = reader.chunk_lines(body, 1, scanned)
         starts, ends = scanned[0], scanned[1]
         if prepared is None:

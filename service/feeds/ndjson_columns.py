@@ -37,11 +37,11 @@ from models.features import categorical_text
 from service.feeds.columns import Prepared, from_arrow, holdout_share, take_prepared, to_prepared
 from service.feeds.ndjson_direct import DirectParse
 from service.events import Rejection
-from service.feeds.scan_codes import BOOLEAN, CHECK, NONE, NUMBER, PLAIN, STRING
+from service.feeds.scan_codes import BOOLEAN, CHECK, NONE, NUMBER, PARSED, PLAIN, STRING
 from service.idhash import hash_strings
 from service.kernels import FEEDS
 
-__all__ = ["ArrowNdjson", "available", "prepare_events", "scan_lines"]
+__all__ = ["ArrowNdjson", "available", "prepare_events"]
 
 _LEAF = 16  # lines below which a failing piece goes to the validator line by line
 _ROW = re.compile(r"in row (\d+)")
@@ -55,22 +55,6 @@ def available() -> bool:
     except ImportError:
         return False
     return True
-
-
-def scan_lines(buf: bytes, max_line: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Start, end (without the newline), class (0 blank, 1 plain, 2 needs the validator) and
-    whether it holds a backslash, for every line.
-
-    Blank means only spaces, tabs, CR, VT or FF, the bytes :meth:`bytes.strip` removes.
-    """
-    arr = np.frombuffer(buf, dtype=np.uint8)
-    cap = int(np.count_nonzero(arr == 10)) + 1
-    starts = np.empty(cap, np.int64)
-    ends = np.empty(cap, np.int64)
-    flags = np.empty(cap, np.int8)
-    escaped = np.empty(cap, np.bool_)
-    k = FEEDS.scan_bytes(arr, max_line, starts, ends, flags, escaped)
-    return starts[:k], ends[:k], flags[:k], escaped[:k]
 
 
 def _lines_bytes(buf: bytes, starts, ends, sel) -> bytes:
@@ -135,27 +119,28 @@ class ArrowNdjson:
 
     def chunk(self, buf: bytes, first_line: int) -> tuple[Prepared | None, list]:
         """Prepared events of ``buf`` (whole lines) in line order, and ``[(line, Rejection)]`` in line order."""
-        return self.chunk_lines(buf, first_line, scan_lines(buf, self.validator.max_line))
+        return self.chunk_lines(buf, first_line, self.scan(buf))
+
+    def scan(self, buf: bytes):
+        """The lines of ``buf``, those of the common shape already parsed (:meth:`DirectParse.scan`)."""
+        return self._direct.scan(buf, self.validator.max_line)
 
     def chunk_lines(self, buf: bytes, first_line: int, scanned) -> tuple[Prepared | None, list]:
-        """:meth:`chunk` of ``buf`` with its lines already found (``scanned``: :func:`scan_lines`)."""
-        starts, ends, flags, escaped = scanned
+        """:meth:`chunk` of ``buf`` with its lines already found (``scanned``: :meth:`scan`)."""
+        starts, ends, flags, escaped, table = scanned
         lines = first_line + np.arange(len(starts), dtype=np.int64)
         parts: list[Prepared] = []
         slow: list[int] = list(np.flatnonzero(flags == CHECK))
+        if table is not None:
+            self._columns(table, buf, np.flatnonzero(flags == PARSED), (ends, escaped), lines, parts, slow)
         plain = np.flatnonzero(flags == PLAIN)
         if self._cool > 0:
             self._cool -= 1
             slow += list(plain)
         elif len(plain):
+            whole = len(plain) == len(starts)
             before = len(slow)
-            table, done = self._direct.table(buf, starts, ends, plain)
-            if table is not None:
-                self._columns(table, buf, plain[done], (ends, escaped), lines, parts, slow)
-            rest = plain[~done]
-            if len(rest):
-                whole = len(rest) == len(starts)
-                self._fast(buf, rest, (starts, ends, escaped), lines, whole, parts, slow)
+            self._fast(buf, plain, (starts, ends, escaped), lines, whole, parts, slow)
             if len(slow) - before > len(plain) // 4:
                 self._cool = 16  # most lines need the validator: stop bisecting for a while
         self.fallback_lines += len(slow)

@@ -1,18 +1,20 @@
 """Plain NDJSON event lines parsed by a compiled pass straight into an Arrow table.
 
 Arrow's JSON reader costs about 1.3 us per event of the demo feed (a general parser building
-general columns); most lines of a feed have one simple shape, which the compiled parse of
-:mod:`service.feeds.ndjson_parse` reads in one pass over the bytes into the columns the reader
-would give them (strings as UTF-8 spans, numbers as doubles, ``null`` as missing). It takes only
-lines it reads exactly as orjson does and leaves the others (``done`` false) to the general readers
-of :mod:`service.feeds.ndjson_columns`, so it changes no result, only the cost: the table goes
-through the same :func:`service.feeds.columns.from_arrow` checks as a table of Arrow's reader.
+general columns), and the line scan before it another 0.4; most lines of a feed have one simple
+shape, which the compiled parse of :mod:`service.feeds.ndjson_parse` reads while it finds the lines,
+in one pass over the bytes, into the columns the reader would give them (strings as UTF-8 spans,
+numbers as doubles, ``null`` as missing). It takes only lines it reads exactly as orjson does and
+classes the others as the line scan does, for the general readers of
+:mod:`service.feeds.ndjson_columns`; so it changes no result, only the cost: its table goes through
+the same :func:`service.feeds.columns.from_arrow` checks as a table of Arrow's reader.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from service.feeds.scan_codes import PARSED
 from service.kernels import FEEDS
 
 __all__ = ["DirectParse"]
@@ -41,27 +43,34 @@ class DirectParse:
         slots = list(range(len(self.numeric))) + [-1 - c for c in range(len(self.categorical))]
         self._slots = _read_only(np.asarray(slots, dtype=np.int64))
         self._binary = bool(validator.binary)
+        self._max_line = validator.max_line
 
-    def table(self, buf: bytes, starts: np.ndarray, ends: np.ndarray, sel: np.ndarray):
-        """``(table, done)``: the Arrow table (``id``, ``ts``, ``features``, ``target``) of the lines
-        ``sel[done]`` in order (``None`` when there are none), and which of ``sel`` it holds."""
-        m = len(sel)
+    def scan(self, buf: bytes, max_line: int | None = None):
+        """``(starts, ends, flags, escaped, table)``: where each line of ``buf`` starts and ends
+        (without its newline), its class (:mod:`service.feeds.scan_codes`: blank, plain, for the
+        validator, or parsed), whether it holds a backslash, and the Arrow table (``id``, ``ts``,
+        ``features``, ``target``) of the parsed lines in order (``None`` without any)."""
         arr = np.frombuffer(buf, dtype=np.uint8)
-        done = np.empty(m, dtype=np.bool_)
-        nums = np.empty((m, 2 + len(self.numeric)), dtype=np.float64)
-        spans = np.empty((m, 2 + 2 * len(self.categorical)), dtype=np.int64)
-        FEEDS.parse_events(arr, _read_only(starts), _read_only(ends), _read_only(sel), self._names,
-                           self._offsets, self._slots, self._binary, done, nums, spans)
+        cap = int(np.count_nonzero(arr == 10)) + 1
+        starts = np.empty(cap, np.int64)
+        ends = np.empty(cap, np.int64)
+        flags = np.empty(cap, np.int8)
+        escaped = np.empty(cap, np.bool_)
+        nums = np.empty((cap, 2 + len(self.numeric)), dtype=np.float64)
+        spans = np.empty((cap, 2 + 2 * len(self.categorical)), dtype=np.int64)
+        k = FEEDS.scan_parse(arr, self._max_line if max_line is None else max_line, self._names, self._offsets,
+                             self._slots, self._binary, starts, ends, flags, escaped, nums, spans)
+        starts, ends, flags, escaped = starts[:k], ends[:k], flags[:k], escaped[:k]
+        done = flags == PARSED
         if not done.any():
-            return None, done
-        if not done.all():
-            nums, spans = nums[done], spans[done]
+            return starts, ends, flags, escaped, None
+        nums, spans = nums[:k][done], spans[:k][done]
         pa = self._pa
-        numbers = [_floats(pa, nums[:, k]) for k in range(nums.shape[1])]
-        texts = [_strings(pa, arr, spans[:, 2 * k], spans[:, 2 * k + 1]) for k in range(spans.shape[1] // 2)]
+        numbers = [_floats(pa, nums[:, c]) for c in range(nums.shape[1])]
+        texts = [_strings(pa, arr, spans[:, 2 * c], spans[:, 2 * c + 1]) for c in range(spans.shape[1] // 2)]
         features = pa.StructArray.from_arrays(numbers[2:] + texts[1:], names=self.numeric + self.categorical)
         table = pa.Table.from_arrays([texts[0], numbers[0], features, numbers[1]], names=list(_TOP))
-        return table, done
+        return starts, ends, flags, escaped, table
 
 
 def _read_only(a: np.ndarray) -> np.ndarray:

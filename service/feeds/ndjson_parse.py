@@ -1,11 +1,12 @@
 """The compiled parse of plain NDJSON event lines straight into columns (:mod:`service.feeds.ndjson_direct`).
 
-One pass over each line's bytes reads an event whose shape is the common one: an object with the
+One pass over the bytes finds the lines and reads each whose event has the common shape: an object with the
 keys ``id``, ``ts``, ``features`` and ``target`` (any order, each at most once), ``features`` an
 object of declared features (each at most once), strings without a backslash or a control byte,
 numbers that convert exactly (below), ``null``, and ``true``/``false`` where noted. Any other line
-is left for the general readers (``ok`` false): this parse only takes lines whose values it reads
-exactly as orjson does, it never rejects anything itself.
+is scanned and classed as :func:`service.feeds.ndjson_scan._scan_line` classes it, for the general
+readers: this parse only takes lines whose values it reads exactly as orjson does, and never
+rejects anything itself.
 
 Numbers: the significand has at most 15 significant digits (so it is an exact integer in a double)
 and the decimal exponent ``e`` is within ±22 (so ``10**|e|`` is exact too); the value is then one
@@ -24,7 +25,10 @@ import numpy as np
 
 from models.jit import numba
 
-__all__ = ["gather_spans", "parse_events"]
+from service.feeds.ndjson_scan import _scan_line, _utf8_len
+from service.feeds.scan_codes import PARSED as _PARSED
+
+__all__ = ["gather_spans", "scan_parse"]
 
 #: 10**k, exact as doubles for k <= 22.
 _POW10 = np.array([10.0 ** k for k in range(23)], dtype=np.float64)
@@ -32,6 +36,9 @@ _MAX_SIG = 15  # significant digits of an exact significand
 _MAX_INT_DIGITS = 18  # an integer categorical value of at most 18 digits is inside 64 bits
 
 _NAN = np.nan
+_NULL = np.array([110, 117, 108, 108], dtype=np.uint8)
+_TRUE = np.array([116, 114, 117, 101], dtype=np.uint8)
+_FALSE = np.array([102, 97, 108, 115, 101], dtype=np.uint8)
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -45,7 +52,7 @@ def _ws(buf, i, hi):
 @numba.njit(cache=True, nogil=True, inline="always")
 def _string_end(buf, i, hi):
     """Position of the closing quote of the string whose opening quote is at ``i``; -1 when it holds a
-    backslash or a control byte, or is not closed."""
+    backslash, a control byte or invalid UTF-8, or is not closed."""
     i += 1
     while i < hi:
         c = buf[i]
@@ -53,6 +60,12 @@ def _string_end(buf, i, hi):
             return i
         if c == 92 or c < 32:
             return -1
+        if c >= 128:
+            step = _utf8_len(buf, i, hi)
+            if step == 0:
+                return -1
+            i += step
+            continue
         i += 1
     return -1
 
@@ -181,145 +194,162 @@ def _key_index(buf, lo, hi, names, offsets):
     return -1
 
 
-@numba.njit(cache=True, nogil=True)
-def parse_events(buf, starts, ends, sel, names, offsets, slots, bool_target, ok, nums, spans):
-    """Parse the lines ``sel[j]`` (see the module docstring).
-
-    ``names``/``offsets`` hold the keys this parse knows: first ``id``, ``ts``, ``features``,
-    ``target``, then the declared features; ``slots[k]`` of feature ``k`` (key ``4 + k``) is its
-    column: ``>= 0`` a numeric column of ``nums`` (after ``ts`` and ``target``, its columns 0 and 1),
-    ``< 0`` categorical ``-1 - slots[k]`` (its span is ``spans[:, 2 + 2c : 4 + 2c]``, the id's
-    ``spans[:, 0:2]``). A missing or null number is NaN, a missing or null string the span ``(-1, -1)``;
-    the span of an integer or boolean categorical value is its literal, which is its text.
-    ``bool_target``: ``true``/``false`` targets read as 1.0/0.0 (a binary task).
-    """
-    null = np.array([110, 117, 108, 108], dtype=np.uint8)
-    true = np.array([116, 114, 117, 101], dtype=np.uint8)
-    false = np.array([102, 97, 108, 115, 101], dtype=np.uint8)
+@numba.njit(cache=True, nogil=True, inline="always")
+def _parse_line(buf, i, hi, j, names, offsets, slots, bool_target, nums, spans, seen):
+    """Parse the event at ``i`` into row ``j`` of ``nums`` and ``spans``; the position after it and
+    the whitespace that follows, or -1 when it is not a line this parse takes. Stops at a newline."""
+    null = _NULL
+    true = _TRUE
+    false = _FALSE
     pow10 = _POW10
-    nkeys = offsets.shape[0] - 1
-    seen = np.zeros(nkeys, dtype=np.bool_)
-    ncols = nums.shape[1]
-    nspans = spans.shape[1]
-    for j in range(sel.shape[0]):
-        line = sel[j]
-        i = starts[line]
-        hi = ends[line]
-        for k in range(ncols):
-            nums[j, k] = _NAN
-        for k in range(nspans):
-            spans[j, k] = -1
-        for k in range(nkeys):
-            seen[k] = False
-        ok[j] = False
-        i = _ws(buf, i, hi)
-        if i >= hi or buf[i] != 123:
-            continue
-        i = _ws(buf, i + 1, hi)
-        depth = 1  # 1 in the event object, 2 in its features
-        fresh = True  # just inside an object: a closing brace may come instead of a key
-        good = False
-        while True:
-            if not (fresh and i < hi and buf[i] == 125):
-                # a key, a colon and its value
-                if i >= hi or buf[i] != 34:
+    for k in range(nums.shape[1]):
+        nums[j, k] = _NAN
+    for k in range(spans.shape[1]):
+        spans[j, k] = -1
+    for k in range(seen.shape[0]):
+        seen[k] = False
+    i = _ws(buf, i, hi)
+    if i >= hi or buf[i] != 123:
+        return -1
+    i = _ws(buf, i + 1, hi)
+    depth = 1  # 1 in the event object, 2 in its features
+    fresh = True  # just inside an object: a closing brace may come instead of a key
+    while True:
+        if not (fresh and i < hi and buf[i] == 125):
+            # a key, a colon and its value
+            if i >= hi or buf[i] != 34:
+                break
+            end = _string_end(buf, i, hi)
+            if end < 0:
+                break
+            key = _key_index(buf, i + 1, end, names, offsets)
+            if key < 0 or seen[key] or (depth == 1) != (key < 4):
+                break
+            seen[key] = True
+            i = _ws(buf, end + 1, hi)
+            if i >= hi or buf[i] != 58:
+                break
+            i = _ws(buf, i + 1, hi)
+            if i >= hi:
+                break
+            c = buf[i]
+            if key == 2:  # features: an object
+                if c != 123:
+                    break
+                depth = 2
+                fresh = True
+                i = _ws(buf, i + 1, hi)
+                continue
+            if c == 110:
+                if not _literal(buf, i, hi, null):
+                    break
+                i += 4
+            elif key == 0:  # id: a string
+                if c != 34:
                     break
                 end = _string_end(buf, i, hi)
                 if end < 0:
                     break
-                key = _key_index(buf, i + 1, end, names, offsets)
-                if key < 0 or seen[key] or (depth == 1) != (key < 4):
-                    break
-                seen[key] = True
-                i = _ws(buf, end + 1, hi)
-                if i >= hi or buf[i] != 58:
-                    break
-                i = _ws(buf, i + 1, hi)
-                if i >= hi:
-                    break
-                c = buf[i]
-                if key == 2:  # features: an object
-                    if c != 123:
+                spans[j, 0] = i + 1
+                spans[j, 1] = end
+                i = end + 1
+            elif key == 1 or key == 3 or slots[key - 4] >= 0:  # ts, target, a numeric feature
+                col = 0 if key == 1 else (1 if key == 3 else 2 + slots[key - 4])
+                if key == 3 and bool_target and (c == 116 or c == 102):
+                    if _literal(buf, i, hi, true):
+                        nums[j, col] = 1.0
+                        i += 4
+                    elif _literal(buf, i, hi, false):
+                        nums[j, col] = 0.0
+                        i += 5
+                    else:
                         break
-                    depth = 2
-                    fresh = True
-                    i = _ws(buf, i + 1, hi)
-                    continue
-                if c == 110:
-                    if not _literal(buf, i, hi, null):
+                else:
+                    x, end = _number(buf, i, hi, pow10)
+                    if end < 0:
                         break
-                    i += 4
-                elif key == 0:  # id: a string
-                    if c != 34:
-                        break
+                    nums[j, col] = x
+                    i = end
+            else:  # a categorical feature: a string, an integer or a boolean, kept as its text
+                col = 2 + 2 * (-1 - slots[key - 4])
+                if c == 34:
                     end = _string_end(buf, i, hi)
                     if end < 0:
                         break
-                    spans[j, 0] = i + 1
-                    spans[j, 1] = end
+                    spans[j, col] = i + 1
+                    spans[j, col + 1] = end
                     i = end + 1
-                elif key == 1 or key == 3 or slots[key - 4] >= 0:  # ts, target, a numeric feature
-                    col = 0 if key == 1 else (1 if key == 3 else 2 + slots[key - 4])
-                    if key == 3 and bool_target and (c == 116 or c == 102):
-                        if _literal(buf, i, hi, true):
-                            nums[j, col] = 1.0
-                            i += 4
-                        elif _literal(buf, i, hi, false):
-                            nums[j, col] = 0.0
-                            i += 5
-                        else:
-                            break
-                    else:
-                        x, end = _number(buf, i, hi, pow10)
-                        if end < 0:
-                            break
-                        nums[j, col] = x
-                        i = end
-                else:  # a categorical feature: a string, an integer or a boolean, kept as its text
-                    col = 2 + 2 * (-1 - slots[key - 4])
-                    if c == 34:
-                        end = _string_end(buf, i, hi)
-                        if end < 0:
-                            break
-                        spans[j, col] = i + 1
-                        spans[j, col + 1] = end
-                        i = end + 1
-                    elif c == 116 and _literal(buf, i, hi, true):
-                        spans[j, col] = i
-                        spans[j, col + 1] = i + 4
-                        i += 4
-                    elif c == 102 and _literal(buf, i, hi, false):
-                        spans[j, col] = i
-                        spans[j, col + 1] = i + 5
-                        i += 5
-                    else:
-                        end = _integer_end(buf, i, hi)
-                        if end < 0:
-                            break
-                        spans[j, col] = i
-                        spans[j, col + 1] = end
-                        i = end
-            # after a value (or at the brace of an empty object): a comma, or closing braces
-            fresh = False
-            more = False
-            while True:
-                i = _ws(buf, i, hi)
-                if i >= hi:
-                    break
-                if buf[i] == 44:
-                    i = _ws(buf, i + 1, hi)
-                    more = True
-                    break
-                if buf[i] != 125:
-                    break
-                depth -= 1
-                i += 1
-                if depth == 0:
-                    good = _ws(buf, i, hi) == hi and seen[2]
-                    break
-            if not more:
+                elif c == 116 and _literal(buf, i, hi, true):
+                    spans[j, col] = i
+                    spans[j, col + 1] = i + 4
+                    i += 4
+                elif c == 102 and _literal(buf, i, hi, false):
+                    spans[j, col] = i
+                    spans[j, col + 1] = i + 5
+                    i += 5
+                else:
+                    end = _integer_end(buf, i, hi)
+                    if end < 0:
+                        break
+                    spans[j, col] = i
+                    spans[j, col + 1] = end
+                    i = end
+        # after a value (or at the brace of an empty object): a comma, or closing braces
+        fresh = False
+        more = False
+        while True:
+            i = _ws(buf, i, hi)
+            if i >= hi:
                 break
-        ok[j] = good
+            if buf[i] == 44:
+                i = _ws(buf, i + 1, hi)
+                more = True
+                break
+            if buf[i] != 125:
+                break
+            depth -= 1
+            i += 1
+            if depth == 0:
+                return _ws(buf, i, hi) if seen[2] else -1
+        if not more:
+            return -1
+    return -1
+
+
+@numba.njit(cache=True, nogil=True)
+def scan_parse(buf, max_line, names, offsets, slots, bool_target, starts, ends, flags, escaped, nums, spans):
+    """Start, end (without the newline), class and whether it holds a backslash, for every line of
+    ``buf``; each line is first tried by this parse.
+
+    A line the parse takes (whole, up to its newline, at most ``max_line`` bytes) gets class 3 and its
+    values in its row of ``nums`` and ``spans``; any other line is classed by
+    :func:`service.feeds.ndjson_scan._scan_line` (blank, plain, for the validator). ``names``, ``offsets`` and ``slots`` say which keys the parse knows and where
+    their values go: first ``id``, ``ts``, ``features``, ``target``, then the declared features;
+    ``slots[k]`` of feature ``k`` (key ``4 + k``) is ``>= 0`` for numeric column ``2 + slots[k]`` of
+    ``nums`` (``ts`` and ``target`` are its columns 0 and 1) and ``< 0`` for categorical
+    ``c = -1 - slots[k]``, whose span is ``spans[:, 2 + 2c : 4 + 2c]`` (the id's ``spans[:, 0:2]``).
+    A missing or null number is NaN, a missing or null string the span ``(-1, -1)``; the span of an
+    integer or boolean categorical value is its literal, which is its text. ``bool_target``:
+    ``true``/``false`` targets read as 1.0/0.0 (a binary task). Returns the number of lines.
+    """
+    n = buf.shape[0]
+    seen = np.zeros(offsets.shape[0] - 1, dtype=np.bool_)
+    k = 0
+    i = 0
+    while i < n:
+        end = _parse_line(buf, i, n, k, names, offsets, slots, bool_target, nums, spans, seen)
+        if end >= 0 and (end == n or buf[end] == 10) and end - i <= max_line:
+            flag = _PARSED
+            backslash = False
+        else:
+            end, flag, backslash = _scan_line(buf, i, n, max_line)
+        starts[k] = i
+        ends[k] = end
+        flags[k] = flag
+        escaped[k] = backslash
+        k += 1
+        i = end + 1
+    return k
 
 
 @numba.njit(cache=True, nogil=True)

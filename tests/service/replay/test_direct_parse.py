@@ -20,8 +20,9 @@ from hypothesis import strategies as st
 from service.config import config_from_dict
 from service.engine import Engine
 from service.events import parse_ndjson
-from service.feeds.ndjson_columns import ArrowNdjson, prepare_events, scan_lines
+from service.feeds.ndjson_columns import ArrowNdjson, prepare_events
 from service.feeds.ndjson_direct import DirectParse
+from service.feeds.scan_codes import PARSED
 
 CONFIG = {"name": "direct", "features": {"numeric": ["x", "y"], "categorical": ["site", "kind"], "hash_bits": 8,
                                          "scaling": "none"}}
@@ -31,9 +32,8 @@ def _parse(lines: list[bytes], binary: bool = False):
     config = dict(CONFIG, model={"task": "binary", "loss": "logistic"}) if binary else CONFIG
     engine = Engine(config_from_dict(config))
     buf = b"\n".join(lines) + b"\n"
-    starts, ends, _, _ = scan_lines(buf, 1 << 20)
-    table, done = DirectParse(engine.validator).table(buf, starts, ends, np.arange(len(starts), dtype=np.int64))
-    return table, done
+    _, _, flags, _, table = DirectParse(engine.validator).scan(buf)
+    return table, flags == PARSED
 
 
 def _same_as_validator(buf: bytes, config: dict = CONFIG) -> ArrowNdjson:
@@ -115,6 +115,20 @@ def test_the_shapes_it_takes_and_the_lines_it_leaves():
                      binary=True)
     assert done.all()
     _same_as_validator(b"\n".join(taken + left) + b"\n")
+
+
+def test_lines_it_leaves_are_classed_as_the_line_scan_classes_them():
+    """Blank lines stay blank, a line over the byte limit or with NaN goes to the validator even when
+    its shape is the common one, other lines to Arrow's reader; ends exclude the newline."""
+    engine = Engine(config_from_dict(CONFIG))
+    long = b'{"id":"' + b"x" * 60 + b'","features":{}}'
+    lines = [b'{"id":"a","features":{}}', b"", b" \t\r", long, b'{"id":"b","features":{"x":NaN}}',
+             b'{"id":"c\\u0041","features":{}}', b'{"id":"d","features":{}}\r', b"{}"]
+    buf = b"\n".join(lines)
+    starts, ends, flags, escaped, table = DirectParse(engine.validator).scan(buf, 70)
+    assert [buf[a:b] for a, b in zip(starts, ends)] == lines
+    assert flags.tolist() == [3, 0, 0, 2, 2, 1, 3, 1] and escaped.tolist() == [False] * 5 + [True, False, False]
+    assert table.column("id").to_pylist() == ["a", "d"]
 
 
 def test_a_value_of_the_wrong_type_is_still_rejected_with_the_validators_words():
