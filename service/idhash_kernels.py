@@ -88,14 +88,16 @@ def _compress(h, block, counter, last, m, iv):
 
 @_jit
 def hash_column(offsets, data, valid, prefix, iv, h0, out):
-    """BLAKE2b-64 of ``prefix + data[offsets[i]:offsets[i+1]]`` for every valid row."""
+    """BLAKE2b of ``prefix + data[offsets[i]:offsets[i+1]]`` for every valid row: its first
+    ``out.shape[1]`` words (the digest's bytes, little-endian; ``h0`` says the digest's length)."""
     h = np.empty(8, dtype=np.uint64)
     m = np.empty(16, dtype=np.uint64)
     block = np.zeros(128, dtype=np.uint8)
     np_ = prefix.shape[0]
     for i in range(offsets.shape[0] - 1):
         if not valid[i]:
-            out[i] = 0
+            for w in range(out.shape[1]):
+                out[i, w] = 0
             continue
         lo = offsets[i]
         total = np_ + (offsets[i + 1] - lo)
@@ -116,7 +118,8 @@ def hash_column(offsets, data, valid, prefix, iv, h0, out):
             _compress(h, block, pos, last, m, iv)
             if last:
                 break
-        out[i] = h[0]
+        for w in range(out.shape[1]):
+            out[i, w] = h[w]
 
 
 @_jit

@@ -28,7 +28,7 @@ from service.engine import PreparedBatch
 from service.events import CONTROL_CHARS, INT64_MAX, INT64_MIN, MAX_ID_BYTES, MAX_MAGNITUDE  # the validator's rules
 from service.idhash import hash_ids, holdout_fractions
 
-__all__ = ["Columns", "Prepared", "from_arrow", "holdout_share", "take_prepared", "to_prepared"]
+__all__ = ["Columns", "Prepared", "from_arrow", "holdout_share", "string_buffers", "take_prepared", "to_prepared"]
 
 _TS_SCALE = {"s": 1.0, "ms": 1e3, "us": 1e6}
 
@@ -203,18 +203,24 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
     return Columns(n, ids, ts, target, numeric, categorical), slow, ambiguous
 
 
+def string_buffers(ids) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Offsets, UTF-8 bytes and validity of an Arrow string array (the input of :func:`service.idhash.hash_ids`)."""
+    pa, _ = _pa()
+    bufs = ids.buffers()
+    wide = pa.types.is_large_string(ids.type)
+    offsets = np.frombuffer(bufs[1], dtype=np.int64 if wide else np.int32, count=len(ids) + 1,
+                            offset=ids.offset * (8 if wide else 4))
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
+    return offsets, data, ~ids.is_null().to_numpy(zero_copy_only=False)
+
+
 def _id_hashes(ids, n: int, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     if ids is None:
         return np.zeros(len(rows), np.uint64), np.zeros(len(rows), bool)
     pa, _ = _pa()
     if len(rows) != n:
         ids = ids.take(pa.array(rows))
-    bufs = ids.buffers()
-    wide = pa.types.is_large_string(ids.type)
-    offsets = np.frombuffer(bufs[1], dtype=np.int64 if wide else np.int32, count=len(ids) + 1,
-                            offset=ids.offset * (8 if wide else 4))
-    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
-    valid = ~ids.is_null().to_numpy(zero_copy_only=False)
+    offsets, data, valid = string_buffers(ids)
     return hash_ids(offsets, data, valid), valid
 
 

@@ -21,8 +21,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.feeds.columns import Prepared, take_prepared
+from service.feeds.columns import Prepared, string_buffers, take_prepared
 from service.feeds.ndjson_columns import ArrowNdjson, available
+from service.idhash import id_keys
 from service.kernels import FEEDS
 from service.storage.seen import id_key
 
@@ -97,8 +98,13 @@ class BodyParser:
             return ParsedBody(body, None, [r for _, r in rejected], [], [], [], starts, ends)
         where = (prepared.where - 1).tolist()
         ids = prepared.batch.ids
-        ids = ids.to_pylist() if hasattr(ids, "to_pylist") else list(ids)
-        keys = [None if i is None else id_key(i) for i in ids]  # here, on a parse thread, not the journal's
+        # the deduplication keys here, on a parse thread, not the journal's
+        if hasattr(ids, "to_pylist"):
+            keys = id_keys(*string_buffers(ids))
+            ids = ids.to_pylist()
+        else:
+            ids = list(ids)
+            keys = [None if i is None else id_key(i) for i in ids]
         return ParsedBody(body, prepared, [r for _, r in rejected], where, ids, keys, starts, ends)
 
     def lines(self, payload: bytes) -> Prepared:

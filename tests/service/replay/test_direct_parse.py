@@ -173,3 +173,21 @@ def test_generated_lines_match_the_validator(spec):
         rng.shuffle(top)
         lines.append(ws + b"{" + (b"," + ws).join(top) + b"}" + ws)
     _same_as_validator(b"\n".join(lines) + b"\n")
+
+
+def test_dedup_keys_of_a_body_are_blake2b_128_as_hashlib_computes_it():
+    """The compiled 16-byte keys of a parsed body equal ``hashlib.blake2b(id, digest_size=16)`` (RFC 7693)
+    for short, multi-block and non-ASCII ids, and ``None`` for an event without an id."""
+    import hashlib
+
+    from service.feeds.ndjson_body import BodyParser
+    from service.storage.seen import id_key
+
+    idents = ["a", "V07-0001842", "é" * 70, "x" * 127, "x" * 128, "x" * 129, "😀" * 40, "y" * 256]
+    lines = [orjson.dumps({"id": i, "features": {"x": 1.0}, "target": 1.0}) for i in idents]
+    lines += [b'{"features":{"x":2.0}}', b'{"id":"esc\\u0041","features":{},"target":1.0}']
+    want = [hashlib.blake2b(i.encode(), digest_size=16).digest() for i in idents] + [None, id_key("escA")]
+    parser = BodyParser(config_from_dict(CONFIG))
+    for body, n in ((b"\n".join(lines[:-1]) + b"\n", len(lines) - 1), (b"\n".join(lines) + b"\n", len(lines))):
+        parsed = parser.parse(body)  # all lines of the first read by the compiled parse; one of the second by Arrow's
+        assert parsed.ids == (idents + [None, "escA"])[:n] and parsed.keys == want[:n]
