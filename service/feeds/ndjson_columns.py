@@ -1,13 +1,16 @@
-"""NDJSON chunks parsed by Arrow's JSON reader into columns, with the validator as the fallback.
+"""NDJSON chunks parsed into columns (compiled, or by Arrow's JSON reader), with the validator as the fallback.
 
 Parsing each line with orjson and validating its dict costs several microseconds of Python per
-event, more than the learning itself. Arrow's JSON reader parses a whole chunk in C++ into typed
-columns; :mod:`service.feeds.columns` then maps them without per-event Python. Only lines that are
-certainly equivalent take that path; anything else goes, line by line, through
-:meth:`EventValidator.parse_line`, so every rejection has the validator's exact ``where`` and
-reason and every accepted value is what orjson would give:
+event, more than the learning itself. A compiled pass (:mod:`service.feeds.ndjson_direct`) finds
+the lines and parses those of the common shape straight into columns; Arrow's JSON reader parses
+the other plain lines in C++ into typed columns; :mod:`service.feeds.columns` then maps both
+without per-event Python. Only lines that are certainly equivalent take those paths; anything
+else goes, line by line, through :meth:`EventValidator.parse_line`, so every rejection has the
+validator's exact ``where`` and reason and every accepted value is what orjson would give:
 
-* a pre-scan (compiled, one pass over the bytes) sends to the validator every line that is over
+* the compiled parse takes only lines whose values it reads exactly as orjson does (see
+  :mod:`service.feeds.ndjson_parse`); its table passes the same column checks as Arrow's;
+* of the other lines, the same pass (the line scan) sends to the validator every line that is over
   ``service.max_line_bytes``, does not start with ``{`` and end with ``}``, contains ``NaN`` or
   ``Infinity`` (Arrow accepts those literals, JSON does not), more than 64 ``{``/``[`` (orjson
   limits nesting) or a run of more than 15 digits (an integer past 2**53 that Arrow would read as a

@@ -53,7 +53,7 @@ def _same_as_validator(buf: bytes, config: dict = CONFIG) -> ArrowNdjson:
     assert np.array_equal(x.mode, y.mode)
     assert (x.ids.to_pylist() if hasattr(x.ids, "to_pylist") else list(x.ids)) == list(y.ids)
     assert np.array_equal(got.hashes, want.hashes) and np.array_equal(got.where, want.where)
-    assert sorted(got.categories) == sorted(want.categories)
+    assert set(got.categories) == set(want.categories)  # the values the mapper remembers; parts may repeat one
     return fast
 
 
