@@ -9,7 +9,7 @@ else goes, line by line, through :meth:`EventValidator.parse_line`, so every rej
 validator's exact ``where`` and reason and every accepted value is what orjson would give:
 
 * the compiled parse takes only lines whose values it reads exactly as orjson does (see
-  :mod:`service.feeds.ndjson_parse`); its table passes the same column checks as Arrow's;
+  :mod:`service.feeds.ndjson_parse`); its columns pass the same checks as those of Arrow's;
 * of the other lines, the same pass (the line scan) sends to the validator every line that is over
   ``service.max_line_bytes``, does not start with ``{`` and end with ``}``, contains ``NaN`` or
   ``Infinity`` (Arrow accepts those literals, JSON does not), more than 64 ``{``/``[`` (orjson
@@ -130,12 +130,12 @@ class ArrowNdjson:
 
     def chunk_lines(self, buf: bytes, first_line: int, scanned) -> tuple[Prepared | None, list]:
         """:meth:`chunk` of ``buf`` with its lines already found (``scanned``: :meth:`scan`)."""
-        starts, ends, flags, escaped, table = scanned
+        starts, ends, flags, escaped, parsed = scanned
         lines = first_line + np.arange(len(starts), dtype=np.int64)
         parts: list[Prepared] = []
         slow: list[int] = list(np.flatnonzero(flags == CHECK))
-        if table is not None:
-            self._columns(table, buf, np.flatnonzero(flags == PARSED), (ends, escaped), lines, parts, slow)
+        if parsed is not None:
+            self._keep(*parsed, np.flatnonzero(flags == PARSED), lines, parts, slow)
         plain = np.flatnonzero(flags == PLAIN)
         if self._cool > 0:
             self._cool -= 1
@@ -207,6 +207,11 @@ class ArrowNdjson:
             for name in ambiguous:
                 maybe[_lines_with(buf, b'"' + name.rsplit(".", 1)[-1].encode() + b'"', ends)] = True
             flagged |= maybe[sel]
+        self._keep(cols, flagged, sel, lines, parts, slow)
+
+    def _keep(self, cols, flagged, sel, lines, parts, slow) -> None:
+        """The prepared events of the rows of ``cols`` (the lines ``sel``) not ``flagged``; the
+        flagged lines are appended to ``slow``."""
         keep = np.flatnonzero(~flagged)
         slow.extend(sel[flagged].tolist())
         if len(keep):

@@ -1,4 +1,4 @@
-"""Plain NDJSON event lines parsed by a compiled pass straight into an Arrow table.
+"""Plain NDJSON event lines parsed by a compiled pass straight into columns.
 
 Arrow's JSON reader costs about 1.3 us per event of the demo feed (a general parser building
 general columns), and the line scan before it another 0.4; most lines of a feed have one simple
@@ -6,20 +6,22 @@ shape, which the compiled parse of :mod:`service.feeds.ndjson_parse` reads while
 in one pass over the bytes, into the columns the reader would give them (strings as UTF-8 spans,
 numbers as doubles, ``null`` as missing). It takes only lines it reads exactly as orjson does and
 classes the others as the line scan does, for the general readers of
-:mod:`service.feeds.ndjson_columns`; so it changes no result, only the cost: its table goes through
-the same :func:`service.feeds.columns.from_arrow` checks as a table of Arrow's reader.
+:mod:`service.feeds.ndjson_columns`; so it changes no result, only the cost: its columns go through
+the rules of :func:`service.feeds.columns.from_arrow` (:func:`~service.feeds.columns.from_parsed`,
+the same functions without an Arrow table in between).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from service.feeds.columns import from_parsed
 from service.feeds.scan_codes import PARSED
 from service.kernels import FEEDS
 
 __all__ = ["DirectParse"]
 
-_TOP = ("id", "ts", "features", "target")
+_TOP = ("id", "ts", "features", "target")  # the top-level keys, in the order the parse numbers them
 
 
 class DirectParse:
@@ -42,14 +44,15 @@ class DirectParse:
         self._offsets = _read_only(np.cumsum([0] + [len(e) for e in encoded], dtype=np.int64))
         slots = list(range(len(self.numeric))) + [-1 - c for c in range(len(self.categorical))]
         self._slots = _read_only(np.asarray(slots, dtype=np.int64))
+        self._validator = validator
         self._binary = bool(validator.binary)
         self._max_line = validator.max_line
 
     def scan(self, buf: bytes, max_line: int | None = None):
-        """``(starts, ends, flags, escaped, table)``: where each line of ``buf`` starts and ends
+        """``(starts, ends, flags, escaped, parsed)``: where each line of ``buf`` starts and ends
         (without its newline), its class (:mod:`service.feeds.scan_codes`: blank, plain, for the
-        validator, or parsed), whether it holds a backslash, and the Arrow table (``id``, ``ts``,
-        ``features``, ``target``) of the parsed lines in order (``None`` without any)."""
+        validator, or parsed), whether it holds a backslash, and ``(columns, flagged)`` of the parsed
+        lines in order (:func:`service.feeds.columns.from_parsed`; ``None`` without any)."""
         arr = np.frombuffer(buf, dtype=np.uint8)
         cap = int(np.count_nonzero(arr == 10)) + 1
         starts = np.empty(cap, np.int64)
@@ -66,11 +69,10 @@ class DirectParse:
             return starts, ends, flags, escaped, None
         nums, spans = nums[:k][done], spans[:k][done]
         pa = self._pa
-        numbers = [_floats(pa, nums[:, c]) for c in range(nums.shape[1])]
+        numbers = dict(zip(["ts", "target"] + self.numeric, nums.T.copy()))  # one contiguous copy, rows per name
         texts = [_strings(pa, arr, spans[:, 2 * c], spans[:, 2 * c + 1]) for c in range(spans.shape[1] // 2)]
-        features = pa.StructArray.from_arrays(numbers[2:] + texts[1:], names=self.numeric + self.categorical)
-        table = pa.Table.from_arrays([texts[0], numbers[0], features, numbers[1]], names=list(_TOP))
-        return starts, ends, flags, escaped, table
+        return starts, ends, flags, escaped, from_parsed(texts[0], numbers, dict(zip(self.categorical, texts[1:])),
+                                                         self._validator)
 
 
 def _read_only(a: np.ndarray) -> np.ndarray:
@@ -78,12 +80,6 @@ def _read_only(a: np.ndarray) -> np.ndarray:
     view = np.ascontiguousarray(a).view()
     view.flags.writeable = False
     return view
-
-
-def _floats(pa, x: np.ndarray):
-    """A float64 Arrow array of ``x``, null where it is NaN (the parse's mark for missing)."""
-    missing = np.isnan(x)
-    return pa.array(x, mask=missing) if missing.any() else pa.array(x)
 
 
 def _strings(pa, arr: np.ndarray, lo: np.ndarray, hi: np.ndarray):

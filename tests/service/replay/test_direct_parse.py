@@ -32,8 +32,8 @@ def _parse(lines: list[bytes], binary: bool = False):
     config = dict(CONFIG, model={"task": "binary", "loss": "logistic"}) if binary else CONFIG
     engine = Engine(config_from_dict(config))
     buf = b"\n".join(lines) + b"\n"
-    _, _, flags, _, table = DirectParse(engine.validator).scan(buf)
-    return table, flags == PARSED
+    _, _, flags, _, parsed = DirectParse(engine.validator).scan(buf)
+    return (None if parsed is None else parsed[0]), flags == PARSED
 
 
 def _same_as_validator(buf: bytes, config: dict = CONFIG) -> ArrowNdjson:
@@ -77,8 +77,8 @@ def test_numbers_are_the_doubles_orjson_reads():
     texts += [b"0.1", b"0.30000000000000004", b"1772439300.0", b"-0.0", b"-0", b"1e22", b"1e23", b"123456789012345",
               b"1234567890123456", b"0.000000000000000000001", b"4.35", b"9007199254740993", b"1E-22", b"5e-324"]
     lines = [b'{"id":"n","features":{"x":' + t + b"}}" for t in texts]
-    table, done = _parse(lines)
-    got = table.column("features").combine_chunks().field("x").to_numpy(zero_copy_only=False)
+    cols, done = _parse(lines)
+    got = cols.numeric["x"]
     want = np.array([orjson.loads(t) for t in np.asarray(texts, dtype=object)[done]], dtype=np.float64)
     assert got.tobytes() == want.tobytes()
     assert want.tobytes() == np.array([float(t) for t in np.asarray(texts, dtype=object)[done]]).tobytes()
@@ -125,10 +125,10 @@ def test_lines_it_leaves_are_classed_as_the_line_scan_classes_them():
     lines = [b'{"id":"a","features":{}}', b"", b" \t\r", long, b'{"id":"b","features":{"x":NaN}}',
              b'{"id":"c\\u0041","features":{}}', b'{"id":"d","features":{}}\r', b"{}"]
     buf = b"\n".join(lines)
-    starts, ends, flags, escaped, table = DirectParse(engine.validator).scan(buf, 70)
+    starts, ends, flags, escaped, (cols, _) = DirectParse(engine.validator).scan(buf, 70)
     assert [buf[a:b] for a, b in zip(starts, ends)] == lines
     assert flags.tolist() == [3, 0, 0, 2, 2, 1, 3, 1] and escaped.tolist() == [False] * 5 + [True, False, False]
-    assert table.column("id").to_pylist() == ["a", "d"]
+    assert cols.ids.to_pylist() == ["a", "d"]
 
 
 def test_a_value_of_the_wrong_type_is_still_rejected_with_the_validators_words():
