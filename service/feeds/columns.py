@@ -157,7 +157,7 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
     null, the key may be absent or ``null``, so its name is returned (as ``"features.<name>"`` or
     ``"<name>"``) for the caller to look for in the raw line.
     """
-    pa, pc = _pa()
+    pa, _ = _pa()
     n = table.num_rows
     slow = np.zeros(n, dtype=np.bool_)
     names = table.column_names

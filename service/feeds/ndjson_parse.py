@@ -323,8 +323,8 @@ def scan_parse(buf, max_line, names, offsets, slots, bool_target, starts, ends, 
 
     A line the parse takes (whole, up to its newline, at most ``max_line`` bytes) gets class 3 and its
     values in its row of ``nums`` and ``spans``; any other line is classed by
-    :func:`service.feeds.ndjson_scan._scan_line` (blank, plain, for the validator). ``names``, ``offsets`` and ``slots`` say which keys the parse knows and where
-    their values go: first ``id``, ``ts``, ``features``, ``target``, then the declared features;
+    :func:`service.feeds.ndjson_scan._scan_line` (blank, plain, for the validator). ``names``,
+    ``offsets`` and ``slots`` say which keys the parse knows and where their values go: first ``id``, ``ts``, ``features``, ``target``, then the declared features;
     ``slots[k]`` of feature ``k`` (key ``4 + k``) is ``>= 0`` for numeric column ``2 + slots[k]`` of
     ``nums`` (``ts`` and ``target`` are its columns 0 and 1) and ``< 0`` for categorical
     ``c = -1 - slots[k]``, whose span is ``spans[:, 2 + 2c : 4 + 2c]`` (the id's ``spans[:, 0:2]``).
