@@ -20,7 +20,7 @@ import numpy as np
 
 from service.kernels import FEEDS
 
-__all__ = ["HOLDOUT_PREFIX", "IdSet", "hash_ids", "hash_strings", "holdout_fractions"]
+__all__ = ["HOLDOUT_PREFIX", "IdSet", "hash_ids", "hash_strings", "holdout_fractions", "id_keys"]
 
 #: The prefix :func:`service.engine.holdout_fraction` hashes the id with.
 HOLDOUT_PREFIX = b"holdout\x1f"
@@ -29,19 +29,10 @@ HOLDOUT_PREFIX = b"holdout\x1f"
 _IV = np.array([0x6A09E667F3BCC908, 0xBB67AE8584CAA73B, 0x3C6EF372FE94F82B, 0xA54FF53A5F1D36F1,
                 0x510E527FADE682D1, 0x9B05688C2B3E6C1F, 0x1F83D9ABFB41BD6B, 0x5BE0CD19137E2179],
                dtype=np.uint64)
-_SIGMA = np.array([
-    [0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14, 15],
-    [14, 10, 4, 8, 9, 15, 13, 6, 1, 12, 0, 2, 11, 7, 5, 3],
-    [11, 8, 12, 0, 5, 2, 15, 13, 10, 14, 3, 6, 7, 1, 9, 4],
-    [7, 9, 3, 1, 13, 12, 11, 14, 2, 6, 5, 10, 4, 0, 15, 8],
-    [9, 0, 5, 7, 2, 4, 10, 15, 14, 1, 11, 12, 6, 8, 3, 13],
-    [2, 12, 6, 10, 0, 11, 8, 3, 4, 13, 7, 5, 15, 14, 1, 9],
-    [12, 5, 1, 15, 14, 13, 4, 10, 0, 7, 6, 3, 9, 2, 8, 11],
-    [13, 11, 7, 14, 12, 1, 3, 9, 5, 0, 15, 4, 8, 6, 2, 10],
-    [6, 15, 14, 9, 11, 3, 0, 8, 12, 2, 13, 7, 1, 4, 10, 5],
-    [10, 2, 8, 4, 7, 6, 1, 5, 15, 11, 9, 14, 3, 12, 13, 0]], dtype=np.int64)
 #: h[0] of BLAKE2b with an 8-byte digest and no key: IV[0] ^ 0x01010000 ^ (keylen << 8) ^ outlen
 _H0 = np.uint64(0x6A09E667F3BCC908 ^ 0x01010008)
+#: ... and with a 16-byte digest (the deduplication key, :func:`service.storage.seen.id_key`)
+_H0_16 = np.uint64(0x6A09E667F3BCC908 ^ 0x01010010)
 
 
 def hash_ids(offsets: np.ndarray, data: np.ndarray, valid: np.ndarray | None = None,
@@ -62,15 +53,28 @@ def hash_ids(offsets: np.ndarray, data: np.ndarray, valid: np.ndarray | None = N
     numpy.ndarray
         ``uint64`` values equal to ``models.stable_hash64(prefix.decode() + text)``.
     """
+    return _digests(offsets, data, valid, prefix, _H0, 1)[:, 0]
+
+
+def _digests(offsets, data, valid, prefix: bytes, h0, words: int) -> np.ndarray:
+    """The first ``words`` 64-bit words of the BLAKE2b digests (``h0``: of which length) of
+    ``prefix + string``, one row per string (zeros where not ``valid``)."""
     offsets = _read_only(offsets, np.int64)
     n = offsets.shape[0] - 1
     valid = np.ones(n, dtype=np.bool_) if valid is None else valid
-    out = np.zeros(n, dtype=np.uint64)
+    out = np.zeros((n, words), dtype=np.uint64)
     if n:
         data = np.zeros(1, dtype=np.uint8) if len(data) == 0 else data
         FEEDS.hash_column(offsets, _read_only(data, np.uint8), _read_only(valid, np.bool_),
-                     np.frombuffer(prefix, dtype=np.uint8), _IV, _SIGMA, _H0, out)
+                          np.frombuffer(prefix, dtype=np.uint8), _IV, h0, out)
     return out
+
+
+def id_keys(offsets: np.ndarray, data: np.ndarray, valid: np.ndarray) -> list:
+    """:func:`service.storage.seen.id_key` (the 16-byte BLAKE2b digest) of each string of a column
+    like :func:`hash_ids` takes, ``None`` where not ``valid``; computed in the compiled loop."""
+    blob = _digests(offsets, data, valid, b"", _H0_16, 2).astype("<u8", copy=False).tobytes()
+    return [blob[16 * k:16 * k + 16] if v else None for k, v in enumerate(valid.tolist())]
 
 
 def _read_only(a, dtype) -> np.ndarray:

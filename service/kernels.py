@@ -29,7 +29,8 @@ from models.native import MODE_ENV, MODEL, KernelSet, cache_dir
 __all__ = ["FEEDS", "build_all", "build_later", "main"]
 
 #: The feed readers' and the id set's compiled functions.
-FEEDS = KernelSet("feeds", ("service.idhash_kernels", "service.feeds.ndjson_scan"), extra=("models.jit", "service.feeds.scan_codes"))
+FEEDS = KernelSet("feeds", ("service.idhash_kernels", "service.feeds.ndjson_scan", "service.feeds.ndjson_parse"),
+                  extra=("models.jit", "service.feeds.scan_codes"))
 _SETS = (MODEL, FEEDS)
 _ROOT = Path(__file__).resolve().parents[1]
 #: A build lock older than this is taken to be left by a build that died.
@@ -41,12 +42,13 @@ def _exercise() -> None:
     JIT holds the signatures of a real run."""
     import numpy as np
 
-    from service.feeds.ndjson_columns import _split_by_kind, scan_lines
+    from service.feeds.ndjson_columns import _split_by_kind
     from service.warmup import PARTS, warm
 
     warm(PARTS, ("lazy", "dense"))
     buf = b'{"f":{"c":"a"}}\n{"f":{"c":1}}\n'
-    starts, ends, _, _ = scan_lines(buf, 1 << 16)
+    ends = np.flatnonzero(np.frombuffer(buf, dtype=np.uint8) == 10).astype(np.int64)
+    starts = np.concatenate([[0], ends[:-1] + 1]).astype(np.int64)
     _split_by_kind(buf, starts, ends, np.arange(len(starts), dtype=np.int64), "c")
 
 

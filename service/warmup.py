@@ -71,8 +71,9 @@ def warm(parts, kernels=("lazy",)) -> list[str]:
 
 
 def _warm_feeds() -> None:
-    """The columnar NDJSON reader on a few lines, one of them malformed so that it also gathers a
-    subset of lines; the id hashes; an id set that grows once."""
+    """The columnar NDJSON reader on a few lines, one of them malformed and one with an escape (left by
+    the compiled parse to Arrow's reader, on a gathered subset of lines); the id hashes; an id set
+    that grows once."""
     from service.config import config_from_dict
     from service.feeds.ndjson_columns import ArrowNdjson, available
     from service.idhash import IdSet, hash_strings
@@ -85,6 +86,7 @@ def _warm_feeds() -> None:
         config = config_from_dict({"name": "warmup", "features": {"numeric": ["x"], "categorical": ["c"]}})
         lines = [orjson.dumps({"id": f"warm-{k}", "ts": float(k), "features": {"x": 0.5, "c": "a"}, "target": 1.0})
                  for k in range(4)]
+        lines[3] = lines[3].replace(b"warm-3", b"warm-\\u0033")  # an escape: Arrow's reader takes it
         ArrowNdjson(Engine(config)).chunk(b"\n".join(lines[:2] + [b"not json"] + lines[2:]) + b"\n", 1)
     seen = IdSet(capacity=16)
     keys = hash_strings([f"warm-{k}" for k in range(12)])
@@ -101,7 +103,8 @@ def _functions(part: str, kernels) -> list:
         return [(MODEL, "lazy_process" if k == "lazy" else "dense_process") for k in kernels]
     if part == "read":
         return [(MODEL, "score_rows_both"), (MODEL, "score_window"), (MODEL, "materialize"), (MODEL, "iterate_distance")]
-    return [(FEEDS, n) for n in ("scan_bytes", "gather_lines", "hash_column", "insert_keys", "rehash")]
+    return [(FEEDS, n) for n in ("scan_parse", "gather_spans", "gather_lines", "hash_column", "insert_keys",
+                                 "rehash")]
 
 
 def is_cached(parts, kernels=("lazy",)) -> bool:

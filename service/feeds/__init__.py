@@ -1,5 +1,5 @@
 """Feeds: file readers for NDJSON, CSV and Parquet (``files``), the columnar parse (``columns``,
-``ndjson_columns``), the Redis stream consumer (``redis_stream``), and replay of a recorded feed into a
+``ndjson_columns``, ``ndjson_direct``), the Redis stream consumer (``redis_stream``), and replay of a recorded feed into a
 running service (``into_service``).
 
 May import ``models``, ``service.config``, ``service.errors``, ``service.events``, ``service.idhash``,

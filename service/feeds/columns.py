@@ -28,7 +28,8 @@ from service.engine import PreparedBatch
 from service.events import CONTROL_CHARS, INT64_MAX, INT64_MIN, MAX_ID_BYTES, MAX_MAGNITUDE  # the validator's rules
 from service.idhash import hash_ids, holdout_fractions
 
-__all__ = ["Columns", "Prepared", "from_arrow", "holdout_share", "take_prepared", "to_prepared"]
+__all__ = ["Columns", "Prepared", "from_arrow", "from_parsed", "holdout_share", "string_buffers", "take_prepared",
+           "to_prepared"]
 
 _TS_SCALE = {"s": 1.0, "ms": 1e3, "us": 1e6}
 
@@ -90,10 +91,31 @@ def _floats(arr, slow: np.ndarray, *, allow_bool: bool) -> np.ndarray:
         return np.full(len(arr), np.nan)
     x = arr.to_numpy(zero_copy_only=False).astype(np.float64)
     x[null] = np.nan
+    _number_rules(x, null, slow)
+    return x
+
+
+def _number_rules(x: np.ndarray, null: np.ndarray, slow: np.ndarray) -> None:
+    """Flags the numbers ``x`` (where not ``null``) that the validator would not pass as is."""
     # non-finite and huge numbers are rejected by the validator (a huge ts passes there, on the slow
     # path); -0.0 is ambiguous (JSON "-0" is the integer 0)
     slow |= ~null & (~(np.abs(x) <= MAX_MAGNITUDE) | ((x == 0.0) & np.signbit(x)))
-    return x
+
+
+def _id_rules(ids, slow: np.ndarray) -> np.ndarray:
+    """Flags the ids (an Arrow string array) the validator would reject; returns where there is one."""
+    _, pc = _pa()
+    size = pc.binary_length(ids).fill_null(1).to_numpy(zero_copy_only=False)
+    control = pc.match_substring_regex(ids, CONTROL_CHARS).fill_null(False).to_numpy(zero_copy_only=False)
+    slow |= (size == 0) | (size > MAX_ID_BYTES) | control
+    return ~ids.is_null().to_numpy(zero_copy_only=False)
+
+
+def _target_rules(target: np.ndarray, has_id: np.ndarray, binary: bool, slow: np.ndarray) -> None:
+    """Flags the targets a binary task would reject, and the learning events without an id."""
+    if binary:
+        slow |= ~np.isnan(target) & (target != 0.0) & (target != 1.0)
+    slow |= ~np.isnan(target) & ~has_id  # a learning event needs an id
 
 
 def _categorical(arr, slow: np.ndarray, max_bytes: int) -> tuple[np.ndarray, list]:
@@ -135,7 +157,7 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
     null, the key may be absent or ``null``, so its name is returned (as ``"features.<name>"`` or
     ``"<name>"``) for the caller to look for in the raw line.
     """
-    pa, pc = _pa()
+    pa, _ = _pa()
     n = table.num_rows
     slow = np.zeros(n, dtype=np.bool_)
     names = table.column_names
@@ -173,11 +195,7 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
         if not (pa.types.is_string(ids.type) or pa.types.is_large_string(ids.type)):
             slow |= ~ids.is_null().to_numpy(zero_copy_only=False)
             ids = None
-        else:
-            size = pc.binary_length(ids).fill_null(1).to_numpy(zero_copy_only=False)
-            control = pc.match_substring_regex(ids, CONTROL_CHARS).fill_null(False).to_numpy(zero_copy_only=False)
-            slow |= (size == 0) | (size > MAX_ID_BYTES) | control
-    has_id = np.zeros(n, bool) if ids is None else ~ids.is_null().to_numpy(zero_copy_only=False)
+    has_id = np.zeros(n, bool) if ids is None else _id_rules(ids, slow)
 
     ts = np.full(n, np.nan)
     if "ts" in names:
@@ -191,9 +209,7 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
     target = np.full(n, np.nan)
     if "target" in names:
         target = _floats(col("target"), slow, allow_bool=validator.binary)
-        if validator.binary:
-            slow |= ~np.isnan(target) & (target != 0.0) & (target != 1.0)
-    slow |= ~np.isnan(target) & ~has_id  # a learning event needs an id
+    _target_rules(target, has_id, validator.binary, slow)
 
     numeric = {k: _floats(feats[k], slow, allow_bool=True) if k in feats else np.full(n, np.nan)
                for k in validator.numeric}
@@ -203,18 +219,43 @@ def from_arrow(table, validator, *, nested: bool) -> tuple[Columns, np.ndarray, 
     return Columns(n, ids, ts, target, numeric, categorical), slow, ambiguous
 
 
+def string_buffers(ids) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Offsets, UTF-8 bytes and validity of an Arrow string array (the input of :func:`service.idhash.hash_ids`)."""
+    pa, _ = _pa()
+    bufs = ids.buffers()
+    wide = pa.types.is_large_string(ids.type)
+    offsets = np.frombuffer(bufs[1], dtype=np.int64 if wide else np.int32, count=len(ids) + 1,
+                            offset=ids.offset * (8 if wide else 4))
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
+    return offsets, data, ~ids.is_null().to_numpy(zero_copy_only=False)
+
+
+def from_parsed(ids, numbers: dict, texts: dict, validator) -> tuple[Columns, np.ndarray]:
+    """:func:`from_arrow` of the columns of the compiled NDJSON parse (:mod:`service.feeds.ndjson_direct`):
+    the same rules on the same values, without an Arrow table in between.
+
+    ``ids`` is an Arrow string array; ``numbers`` maps ``ts``, ``target`` and each numeric feature
+    to a float64 array (NaN where missing), ``texts`` each categorical feature to an Arrow string
+    array. Every row has its ``features`` object and only known keys (the parse takes no other line).
+    """
+    n = len(ids)
+    slow = np.zeros(n, dtype=np.bool_)
+    has_id = _id_rules(ids, slow)
+    for x in numbers.values():
+        _number_rules(x, np.isnan(x), slow)
+    _target_rules(numbers["target"], has_id, validator.binary, slow)
+    numeric = {k: numbers[k] for k in validator.numeric}
+    categorical = {k: _categorical(texts[k], slow, validator.max_value) for k in validator.categorical}
+    return Columns(n, ids, numbers["ts"], numbers["target"], numeric, categorical), slow
+
+
 def _id_hashes(ids, n: int, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     if ids is None:
         return np.zeros(len(rows), np.uint64), np.zeros(len(rows), bool)
     pa, _ = _pa()
     if len(rows) != n:
         ids = ids.take(pa.array(rows))
-    bufs = ids.buffers()
-    wide = pa.types.is_large_string(ids.type)
-    offsets = np.frombuffer(bufs[1], dtype=np.int64 if wide else np.int32, count=len(ids) + 1,
-                            offset=ids.offset * (8 if wide else 4))
-    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
-    valid = ~ids.is_null().to_numpy(zero_copy_only=False)
+    offsets, data, valid = string_buffers(ids)
     return hash_ids(offsets, data, valid), valid
 
 

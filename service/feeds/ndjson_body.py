@@ -21,8 +21,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.feeds.columns import Prepared, take_prepared
-from service.feeds.ndjson_columns import ArrowNdjson, available, scan_lines
+from service.feeds.columns import Prepared, string_buffers, take_prepared
+from service.feeds.ndjson_columns import ArrowNdjson, available
+from service.idhash import id_keys
 from service.kernels import FEEDS
 from service.storage.seen import id_key
 
@@ -90,15 +91,20 @@ class BodyParser:
     def parse(self, body: bytes) -> ParsedBody:
         """Parse and check ``body``; bad lines are rejected with ``line N`` (1-based) and why."""
         reader = self._reader()
-        scanned = scan_lines(body, reader.validator.max_line)
+        scanned = reader.scan(body)
         prepared, rejected = reader.chunk_lines(body, 1, scanned)
         starts, ends = scanned[0], scanned[1]
         if prepared is None:
             return ParsedBody(body, None, [r for _, r in rejected], [], [], [], starts, ends)
         where = (prepared.where - 1).tolist()
         ids = prepared.batch.ids
-        ids = ids.to_pylist() if hasattr(ids, "to_pylist") else list(ids)
-        keys = [None if i is None else id_key(i) for i in ids]  # here, on a parse thread, not the journal's
+        # the deduplication keys here, on a parse thread, not the journal's
+        if hasattr(ids, "to_pylist"):
+            keys = id_keys(*string_buffers(ids))
+            ids = ids.to_pylist()
+        else:
+            ids = list(ids)
+            keys = [None if i is None else id_key(i) for i in ids]
         return ParsedBody(body, prepared, [r for _, r in rejected], where, ids, keys, starts, ends)
 
     def lines(self, payload: bytes) -> Prepared:

@@ -1,13 +1,16 @@
-"""NDJSON chunks parsed by Arrow's JSON reader into columns, with the validator as the fallback.
+"""NDJSON chunks parsed into columns (compiled, or by Arrow's JSON reader), with the validator as the fallback.
 
 Parsing each line with orjson and validating its dict costs several microseconds of Python per
-event, more than the learning itself. Arrow's JSON reader parses a whole chunk in C++ into typed
-columns; :mod:`service.feeds.columns` then maps them without per-event Python. Only lines that are
-certainly equivalent take that path; anything else goes, line by line, through
-:meth:`EventValidator.parse_line`, so every rejection has the validator's exact ``where`` and
-reason and every accepted value is what orjson would give:
+event, more than the learning itself. A compiled pass (:mod:`service.feeds.ndjson_direct`) finds
+the lines and parses those of the common shape straight into columns; Arrow's JSON reader parses
+the other plain lines in C++ into typed columns; :mod:`service.feeds.columns` then maps both
+without per-event Python. Only lines that are certainly equivalent take those paths; anything
+else goes, line by line, through :meth:`EventValidator.parse_line`, so every rejection has the
+validator's exact ``where`` and reason and every accepted value is what orjson would give:
 
-* a pre-scan (compiled, one pass over the bytes) sends to the validator every line that is over
+* the compiled parse takes only lines whose values it reads exactly as orjson does (see
+  :mod:`service.feeds.ndjson_parse`); its columns pass the same checks as those of Arrow's;
+* of the other lines, the same pass (the line scan) sends to the validator every line that is over
   ``service.max_line_bytes``, does not start with ``{`` and end with ``}``, contains ``NaN`` or
   ``Infinity`` (Arrow accepts those literals, JSON does not), more than 64 ``{``/``[`` (orjson
   limits nesting) or a run of more than 15 digits (an integer past 2**53 that Arrow would read as a
@@ -35,12 +38,13 @@ from models import InvalidInput
 from models.features import categorical_text
 
 from service.feeds.columns import Prepared, from_arrow, holdout_share, take_prepared, to_prepared
+from service.feeds.ndjson_direct import DirectParse
 from service.events import Rejection
-from service.feeds.scan_codes import BOOLEAN, CHECK, NONE, NUMBER, PLAIN, STRING
+from service.feeds.scan_codes import BOOLEAN, CHECK, NONE, NUMBER, PARSED, PLAIN, STRING
 from service.idhash import hash_strings
 from service.kernels import FEEDS
 
-__all__ = ["ArrowNdjson", "available", "prepare_events", "scan_lines"]
+__all__ = ["ArrowNdjson", "available", "prepare_events"]
 
 _LEAF = 16  # lines below which a failing piece goes to the validator line by line
 _ROW = re.compile(r"in row (\d+)")
@@ -54,22 +58,6 @@ def available() -> bool:
     except ImportError:
         return False
     return True
-
-
-def scan_lines(buf: bytes, max_line: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Start, end (without the newline), class (0 blank, 1 plain, 2 needs the validator) and
-    whether it holds a backslash, for every line.
-
-    Blank means only spaces, tabs, CR, VT or FF, the bytes :meth:`bytes.strip` removes.
-    """
-    arr = np.frombuffer(buf, dtype=np.uint8)
-    cap = int(np.count_nonzero(arr == 10)) + 1
-    starts = np.empty(cap, np.int64)
-    ends = np.empty(cap, np.int64)
-    flags = np.empty(cap, np.int8)
-    escaped = np.empty(cap, np.bool_)
-    k = FEEDS.scan_bytes(arr, max_line, starts, ends, flags, escaped)
-    return starts[:k], ends[:k], flags[:k], escaped[:k]
 
 
 def _lines_bytes(buf: bytes, starts, ends, sel) -> bytes:
@@ -127,20 +115,27 @@ class ArrowNdjson:
             top.append(pa.field("target", pa.float64()))
         # categorical values and binary targets keep their JSON type (string, integer, boolean)
         self._parse = pj.ParseOptions(explicit_schema=pa.schema(top), unexpected_field_behavior="infer")
+        self._direct = DirectParse(v)
         self._share = holdout_share(engine.config)
         self._cool = 0
         self.fallback_lines = 0
 
     def chunk(self, buf: bytes, first_line: int) -> tuple[Prepared | None, list]:
         """Prepared events of ``buf`` (whole lines) in line order, and ``[(line, Rejection)]`` in line order."""
-        return self.chunk_lines(buf, first_line, scan_lines(buf, self.validator.max_line))
+        return self.chunk_lines(buf, first_line, self.scan(buf))
+
+    def scan(self, buf: bytes):
+        """The lines of ``buf``, those of the common shape already parsed (:meth:`DirectParse.scan`)."""
+        return self._direct.scan(buf, self.validator.max_line)
 
     def chunk_lines(self, buf: bytes, first_line: int, scanned) -> tuple[Prepared | None, list]:
-        """:meth:`chunk` of ``buf`` with its lines already found (``scanned``: :func:`scan_lines`)."""
-        starts, ends, flags, escaped = scanned
+        """:meth:`chunk` of ``buf`` with its lines already found (``scanned``: :meth:`scan`)."""
+        starts, ends, flags, escaped, parsed = scanned
         lines = first_line + np.arange(len(starts), dtype=np.int64)
         parts: list[Prepared] = []
         slow: list[int] = list(np.flatnonzero(flags == CHECK))
+        if parsed is not None:
+            self._keep(*parsed, np.flatnonzero(flags == PARSED), lines, parts, slow)
         plain = np.flatnonzero(flags == PLAIN)
         if self._cool > 0:
             self._cool -= 1
@@ -199,17 +194,28 @@ class ArrowNdjson:
                     half = len(sel) // 2
                     todo += [(sel[half:], False), (sel[:half], False)]
                 continue
-            cols, flagged, ambiguous = from_arrow(table, self.validator, nested=True)
-            if ambiguous:
-                # without a backslash a key's bytes are its UTF-8 text, so its absence is certain
-                maybe = escaped.copy()
-                for name in ambiguous:
-                    maybe[_lines_with(buf, b'"' + name.rsplit(".", 1)[-1].encode() + b'"', ends)] = True
-                flagged |= maybe[sel]
-            keep = np.flatnonzero(~flagged)
-            slow.extend(sel[flagged].tolist())
-            if len(keep):
-                parts.append(to_prepared(cols, keep, lines[sel[keep]], self.engine.model.mapper, self._share))
+            self._columns(table, buf, sel, (ends, escaped), lines, parts, slow)
+
+    def _columns(self, table, buf, sel, spans, lines, parts, slow) -> None:
+        """The prepared events of ``table`` (the lines ``sel``); the rows it cannot vouch for are
+        appended to ``slow``."""
+        ends, escaped = spans
+        cols, flagged, ambiguous = from_arrow(table, self.validator, nested=True)
+        if ambiguous:
+            # without a backslash a key's bytes are its UTF-8 text, so its absence is certain
+            maybe = escaped.copy()
+            for name in ambiguous:
+                maybe[_lines_with(buf, b'"' + name.rsplit(".", 1)[-1].encode() + b'"', ends)] = True
+            flagged |= maybe[sel]
+        self._keep(cols, flagged, sel, lines, parts, slow)
+
+    def _keep(self, cols, flagged, sel, lines, parts, slow) -> None:
+        """The prepared events of the rows of ``cols`` (the lines ``sel``) not ``flagged``; the
+        flagged lines are appended to ``slow``."""
+        keep = np.flatnonzero(~flagged)
+        slow.extend(sel[flagged].tolist())
+        if len(keep):
+            parts.append(to_prepared(cols, keep, lines[sel[keep]], self.engine.model.mapper, self._share))
 
     def _validate(self, buf, sel, starts, ends, lines, parts) -> list:
         events, where, rejected = [], [], []

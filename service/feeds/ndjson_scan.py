@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from models.jit import numba
 
-__all__ = ["gather_lines", "scan_bytes", "value_kinds"]
+__all__ = ["gather_lines", "value_kinds"]
 
 from service.feeds.scan_codes import BOOLEAN as _BOOLEAN, MAX_DIGITS as _MAX_DIGITS, MAX_OPEN as _MAX_OPEN
 from service.feeds.scan_codes import NONE as _NONE, NUMBER as _NUMBER, STRING as _STRING
@@ -46,66 +46,59 @@ def _utf8_len(buf, i, n):
     return need + 1
 
 
-@numba.njit(cache=True, nogil=True)
-def scan_bytes(buf, max_line, starts, ends, flags, escaped):
-    n = buf.shape[0]
-    k = 0
-    i = 0
-    while i <= n:
-        lo = i
-        first = -1
-        last = -1
-        opens = 0
-        odd = False
-        blank = True
-        backslash = False
-        digits = 0
-        while i < n and buf[i] != 10:
-            c = buf[i]
-            # a run of over 15 digits may be an integer Arrow reads as a double (orjson keeps it
-            # exact): the validator decides such lines
-            if 48 <= c <= 57:
-                digits += 1
-                if digits > _MAX_DIGITS:
-                    odd = True
-            else:
-                digits = 0
-            if not (c == 32 or c == 9 or c == 13):
-                if first < 0:
-                    first = c
-                last = c
-                if c != 11 and c != 12:
-                    blank = False
-            if c == 123 or c == 91:
-                opens += 1
-            elif c == 92:
-                backslash = True
-            elif c == 78 and i + 2 < n and buf[i + 1] == 97 and buf[i + 2] == 78:  # NaN
+@numba.njit(cache=True, nogil=True, inline="always")
+def _scan_line(buf, lo, n, max_line):
+    """``(end, class, backslash)`` of the line that starts at ``lo``: ``end`` is its newline (or
+    ``n``), the class 0 blank, 1 plain, 2 for the validator (:mod:`service.feeds.scan_codes`), and
+    whether it holds a backslash. Blank means only spaces, tabs, CR, VT or FF, the bytes
+    :meth:`bytes.strip` removes. Inlined in the compiled parse (:mod:`service.feeds.ndjson_parse`)."""
+    i = lo
+    first = -1
+    last = -1
+    opens = 0
+    odd = False
+    blank = True
+    backslash = False
+    digits = 0
+    while i < n and buf[i] != 10:
+        c = buf[i]
+        # a run of over 15 digits may be an integer Arrow reads as a double (orjson keeps it
+        # exact): the validator decides such lines
+        if 48 <= c <= 57:
+            digits += 1
+            if digits > _MAX_DIGITS:
                 odd = True
-            elif c == 73 and i + 7 < n and buf[i + 1] == 110 and buf[i + 2] == 102:  # Infinity
-                odd = True
-            elif c >= 128:
-                step = _utf8_len(buf, i, n)
-                if step == 0:
-                    odd = True
-                    step = 1
-                i += step
-                continue
-            i += 1
-        if i == n and lo == n:
-            break
-        starts[k] = lo
-        ends[k] = i
-        escaped[k] = backslash
-        if blank and (first < 0 or first == 11 or first == 12):
-            flags[k] = 0
-        elif odd or first != 123 or last != 125 or opens > _MAX_OPEN or i - lo > max_line:
-            flags[k] = 2
         else:
-            flags[k] = 1
-        k += 1
+            digits = 0
+        if not (c == 32 or c == 9 or c == 13):
+            if first < 0:
+                first = c
+            last = c
+            if c != 11 and c != 12:
+                blank = False
+        if c == 123 or c == 91:
+            opens += 1
+        elif c == 92:
+            backslash = True
+        elif c == 78 and i + 2 < n and buf[i + 1] == 97 and buf[i + 2] == 78:  # NaN
+            odd = True
+        elif c == 73 and i + 7 < n and buf[i + 1] == 110 and buf[i + 2] == 102:  # Infinity
+            odd = True
+        elif c >= 128:
+            step = _utf8_len(buf, i, n)
+            if step == 0:
+                odd = True
+                step = 1
+            i += step
+            continue
         i += 1
-    return k
+    if blank and (first < 0 or first == 11 or first == 12):
+        flag = 0
+    elif odd or first != 123 or last != 125 or opens > _MAX_OPEN or i - lo > max_line:
+        flag = 2
+    else:
+        flag = 1
+    return i, flag, backslash
 
 
 @numba.njit(cache=True, nogil=True)
