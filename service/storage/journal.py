@@ -51,6 +51,7 @@ import sqlite3
 import threading
 import time
 from contextlib import suppress
+from operator import itemgetter
 from pathlib import Path
 
 import numpy as np
@@ -336,11 +337,12 @@ class Journal:
         with self._lock:  # only once the keys are committed: the filter must never hold back a key
             if upgrade:
                 self._format = JOURNAL_FORMAT
+            added = list(map(itemgetter(0), keys))
             if moved:
                 self._buffer = set()
             else:
-                self._buffer.update(k for k, _ in keys)
-            self._filter.add([k for k, _ in keys])
+                self._buffer.update(added)
+            self._filter.add(added)
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """The rows with a position above ``seq``, in order, until they stand for ``limit`` positions

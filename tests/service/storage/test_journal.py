@@ -142,7 +142,8 @@ def test_ids_are_compared_as_bytes_whatever_they_hold(tmp_path):
     j = Journal(tmp_path)
     keys = [id_key(i) for i in odd]
     assert len(set(keys)) == len(odd)
-    seqs, pairs = seen.number_events(keys + [id_key("a\x00b")], j.known(keys), 1)
-    assert seqs == list(range(1, len(odd) + 1)) + [None]  # the repeat in the same commit is the duplicate
+    dups, pairs = seen.number_events(keys + [id_key("a\x00b")], j.known(keys), 1)
+    assert dups == [len(odd)]  # the repeat in the same commit is the duplicate
+    assert [s for _, s in pairs] == list(range(1, len(odd) + 1))
     j.append([(1, odd, [payload(f"p{k}", k) for k in range(len(odd))])], pairs)
     assert j.known(keys + [id_key("a\x00d"), id_key("b")]) == set(keys)
