@@ -9,7 +9,7 @@ between the two servers (so load from elsewhere on the machine hits both alike);
 rounds is kept and ``cpu_vs_baseline`` is this checkout's median over the baseline's.
 
 Each round also reads the CPU of the server's threads, grouped by name (``py-spy dump`` names them
-after the warm-up round; without py-spy only ``loop``, the main thread, is told apart): ``loop``
+after each round; without py-spy only ``loop``, the main thread, is told apart): ``loop``
 (the event loop: HTTP, handlers, bookkeeping), ``parse`` (the body parsers' worker threads),
 ``journal`` (the commit), ``learner`` (apply, publication, checkpoints) and ``other``.
 
@@ -65,12 +65,12 @@ def _thread_groups(pid: int) -> dict[int, str]:
     return groups
 
 
-def _by_group(pid: int, groups: dict[int, str]) -> dict[str, float]:
-    """CPU seconds so far of each group of threads (threads not in ``groups``: ``other``)."""
-    out = dict.fromkeys(("loop", "parse", "journal", "learner", "other"), 0.0)
+def _thread_cpu(pid: int) -> dict[int, float]:
+    """CPU seconds so far of each thread of a process."""
+    out = {}
     for tid in os.listdir(f"/proc/{pid}/task"):
         with suppress(OSError):
-            out[groups.get(int(tid), "other")] += _cpu(pid, int(tid))
+            out[int(tid)] = _cpu(pid, int(tid))
     return out
 
 
@@ -111,17 +111,19 @@ class Server:
             else:
                 os.environ["PYTHONPATH"] = env_path
         self.rounds: list[dict] = []
-        self.groups = {self.proc.pid: "loop"}
 
     def round(self, data: list[bytes], conns: int) -> dict:
         pid = self.proc.pid
-        before, parts_before = _cpu(pid), _by_group(pid, self.groups)
+        before, threads_before = _cpu(pid), _thread_cpu(pid)
         t0 = time.perf_counter()
         accepted = asyncio.run(_post_all(self.url, data, conns, self.token))
         took = time.perf_counter() - t0
-        total, parts = _cpu(pid) - before, _by_group(pid, self.groups)
+        total, threads = _cpu(pid) - before, _thread_cpu(pid)
+        groups = _thread_groups(pid)  # after the round: worker threads start on demand
         out = {"cpu_us": 1e6 * total / accepted, "events_per_s": accepted / took}
-        out.update({f"{k}_us": 1e6 * (parts[k] - parts_before[k]) / accepted for k in parts})
+        out.update({f"{g}_us": 0.0 for g in ("loop", "parse", "journal", "learner", "other")})
+        for tid, cpu in threads.items():
+            out[f"{groups.get(tid, 'other')}_us"] += 1e6 * (cpu - threads_before.get(tid, 0.0)) / accepted
         self.rounds.append(out)
         return out
 
@@ -154,7 +156,6 @@ def main() -> int:
                     got = s.round(data[r * n:(r + 1) * n], a.conns)
                     if r == 0:
                         s.rounds.clear()  # warm-up: kernels loaded, caches filled, threads started
-                        s.groups = _thread_groups(s.proc.pid)
                     else:
                         print(s.name, r, {k: round(v, 2) for k, v in got.items()}, flush=True)
         finally:

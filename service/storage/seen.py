@@ -65,23 +65,23 @@ def id_key(ident: str) -> bytes:
     return hashlib.blake2b(ident.encode("utf-8", "surrogatepass"), digest_size=16).digest()
 
 
-def _buffered(db: sqlite3.Connection) -> tuple[list[bytes], np.ndarray]:
-    """The buffer's keys and their positions: the rows of ``seen_new`` (files before format 3),
-    then each run of ``seen_runs`` split into its keys."""
-    keys, seqs = [], []
-    for h, seq in db.execute("SELECT h, seq FROM seen_new"):
-        keys.append(h)
-        seqs.append(seq)
+def _runs(db: sqlite3.Connection) -> tuple[bytes, np.ndarray]:
+    """The keys of ``seen_runs``, joined in insertion order, and their positions."""
+    blobs, seqs = [], []
     for seq, blob in db.execute("SELECT seq, keys FROM seen_runs ORDER BY rowid"):
-        n = len(blob) // _KEY_BYTES
-        keys += [blob[i:i + _KEY_BYTES] for i in range(0, n * _KEY_BYTES, _KEY_BYTES)]
-        seqs += range(seq, seq + n)
-    return keys, np.asarray(seqs, dtype=np.int64)
+        blobs.append(blob)
+        seqs.append(np.arange(seq, seq + len(blob) // _KEY_BYTES, dtype=np.int64))
+    return b"".join(blobs), np.concatenate(seqs) if seqs else np.zeros(0, dtype=np.int64)
+
+
+def _split(joined: bytes) -> list[bytes]:
+    return [joined[i:i + _KEY_BYTES] for i in range(0, len(joined), _KEY_BYTES)]
 
 
 def load_buffer(db: sqlite3.Connection) -> set[bytes]:
-    """The keys not yet in ``seen`` (at open: the in-memory mirror of the buffer)."""
-    return set(_buffered(db)[0])
+    """The keys not yet in ``seen``: the rows of ``seen_new`` (files before format 3) and the runs
+    (at open: the in-memory mirror of the buffer)."""
+    return {r[0] for r in db.execute("SELECT h FROM seen_new")} | set(_split(_runs(db)[0]))
 
 
 def buffered_count(db: sqlite3.Connection) -> int:
@@ -98,8 +98,9 @@ def last_position(db: sqlite3.Connection) -> int:
 
 def index_pairs(db: sqlite3.Connection) -> list[tuple[bytes, int]]:
     """Every ``(key, position)`` of the index, indexed and buffered (for tests and inspection)."""
-    keys, seqs = _buffered(db)
-    return db.execute("SELECT h, seq FROM seen").fetchall() + list(zip(keys, seqs.tolist()))
+    joined, seqs = _runs(db)
+    return db.execute("SELECT h, seq FROM seen UNION ALL SELECT h, seq FROM seen_new").fetchall() + \
+        list(zip(_split(joined), seqs.tolist()))
 
 
 def known_keys(db: sqlite3.Connection, buffer: set[bytes], keys: list[bytes]) -> set[bytes]:
@@ -125,9 +126,8 @@ def insert_keys(db: sqlite3.Connection, buffer: set[bytes], pairs: list[tuple[by
         return False
     db.execute("INSERT INTO seen (h, seq) SELECT h, seq FROM seen_new ORDER BY h")  # files before format 3
     db.execute("DELETE FROM seen_new")
-    keys, seqs = _buffered(db)
-    if keys:
-        joined = b"".join(keys)
+    joined, seqs = _runs(db)
+    if joined:
         # sorted as SQLite compares blobs (bytes, most significant first): one pass over the B-tree
         halves = np.frombuffer(joined, dtype=">u8").reshape(-1, 2)
         order = np.lexsort((halves[:, 1], halves[:, 0]))
