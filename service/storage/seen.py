@@ -15,10 +15,10 @@ Two levels keep the writes small. New keys are appended to ``seen_runs``, a tabl
 order without an index (a commit writes only its tail pages), and mirrored in memory for lookups:
 one row per *run*, the keys of consecutive journal positions joined into one blob (``keys``, 16
 bytes each) with the position of the first (``seq``). An item's new events are numbered in a row,
-so a commit of a 500-event body writes one row of 8 KB instead of 500 rows (about 1 us of CPU per
-key less, measured with ``benchmarks/ingest_cpu.py``). When the buffer holds :data:`BUFFER_KEYS`
-keys, the commit that filled it moves them into ``seen``, the indexed table (``h`` is its primary
-key), in one sorted pass. Inserting random 128-bit keys one commit at a time into a large B-tree
+so a commit of a 500-event body writes one row of 8 KB instead of 500 rows (about 1 us of CPU
+per key less in the commit, measured at 500 keys per commit; ``benchmarks/README.md``). When the
+buffer holds :data:`BUFFER_KEYS` keys, the commit that filled it moves them into ``seen``, the
+indexed table (``h`` is its primary key), in one sorted pass. Inserting random 128-bit keys one commit at a time into a large B-tree
 instead dirties about one page (4 KiB) per new id in every commit once the index outgrows the
 commit (measured in ``benchmarks/dedup.py``); the buffer turns that into one pass over the touched
 pages per :data:`BUFFER_KEYS` ids.
