@@ -40,7 +40,8 @@ _TICK = os.sysconf("SC_CLK_TCK")
 
 def _service_bench(root: Path):
     """``benchmarks/service.py`` of a checkout, loaded by path (its name shadows the package)."""
-    spec = importlib.util.spec_from_file_location(f"service_bench_{abs(hash(root))}", root / "benchmarks" / "service.py")
+    name = f"service_bench_{abs(hash(root))}"
+    spec = importlib.util.spec_from_file_location(name, root / "benchmarks" / "service.py")
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod

@@ -18,10 +18,10 @@ bytes each) with the position of the first (``seq``). An item's new events are n
 so a commit of a 500-event body writes one row of 8 KB instead of 500 rows (about 1 us of CPU
 per key less in the commit, measured at 500 keys per commit; ``benchmarks/README.md``). When the
 buffer holds :data:`BUFFER_KEYS` keys, the commit that filled it moves them into ``seen``, the
-indexed table (``h`` is its primary key), in one sorted pass. Inserting random 128-bit keys one commit at a time into a large B-tree
-instead dirties about one page (4 KiB) per new id in every commit once the index outgrows the
-commit (measured in ``benchmarks/dedup.py``); the buffer turns that into one pass over the touched
-pages per :data:`BUFFER_KEYS` ids.
+indexed table (``h`` is its primary key), in one sorted pass. Inserting random 128-bit keys one
+commit at a time into a large B-tree instead dirties about one page (4 KiB) per new id in every
+commit once the index outgrows the commit (measured in ``benchmarks/dedup.py``); the buffer turns
+that into one pass over the touched pages per :data:`BUFFER_KEYS` ids.
 
 Files of journal format 1 and 2 buffered keys one row each in ``seen_new (h, seq)``; such rows
 are still read (they belong to the buffer) and move into ``seen`` with the runs. The first run
@@ -92,8 +92,9 @@ def buffered_count(db: sqlite3.Connection) -> int:
 
 def last_position(db: sqlite3.Connection) -> int:
     """The highest journal position the index holds a key for (0 when it holds none)."""
-    return db.execute("SELECT max(coalesce((SELECT max(seq) FROM seen), 0), coalesce((SELECT max(seq) FROM seen_new), 0),"
-                      " coalesce((SELECT max(seq + length(keys) / 16 - 1) FROM seen_runs), 0))").fetchone()[0]
+    return db.execute("SELECT max(coalesce((SELECT max(seq) FROM seen), 0), "
+                      "coalesce((SELECT max(seq) FROM seen_new), 0), "
+                      "coalesce((SELECT max(seq + length(keys) / 16 - 1) FROM seen_runs), 0))").fetchone()[0]
 
 
 def index_pairs(db: sqlite3.Connection) -> list[tuple[bytes, int]]:

@@ -163,7 +163,8 @@ def test_a_format_2_file_with_keys_buffered_one_row_each_opens_and_moves_on(tmp_
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     old = [id_key(f"old{k}") for k in range(5)]
     db.executescript("DROP TABLE seen_runs; UPDATE meta SET value = '2' WHERE key = 'journal_format';")
-    db.executemany("INSERT INTO journal VALUES (?, ?, 0, ?)", [(k + 1, f"old{k}", payload(f"old{k}", k)) for k in range(5)])
+    db.executemany("INSERT INTO journal VALUES (?, ?, 0, ?)",
+                   [(k + 1, f"old{k}", payload(f"old{k}", k)) for k in range(5)])
     db.executemany("INSERT INTO seen_new VALUES (?, ?)", [(h, k + 1) for k, h in enumerate(old)])
     db.commit()
     db.close()
@@ -189,7 +190,8 @@ def test_a_format_2_file_with_keys_buffered_one_row_each_opens_and_moves_on(tmp_
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT (SELECT count(*) FROM seen_new) + (SELECT count(*) FROM seen_runs)").fetchone()[0] == 0
-    assert db.execute("SELECT h, seq FROM seen ORDER BY seq").fetchall() == [(h, k + 1) for k, h in enumerate(old + new + more)]
+    everything = old + new + more
+    assert db.execute("SELECT h, seq FROM seen ORDER BY seq").fetchall() == [(h, k + 1) for k, h in enumerate(everything)]
     # sorted as SQLite orders the primary key (memcmp of the bytes)
     assert [r[0] for r in db.execute("SELECT h FROM seen")] == sorted(old + new + more)
     db.close()
