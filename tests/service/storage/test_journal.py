@@ -191,7 +191,8 @@ def test_a_format_2_file_with_keys_buffered_one_row_each_opens_and_moves_on(tmp_
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT (SELECT count(*) FROM seen_new) + (SELECT count(*) FROM seen_runs)").fetchone()[0] == 0
     everything = old + new + more
-    assert db.execute("SELECT h, seq FROM seen ORDER BY seq").fetchall() == [(h, k + 1) for k, h in enumerate(everything)]
+    want = [(h, k + 1) for k, h in enumerate(everything)]
+    assert db.execute("SELECT h, seq FROM seen ORDER BY seq").fetchall() == want
     # sorted as SQLite orders the primary key (memcmp of the bytes)
     assert [r[0] for r in db.execute("SELECT h FROM seen")] == sorted(old + new + more)
     db.close()

@@ -98,3 +98,34 @@ def test_an_empty_item_and_an_operator_action():
     dups, pairs = number_events([], set(), 5)
     r.numbered(5, 0, dups)
     assert (dups, pairs, r.accepted, r.seq_range(), r.kept(), r.duplicates()) == ([], [], 0, None, None, [])
+
+
+def test_the_index_holds_each_new_key_at_the_position_the_rule_gives(tmp_path):
+    """Items numbered as the committer does, committed to a real journal: every key ever accepted is
+    in the index once, at its position by the per-event rule; id-less events and duplicates leave
+    gaps, and the buffer holds one run per commit and stretch of consecutive positions."""
+    from service.storage.journal import Journal
+    from service.storage.seen import index_pairs
+
+    rng = random.Random(7)
+    pool = [id_key(f"van-{k}") for k in range(400)]
+    j = Journal(tmp_path, sync="normal")
+    known_ref: set = set()
+    expect: dict = {}
+    seq = 1
+    for _ in range(12):
+        keys = [None if rng.random() < 0.1 else rng.choice(pool) for _ in range(rng.randrange(1, 120))]
+        want = reference(keys, known_ref, seq)
+        expect.update({key: s for key, s in zip(keys, want) if s is not None and key is not None})
+        dups, pairs = number_events(keys, j.known(list({k for k in keys if k is not None})), seq)
+        count = len(keys) - len(dups)
+        if count:
+            j.append([(seq, [None] * count, [b"{}"] * count)], pairs)
+        seq += count
+    assert dict(index_pairs(j._db)) == expect and len(index_pairs(j._db)) == len(expect)
+    runs = j._db.execute("SELECT seq, length(keys) / 16 FROM seen_runs ORDER BY rowid").fetchall()
+    positions = [s + k for s, n in runs for k in range(n)]
+    assert positions == sorted(expect.values())  # the runs cover exactly the keyed positions, in order
+    gaps = sum(1 for a, b in zip(positions, positions[1:]) if b != a + 1)
+    assert len(runs) <= 12 + gaps  # a run per commit and stretch of consecutive positions, no more
+    j.close()
