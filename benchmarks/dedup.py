@@ -72,7 +72,7 @@ def time_commits(j: Journal, tag: str, size: int, repeats: int, index: bool, fir
         if index:
             keys = [seen.id_key(i) for i in ids]
             known = j.known(keys)
-            seqs, pairs = seen.number_events(keys, known, first_seq)
+            _, pairs = seen.number_events(keys, known, first_seq)
         else:
             pairs = []
         j.append([(first_seq, ids, pays)], pairs)

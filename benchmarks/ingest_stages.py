@@ -86,7 +86,7 @@ def main() -> int:
         seq = 1
         for events, payloads, _, _ in parsed:
             keys = [id_key(e.id) for e in events]
-            seqs, pairs = number_events(keys, journal.known(keys), seq)
+            _, pairs = number_events(keys, journal.known(keys), seq)
             journal.append([(seq, [e.id for e in events], payloads)], pairs)
             seq += len(events)
         spent["commit"].append(cpu() - t)
@@ -109,7 +109,7 @@ def main() -> int:
         t = cpu()
         seq = 1
         for body in bodies:
-            seqs, pairs = number_events(body.keys, journal.known(body.keys), seq)
+            _, pairs = number_events(body.keys, journal.known(body.keys), seq)
             journal.append([(seq + len(body) - 1, None, LINES, body.lines())], pairs)
             seq += len(body)
         spent["body_commit"].append(cpu() - t)

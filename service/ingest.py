@@ -193,25 +193,23 @@ class Ingestor:
         A parsed body becomes one row of its new events' lines (kind ``LINES``, ``seq`` its last
         position); other items one row per event."""
         keys = [it.keys() for it in items]
-        known = self.journal.known(list({k for ks in keys for k in ks if k is not None}))
+        wanted = set().union(*keys)
+        wanted.discard(None)
+        known = self.journal.known(list(wanted))
         parts, pairs, seq = [], [], self._next_seq
         for it, ks in zip(items, keys):
-            seqs, new = number_events(ks, known, seq)
-            it.receipt.seqs = seqs
-            keep = None if len(new) == len(ks) else [k for k, s in enumerate(seqs) if s is not None]
-            if it.body is not None:
-                count = len(ks) if keep is None else len(keep)
-                if count:
-                    parts.append((seq + count - 1, None, LINES, it.body.lines(keep)))
-                    seq += count
-            else:
-                if keep is None:  # the common case: every event has an id and is new (keeps them all)
-                    ids, payloads = [e.id for e in it.events], it.payloads
-                else:
-                    ids, payloads = [it.events[k].id for k in keep], [it.payloads[k] for k in keep]
-                if payloads:
-                    parts.append((seq, ids, payloads))
-                    seq += len(payloads)
+            dups, new = number_events(ks, known, seq)
+            it.receipt.numbered(seq, len(ks), dups)
+            keep = it.receipt.kept()  # None: every event is new (the common case)
+            count = len(ks) - len(dups)
+            if count and it.body is not None:
+                parts.append((seq + count - 1, None, LINES, it.body.lines(keep)))
+            elif count:
+                events, payloads = it.events, it.payloads
+                if keep is not None:
+                    events, payloads = [events[k] for k in keep], [payloads[k] for k in keep]
+                parts.append((seq, [e.id for e in events], payloads))
+            seq += count
             pairs += new
             if it.note is not None or (it.action and it.action[0] == "rollback"):
                 kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
@@ -279,14 +277,11 @@ class Ingestor:
     def _apply_sync(self, it: Item) -> None:
         """Learner thread: one item's new events, then its rejection note or rollback."""
         r = it.receipt
-        if it.body is not None:
-            if r.accepted:
-                keep = None if r.accepted == len(r.seqs) else [k for k, s in enumerate(r.seqs) if s is not None]
-                self.apply_prepared(it.body.kept(keep))
-        else:
-            new = [e for e, s in zip(it.events, r.seqs) if s is not None]
-            if new:
-                self.apply_events(new)
+        keep = r.kept()  # None: every event is new
+        if r.accepted and it.body is not None:
+            self.apply_prepared(it.body.kept(keep))
+        elif r.accepted:
+            self.apply_events(it.events if keep is None else [it.events[k] for k in keep])
         if it.note is not None:
             with self.lock:
                 self.engine.note_rejected(*it.note)

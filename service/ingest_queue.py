@@ -40,26 +40,44 @@ def background_thread() -> None:
 
 
 class Receipt:
-    """What happened to an item: journal positions of its new events (``None`` for duplicates)."""
+    """What happened to an item's events: which were duplicates, and the journal positions of the others.
 
-    __slots__ = ("seqs", "extra_seq", "applied_seq", "checkpoint")
+    The new events of an item get consecutive positions from :attr:`first_seq` in order, so the
+    receipt keeps only that position, the item's size and the positions of its duplicates (usually
+    none): what a request is answered costs the same whatever its size.
+    """
+
+    __slots__ = ("first_seq", "size", "dups", "extra_seq", "applied_seq", "checkpoint")
 
     def __init__(self) -> None:
-        self.seqs: list = []
+        self.first_seq = 0
+        self.size = 0
+        self.dups: list[int] = []  # positions in the item of its duplicates, ascending
         self.extra_seq: int | None = None
         self.applied_seq = 0
         self.checkpoint = None
 
+    def numbered(self, first_seq: int, size: int, dups: list[int]) -> None:
+        """Record the item's numbering (:func:`service.storage.seen.number_events`)."""
+        self.first_seq, self.size, self.dups = first_seq, size, dups
+
     @property
     def accepted(self) -> int:
-        return sum(1 for s in self.seqs if s is not None)
+        return self.size - len(self.dups)
 
     def duplicates(self) -> list[int]:
-        return [k for k, s in enumerate(self.seqs) if s is None]
+        return list(self.dups)
+
+    def kept(self) -> list[int] | None:
+        """Positions in the item of its new events; ``None`` when every event is new."""
+        if not self.dups:
+            return None
+        dups = set(self.dups)
+        return [k for k in range(self.size) if k not in dups]
 
     def seq_range(self) -> list[int] | None:
-        got = [s for s in self.seqs if s is not None]
-        return [got[0], got[-1]] if got else None
+        n = self.accepted
+        return [self.first_seq, self.first_seq + n - 1] if n else None
 
 
 class Item:

@@ -10,7 +10,8 @@ Tables:
   each followed by a newline; ``id`` null): the row stands for as many consecutive positions as it
   has lines and ``seq`` is the *last* of them (:func:`first_position`). Replaying the rows in
   ``seq`` order through :meth:`Engine.apply` rebuilds the engine bit for bit.
-* ``seen(h, seq)``: the deduplication index over the whole history (:mod:`service.storage.seen`);
+* ``seen(h, seq)``, ``seen_runs(seq, keys)`` (and ``seen_new(h, seq)`` in files of format 1 and
+  2): the deduplication index over the whole history and its buffer (:mod:`service.storage.seen`);
   never pruned. A Bloom filter of its keys (:mod:`service.storage.keyfilter`), built at open and
   kept up to date by every commit, lets most new ids skip the index lookup.
 * ``checkpoints(id, seq, created, digest, state_digest, blob)``: ``blob`` is a checkpoint in the
@@ -23,9 +24,11 @@ Tables:
   ``journal_format``).
 
 Format versions (``meta.journal_format``): 1 (the key absent) has event, note and rollback rows
-only; 2 adds the rows of lines (kind 3). A file is marked 2 when it is created or when its first
-row of lines is written, so a format-1 file stays readable by the versions before until then; a
-file of a format above :data:`JOURNAL_FORMAT` is refused at open with a message saying so.
+only; 2 adds the rows of lines (kind 3); 3 buffers new id keys as runs in ``seen_runs`` instead of
+one row each in ``seen_new`` (:mod:`service.storage.seen`; rows left in ``seen_new`` are still
+read). A file is marked 3 when it is created or when its first row of lines or first id key is
+written, so a file of format 1 or 2 stays readable by the versions before until then; a file of a
+format above :data:`JOURNAL_FORMAT` is refused at open with a message saying so.
 
 Durability: with ``synchronous=FULL`` (the default, ``service.journal_sync``) SQLite fsyncs the WAL
 on every commit, so an event acknowledged after :meth:`Journal.append` returns survives a process
@@ -51,6 +54,7 @@ import sqlite3
 import threading
 import time
 from contextlib import suppress
+from operator import itemgetter
 from pathlib import Path
 
 import numpy as np
@@ -69,7 +73,7 @@ __all__ = ["EVENT", "JOURNAL_FORMAT", "LINES", "NOTE", "ROLLBACK", "Checkpoint",
 
 EVENT, NOTE, ROLLBACK, LINES = 0, 1, 2, 3
 #: the journal format this version writes and the newest it reads (see the module docstring)
-JOURNAL_FORMAT = 2
+JOURNAL_FORMAT = 3
 FILE_NAME = "trimtab.sqlite"
 
 _SCHEMA = """
@@ -208,12 +212,12 @@ class Journal:
     def _key_filter(self) -> KeyFilter:
         """A Bloom filter of every key in the index (``seen`` and ``seen_new``), sized at open for twice
         as many (it keeps that size while the file is open; see :mod:`service.storage.keyfilter`)."""
-        n = self._db.execute("SELECT (SELECT count(*) FROM seen) + (SELECT count(*) FROM seen_new)").fetchone()[0]
+        n = self._db.execute("SELECT count(*) FROM seen").fetchone()[0] + len(self._buffer)
         keys = KeyFilter.sized_for(n)
-        for table in ("seen", "seen_new"):
-            cur = self._db.execute(f"SELECT h FROM {table}")  # noqa: S608 (a fixed table name)
-            while rows := cur.fetchmany(65_536):
-                keys.add([r[0] for r in rows])
+        cur = self._db.execute("SELECT h FROM seen")
+        while rows := cur.fetchmany(65_536):
+            keys.add([r[0] for r in rows])
+        keys.add(list(self._buffer))
         return keys
 
     def _index_retained_ids(self) -> None:
@@ -221,6 +225,8 @@ class Journal:
         rows = self._db.execute("SELECT seq, id FROM journal WHERE kind = 0 AND id IS NOT NULL").fetchall()
         if rows:
             self._db.execute("BEGIN IMMEDIATE")
+            self._db.execute("INSERT OR REPLACE INTO meta VALUES ('journal_format', ?)", (str(JOURNAL_FORMAT),))
+            self._format = JOURNAL_FORMAT
             if seen.insert_keys(self._db, self._buffer, [(seen.id_key(i), s) for s, i in rows]):
                 self._buffer = set()
             else:
@@ -301,10 +307,9 @@ class Journal:
         with self._lock:
             row = self._db.execute("SELECT max(seq) FROM journal").fetchone()
             cps = self._db.execute("SELECT max(seq) FROM checkpoints").fetchone()
-            ids = self._db.execute("SELECT max(seq) FROM seen_new").fetchone()
-            ids = max(ids, self._db.execute("SELECT max(seq) FROM seen").fetchone(), key=lambda r: r[0] or 0)
+            ids = seen.last_position(self._db)
             pruned = self._db.execute("SELECT value FROM meta WHERE key = 'pruned_to'").fetchone()
-        return max(row[0] or 0, cps[0] or 0, ids[0] or 0, int(pruned[0]) if pruned else 0)
+        return max(row[0] or 0, cps[0] or 0, ids, int(pruned[0]) if pruned else 0)
 
     # ---------------------------------------------------------------- the journal
     def append(self, parts: list[tuple], keys: list[tuple[bytes, int]] = ()) -> None:
@@ -312,12 +317,13 @@ class Journal:
 
         Each part is a row ``(seq, id, kind, payload)`` or a run of events ``(first_seq, ids, payloads)``
         numbered from ``first_seq``; ``keys`` are the ``(id key, seq)`` pairs of the new events. Ids
-        and payloads are bound as parameters, never parsed by SQLite. The first row of lines written
-        to a format-1 file marks it format 2 in the same transaction.
+        and payloads are bound as parameters, never parsed by SQLite. The first row of lines or id
+        key written to a file of an older format marks it :data:`JOURNAL_FORMAT` in the same
+        transaction.
         """
         if not parts:
             return
-        upgrade = self._format < JOURNAL_FORMAT and any(len(p) == 4 and p[2] == LINES for p in parts)
+        upgrade = self._format < JOURNAL_FORMAT and (bool(keys) or any(len(p) == 4 and p[2] == LINES for p in parts))
 
         def body(db):
             if upgrade:
@@ -336,11 +342,12 @@ class Journal:
         with self._lock:  # only once the keys are committed: the filter must never hold back a key
             if upgrade:
                 self._format = JOURNAL_FORMAT
+            added = list(map(itemgetter(0), keys))
             if moved:
                 self._buffer = set()
             else:
-                self._buffer.update(k for k, _ in keys)
-            self._filter.add([k for k, _ in keys])
+                self._buffer.update(added)
+            self._filter.add(added)
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """The rows with a position above ``seq``, in order, until they stand for ``limit`` positions

@@ -88,7 +88,13 @@ class KeyFilter:
         if not keys:
             return
         pos = self._positions(_halves(keys)).ravel()
-        np.bitwise_or.at(self._words, pos >> np.uint64(6), np.uint64(1) << (pos & np.uint64(63)))
+        words, bits = pos >> np.uint64(6), np.uint64(1) << (pos & np.uint64(63))
+        # a buffered OR (fast) keeps one write per word when a word repeats among ``words``; the
+        # bits such a repeat lost are set again unbuffered (``ufunc.at``, slow but rarely needed)
+        self._words[words] |= bits
+        lost = (self._words[words] & bits) != bits
+        if lost.any():
+            np.bitwise_or.at(self._words, words[lost], bits[lost])
         self.count += len(keys)
 
     def maybe(self, keys: list[bytes]) -> np.ndarray:

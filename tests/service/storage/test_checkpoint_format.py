@@ -84,3 +84,25 @@ def test_no_state_code_imports_pickle():
         names = {a.name for n in ast.walk(tree) if isinstance(n, (ast.Import, ast.ImportFrom)) for a in n.names}
         mods = {n.module for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)}
         assert "pickle" not in names | mods, rel
+
+
+def test_the_trace_section_is_the_plain_serialization_of_the_records_across_checkpoints():
+    """Trace records are serialized once and their JSON reused by later checkpoints; the section
+    must stay byte for byte what orjson gives for the whole list (the reference), including when
+    records leave a bounded trace and when a record holds a non-finite float."""
+    import orjson
+
+    from service.engine import _SECTIONS, _tagged
+
+    cfg = make_config("unused")
+    v = EventValidator(cfg)
+    events = [v.validate(e) for e in demo_events(3000)]
+    engine = Engine(cfg, trace_limit=5)  # records fall out of the trace as checks come
+    for lo in range(0, 3000, 400):
+        engine.apply_events(events[lo:lo + 400])
+        if lo == 1200:
+            engine.trace[-1]["step"] = float("nan")  # a fresh record changed before its first checkpoint
+        want = orjson.dumps([_tagged(r) for r in engine.trace], option=orjson.OPT_SERIALIZE_NUMPY)
+        for _ in range(2):  # a first and a cached serialization
+            assert read_sections(engine.to_bytes(position=lo), _SECTIONS, frozenset({"monitor"}))["trace"] == want
+    assert len(engine.trace) == 5 and len(engine._trace_json) == 5

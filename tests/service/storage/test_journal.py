@@ -48,12 +48,14 @@ def test_rows_and_runs_commit_in_order_with_exact_payloads(tmp_path):
     assert {r[3] for r in rows} == {"blob"}
     assert [r[4] for r in rows[:50]] == run  # byte for byte, floats included
     # the index holds the BLAKE2b-128 digest of each id (hashlib as the outside reference)
-    got = dict(db.execute("SELECT seq, h FROM seen UNION ALL SELECT seq, h FROM seen_new"))
+    got = {s: h for h, s in seen.index_pairs(db)}
     assert got[52] == hashlib.blake2b(b"b", digest_size=16).digest() and len(got) == 51
+    # the buffer holds one run per stretch of consecutive positions: 1-50, then 52
+    assert db.execute("SELECT seq, length(keys) FROM seen_runs ORDER BY rowid").fetchall() == [(1, 800), (52, 16)]
 
 
 def test_the_index_buffer_moves_into_the_indexed_table_and_both_answer(tmp_path, monkeypatch):
-    """Keys go to ``seen_new`` first and move to ``seen`` (primary key ``h``) once the buffer is full;
+    """Keys go to ``seen_runs`` first and move to ``seen`` (primary key ``h``) once the buffer is full;
     a lookup sees both, before and after a reopen; a failed transaction changes neither."""
     monkeypatch.setattr(seen, "BUFFER_KEYS", 10)
     j = Journal(tmp_path)
@@ -68,7 +70,8 @@ def test_the_index_buffer_moves_into_the_indexed_table_and_both_answer(tmp_path,
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT count(*) FROM seen").fetchone()[0] == 24
-    assert db.execute("SELECT seq FROM seen_new").fetchall() == [(25,)]
+    assert db.execute("SELECT seq, length(keys) FROM seen_runs").fetchall() == [(25, 16)]
+    assert sorted(seen.index_pairs(db), key=lambda p: p[1]) == [(k, n + 1) for n, k in enumerate(keys)]
     db.close()
     j = Journal(tmp_path)
     assert j.known(keys) == set(keys) and j.last_seq() == 25
@@ -142,7 +145,57 @@ def test_ids_are_compared_as_bytes_whatever_they_hold(tmp_path):
     j = Journal(tmp_path)
     keys = [id_key(i) for i in odd]
     assert len(set(keys)) == len(odd)
-    seqs, pairs = seen.number_events(keys + [id_key("a\x00b")], j.known(keys), 1)
-    assert seqs == list(range(1, len(odd) + 1)) + [None]  # the repeat in the same commit is the duplicate
+    dups, pairs = seen.number_events(keys + [id_key("a\x00b")], j.known(keys), 1)
+    assert dups == [len(odd)]  # the repeat in the same commit is the duplicate
+    assert [s for _, s in pairs] == list(range(1, len(odd) + 1))
     j.append([(1, odd, [payload(f"p{k}", k) for k in range(len(odd))])], pairs)
     assert j.known(keys + [id_key("a\x00d"), id_key("b")]) == set(keys)
+
+
+def test_a_format_2_file_with_keys_buffered_one_row_each_opens_and_moves_on(tmp_path, monkeypatch):
+    """The upgrade path of the index buffer: a file of format 2 holds its newest keys one row each in
+    ``seen_new`` and has no ``seen_runs``. Opened by this version, those keys are known (lookups, the
+    Bloom filter, the last position); its first new key marks it format 3 and goes into a run; the
+    move into ``seen`` takes the rows of both tables; a reopen answers the same."""
+    monkeypatch.setattr(seen, "BUFFER_KEYS", 12)
+    j = Journal(tmp_path)
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    old = [id_key(f"old{k}") for k in range(5)]
+    db.executescript("DROP TABLE seen_runs; UPDATE meta SET value = '2' WHERE key = 'journal_format';")
+    db.executemany("INSERT INTO journal VALUES (?, ?, 0, ?)",
+                   [(k + 1, f"old{k}", payload(f"old{k}", k)) for k in range(5)])
+    db.executemany("INSERT INTO seen_new VALUES (?, ?)", [(h, k + 1) for k, h in enumerate(old)])
+    db.commit()
+    db.close()
+
+    j = Journal(tmp_path)
+    assert j.format == 2 and j.last_seq() == 5
+    assert j.known(old + [id_key("new0")]) == set(old)
+    assert all(j._filter.maybe(old))  # the filter was built with the old buffer's keys
+    new = [id_key(f"new{k}") for k in range(4)]
+    j.append([(6, [f"new{k}" for k in range(4)], [payload(f"new{k}", k) for k in range(4)])],
+             [(h, k + 6) for k, h in enumerate(new)])
+    assert j.format == 3 and j.known(old + new) == set(old + new)
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "3"
+    assert db.execute("SELECT count(*) FROM seen_new").fetchone()[0] == 5  # still buffered: 9 keys < 12
+    db.close()
+
+    j = Journal(tmp_path)
+    more = [id_key(f"more{k}") for k in range(3)]
+    j.append([(10, [f"more{k}" for k in range(3)], [payload(f"more{k}", k) for k in range(3)])],
+             [(h, k + 10) for k, h in enumerate(more)])  # 12 keys: the buffer moves into seen
+    j.close()
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    assert db.execute("SELECT (SELECT count(*) FROM seen_new) + (SELECT count(*) FROM seen_runs)").fetchone()[0] == 0
+    everything = old + new + more
+    want = [(h, k + 1) for k, h in enumerate(everything)]
+    assert db.execute("SELECT h, seq FROM seen ORDER BY seq").fetchall() == want
+    # sorted as SQLite orders the primary key (memcmp of the bytes)
+    assert [r[0] for r in db.execute("SELECT h FROM seen")] == sorted(old + new + more)
+    db.close()
+    j = Journal(tmp_path)
+    assert j.known(old + new + more + [id_key("never")]) == set(old + new + more) and j.last_seq() == 12
+    j.close()

@@ -101,9 +101,9 @@ async def test_a_body_of_only_bad_lines_changes_nothing(aiohttp_client, tmp_path
     assert db.execute("SELECT kind FROM journal").fetchall() == [(1,)]  # only the note of the rejection
 
 
-def test_format_1_files_are_read_and_marked_2_at_their_first_row_of_lines(tmp_path):
+def test_format_1_files_are_read_and_marked_3_at_their_first_row_of_lines(tmp_path):
     j = Journal(tmp_path)
-    assert j.format == JOURNAL_FORMAT
+    assert j.format == JOURNAL_FORMAT == 3
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     db.execute("DELETE FROM meta WHERE key = 'journal_format'")  # as a file of the versions before
@@ -113,22 +113,22 @@ def test_format_1_files_are_read_and_marked_2_at_their_first_row_of_lines(tmp_pa
     j = Journal(tmp_path)
     assert j.format == 1
     ev = orjson.dumps(("a", None, {"ambient_c": 1.0}, 2.0))
-    j.append([(1, ["a"], [ev])], [(id_key("a"), 1)])
-    assert j.format == 1  # event rows keep the file readable by the versions before
+    j.append([(1, [None], [ev])])
+    assert j.format == 1  # event rows without an id key keep the file readable by the versions before
     body = b'{"id":"b","features":{}}\n{"id":"c","features":{}}\n'
     j.append([(3, None, LINES, body)], [(id_key("b"), 2), (id_key("c"), 3)])
-    assert j.format == 2
+    assert j.format == 3
     rows = j.rows_after(0)
     assert [(r[0], r[2], first_position(r)) for r in rows] == [(1, EVENT, 1), (3, LINES, 2)]
     assert [r[0] for r in j.rows_after(1, limit=1)] == [3]  # a row counts its lines as positions
     assert j.last_seq() == 3
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
-    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "2"
-    db.execute("UPDATE meta SET value = '3' WHERE key = 'journal_format'")
+    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "3"
+    db.execute("UPDATE meta SET value = '4' WHERE key = 'journal_format'")
     db.commit()
     db.close()
-    with pytest.raises(StorageUnavailable, match="format 3, written by a newer trimtab"):
+    with pytest.raises(StorageUnavailable, match="format 4, written by a newer trimtab"):
         Journal(tmp_path)
     Journal(tmp_path / "other").close()  # the refusal let go of the data-dir lock of the first
 
