@@ -36,6 +36,7 @@ from service.baseline import Baseline
 from service.events import Event, EventValidator
 from service.idhash import HOLDOUT_PREFIX
 from service.monitor.monitor import Monitor
+from service.state_json import TraceJson, exact, unexact, untagged
 from service.storage.checkpoint import CheckpointFormatError, read_sections, write_sections
 
 if TYPE_CHECKING:
@@ -123,8 +124,7 @@ class Engine:
         window = config.monitor.window if self._share > 0.0 else 0
         self.baseline = Baseline(config.model.loss, window, huber_delta=config.model.huber_delta)
         self.trace: deque = deque(maxlen=trace_limit)
-        #: id -> (record, its JSON) of the trace records serialized by the last :meth:`to_bytes`
-        self._trace_json: dict[int, tuple[dict, bytes]] = {}
+        self._trace_json = TraceJson()  # each trace record serialized once, for every checkpoint
 
     # ---------------------------------------------------------------- serving
     @property
@@ -343,33 +343,15 @@ class Engine:
             "meta": orjson.dumps({"state": "engine", "position": position, "counters": list(STATE_COUNTERS),
                                   "monitor": self.monitor is not None}),
             "model": self.model.to_bytes(),
-            "counters": orjson.dumps({k: _exact(getattr(self, k)) for k in STATE_COUNTERS}),
-            "baseline": orjson.dumps({k: [_exact(x) for x in v] if isinstance(v, list) else _exact(v)
+            "counters": orjson.dumps({k: exact(getattr(self, k)) for k in STATE_COUNTERS}),
+            "baseline": orjson.dumps({k: [exact(x) for x in v] if isinstance(v, list) else exact(v)
                                       for k, v in self.baseline.state().items()}),
-            "trace": self._trace_bytes(),
+            "trace": self._trace_json(self.trace),
             "metrics": orjson.dumps({"binary": _tally_state(self._tally)}),
         }
         if self.monitor is not None:
             sections["monitor"] = self.monitor.to_bytes()
         return write_sections(sections)
-
-    def _trace_bytes(self) -> bytes:
-        """The trace as one JSON array, the bytes of ``orjson.dumps([_tagged(r) for r in trace])``.
-
-        A record is complete once the :meth:`apply` that made it returns and never changes after,
-        so each is serialized once and its JSON kept while it stays in the trace: a checkpoint of a
-        full trace (10,000 records) costs a lookup per record instead of tagging and serializing
-        each again (about 30 ms of the learner's CPU per checkpoint, measured).
-        """
-        kept, parts = {}, []
-        for r in self.trace:
-            hit = self._trace_json.get(id(r))
-            data = hit[1] if hit is not None and hit[0] is r else orjson.dumps(
-                _tagged(r), option=orjson.OPT_SERIALIZE_NUMPY)
-            kept[id(r)] = (r, data)
-            parts.append(data)
-        self._trace_json = kept
-        return b"[" + b",".join(parts) + b"]"
 
     @classmethod
     def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:
@@ -388,15 +370,15 @@ class Engine:
         if engine.monitor is not None:
             engine.monitor.load_bytes(parts["monitor"])
         for k, v in counters.items():
-            setattr(engine, k, _unexact(v))
-        engine.baseline.load_state({k: [_unexact(x) for x in v] if isinstance(v, list) else _unexact(v)
+            setattr(engine, k, unexact(v))
+        engine.baseline.load_state({k: [unexact(x) for x in v] if isinstance(v, list) else unexact(v)
                                     for k, v in orjson.loads(parts["baseline"]).items()})
-        engine.trace.extend(_untagged(r) for r in orjson.loads(parts["trace"]))
+        engine.trace.extend(untagged(r) for r in orjson.loads(parts["trace"]))
         binary = orjson.loads(parts["metrics"])["binary"]
         if (binary is None) != (engine._tally is None):
             raise CheckpointFormatError("checkpoint and config disagree on whether the task is binary")
         if binary is not None:
-            engine._tally.load_state({k: _unexact(v) for k, v in binary.items()})
+            engine._tally.load_state({k: unexact(v) for k, v in binary.items()})
         return engine
 
     @staticmethod
@@ -423,34 +405,4 @@ _SECTIONS = frozenset({"meta", "model", "counters", "baseline", "trace", "metric
 
 
 def _tally_state(tally: RunningBinaryMetrics | None) -> dict | None:
-    return None if tally is None else {k: _exact(v) for k, v in tally.state().items()}
-
-
-def _exact(value):
-    """A counter for JSON: floats as C99 hex text (exact, and defined for inf and nan), ints as they are."""
-    return {"float": float(value).hex()} if isinstance(value, float) else value
-
-
-def _unexact(value):
-    return float.fromhex(value["float"]) if isinstance(value, dict) else value
-
-
-def _tagged(value):
-    """A trace record for JSON: non-finite floats (which JSON lacks) become ``{"float": "nan"}``."""
-    if isinstance(value, dict):
-        return {k: _tagged(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_tagged(v) for v in value]
-    if isinstance(value, float) and not math.isfinite(value):
-        return {"float": repr(float(value))}
-    return value
-
-
-def _untagged(value):
-    if isinstance(value, dict):
-        if len(value) == 1 and "float" in value:
-            return float(value["float"])
-        return {k: _untagged(v) for k, v in value.items()}
-    if isinstance(value, list):
-        return [_untagged(v) for v in value]
-    return value
+    return None if tally is None else {k: exact(v) for k, v in tally.state().items()}

@@ -33,19 +33,21 @@ _R16, _R24, _R32, _R40, _R48, _R63, _L1 = (np.uint64(k) for k in (16, 24, 32, 40
 # inlined where it is called, with variables (never constants) as arguments: one compiled body
 @numba.njit(cache=True, nogil=True, inline="always")
 def _mix(va, vb, vc, vd, x, y):
-    """The mixing function G (RFC 7693, sec. 3.1) of the words ``va``..``vd`` with message words ``x``, ``y``."""
+    """The mixing function G (RFC 7693, sec. 3.1) of the words ``va``..``vd`` with message words ``x``, ``y``:
+    two half-steps, rotating by 32 and 24 bits, then by 16 and 63."""
+    va, vb, vc, vd = _half_mix(va, vb, vc, vd, x, _R32, _R32, _R24, _R40)
+    return _half_mix(va, vb, vc, vd, y, _R16, _R48, _R63, _L1)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _half_mix(va, vb, vc, vd, x, rd, ld, rb, lb):
+    """Half of G: ``vd`` rotated right by ``rd`` (``ld = 64 - rd``), ``vb`` by ``rb`` (``lb = 64 - rb``)."""
     va = va + vb + x
     vd ^= va
-    vd = (vd >> _R32) | (vd << _R32)
+    vd = (vd >> rd) | (vd << ld)
     vc = vc + vd
     vb ^= vc
-    vb = (vb >> _R24) | (vb << _R40)
-    va = va + vb + y
-    vd ^= va
-    vd = (vd >> _R16) | (vd << _R48)
-    vc = vc + vd
-    vb ^= vc
-    vb = (vb >> _R63) | (vb << _L1)
+    vb = (vb >> rb) | (vb << lb)
     return va, vb, vc, vd
 
 

@@ -108,11 +108,11 @@ def test_argument_of_another_type_goes_to_the_jit(built, monkeypatch):
     """``rehash`` was built for uint64 tables: an int64 table is handed to the JIT (which compiles it),
     and both paths place the keys where open addressing puts them (slot ``key & (size - 1)``)."""
     from models.native import KernelSet
+    from service.kernels import FEEDS
 
     monkeypatch.setenv("TRIMTAB_CACHE_DIR", str(built))
     monkeypatch.setenv("TRIMTAB_KERNELS", "prebuilt")
-    feeds = KernelSet("feeds", ("service.idhash_kernels", "service.feeds.ndjson_scan"),
-                      extra=("models.jit", "service.feeds.scan_codes"))
+    feeds = KernelSet("feeds", FEEDS._modules, extra=FEEDS._extra)  # a fresh set of the same modules
     assert feeds.is_native("rehash")
     old = np.array([0, 5, 0, 12], dtype=np.uint64)
     new = np.zeros(8, dtype=np.uint64)

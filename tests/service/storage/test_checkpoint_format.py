@@ -92,7 +92,8 @@ def test_the_trace_section_is_the_plain_serialization_of_the_records_across_chec
     records leave a bounded trace and when a record holds a non-finite float."""
     import orjson
 
-    from service.engine import _SECTIONS, _tagged
+    from service.engine import _SECTIONS
+    from service.state_json import tagged as _tagged
 
     cfg = make_config("unused")
     v = EventValidator(cfg)
