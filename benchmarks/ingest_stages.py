@@ -49,6 +49,26 @@ def _service_bench():
     return mod
 
 
+def _commit_all(journal_cls, cpu, items) -> float:
+    """CPU seconds (``cpu``) to number and journal ``items`` into a fresh journal (``sync = "full"``):
+    ``(keys, row_at, count)`` each, ``row_at(seq)`` the journal row of an item whose first position is
+    ``seq``. ``items`` may be a generator: the work it does per item is timed too."""
+    from service.storage.seen import number_events
+
+    folder = tempfile.mkdtemp()
+    journal = journal_cls(folder, sync="full")
+    t = cpu()
+    seq = 1
+    for keys, row_at, count in items:
+        _, pairs = number_events(keys, journal.known(keys), seq)
+        journal.append([row_at(seq)], pairs)
+        seq += count
+    took = cpu() - t
+    journal.close()
+    shutil.rmtree(folder)
+    return took
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--bodies", type=int, default=200)
@@ -59,7 +79,7 @@ def main() -> int:
     from service.http.handlers import _parse_ndjson
     from service.feeds.ndjson_body import BodyParser
     from service.storage.journal import LINES, Journal
-    from service.storage.seen import id_key, number_events
+    from service.storage.seen import id_key
 
     bench = _service_bench()
     cfg = load_config(bench.CONFIG)
@@ -80,18 +100,9 @@ def main() -> int:
         t = cpu()
         parsed = [_parse_ndjson(body, validator) for body in data]
         spent["parse"].append(cpu() - t)
-        folder = tempfile.mkdtemp()
-        journal = Journal(folder, sync="full")
-        t = cpu()
-        seq = 1
-        for events, payloads, _, _ in parsed:
-            keys = [id_key(e.id) for e in events]
-            _, pairs = number_events(keys, journal.known(keys), seq)
-            journal.append([(seq, [e.id for e in events], payloads)], pairs)
-            seq += len(events)
-        spent["commit"].append(cpu() - t)
-        journal.close()
-        shutil.rmtree(folder)
+        spent["commit"].append(_commit_all(Journal, cpu, (
+            ([id_key(e.id) for e in events], lambda seq, ev=events, pl=payloads: (seq, [e.id for e in ev], pl),
+             len(events)) for events, payloads, _, _ in parsed)))
         engine = Engine(cfg)
         t = cpu()
         batches = [engine.prepare(events) for events, *_ in parsed]
@@ -104,17 +115,9 @@ def main() -> int:
         t = cpu()
         bodies = [parser.parse(body) for body in data]
         spent["body_parse"].append(cpu() - t)
-        folder = tempfile.mkdtemp()
-        journal = Journal(folder, sync="full")
-        t = cpu()
-        seq = 1
-        for body in bodies:
-            _, pairs = number_events(body.keys, journal.known(body.keys), seq)
-            journal.append([(seq + len(body) - 1, None, LINES, body.lines())], pairs)
-            seq += len(body)
-        spent["body_commit"].append(cpu() - t)
-        journal.close()
-        shutil.rmtree(folder)
+        spent["body_commit"].append(_commit_all(Journal, cpu, (
+            (body.keys, lambda seq, b=body: (seq + len(b) - 1, None, LINES, b.lines()), len(body))
+            for body in bodies)))
         engine = Engine(cfg)
         t = cpu()
         for body in bodies:
