@@ -246,29 +246,34 @@ class Ingestor:
             await self._committed.put(items)
 
     # ---------------------------------------------------------------- stage 2: learning
-    def apply_events(self, events: list[Event]) -> None:
-        """Learner thread: apply events in order, one slice at a time under the engine lock."""
+    def apply_events(self, events: list[Event], *, view_last: bool = True) -> None:
+        """Learner thread: apply events in order, one slice at a time under the engine lock.
+        ``view_last=False``: the caller sets the view after the last slice (:meth:`_apply_sync`)."""
         engine, step = self.engine, self._slice
         for i in range(0, len(events), step):
-            self._apply_slice(engine.prepare(events[i:i + step]))  # prepare is pure: no lock needed
+            self._apply_slice(engine.prepare(events[i:i + step]),  # prepare is pure: no lock needed
+                              view=view_last or i + step < len(events))
 
-    def apply_prepared(self, prepared) -> None:
+    def apply_prepared(self, prepared, *, view_last: bool = True) -> None:
         """Learner thread: apply a prepared batch (:class:`service.feeds.columns.Prepared`) in order,
         one slice at a time under the engine lock; its categorical values join the values seen first,
-        as a replay remembers them."""
+        as a replay remembers them. ``view_last``: as in :meth:`apply_events`."""
         engine, step = self.engine, self._slice
         bucket = engine.model.mapper.bucket
         for name, text in prepared.categories:
             bucket(name, text)  # the values seen, for reporting: the mapping itself is fixed
         batch = prepared.batch
         for i in range(0, len(batch), step):
-            self._apply_slice(batch if len(batch) <= step else slice_batch(batch, i, i + step))
+            self._apply_slice(batch if len(batch) <= step else slice_batch(batch, i, i + step),
+                              view=view_last or i + step < len(batch))
 
-    def _apply_slice(self, batch: PreparedBatch) -> None:
+    def _apply_slice(self, batch: PreparedBatch, view: bool = True) -> None:
+        """Apply one slice under the lock and, with ``view``, serve and publish the state after it."""
         start = time.perf_counter()
         with self.lock:
             self.engine.apply(batch)
-            self.set_view()
+            if view:
+                self.set_view()
         took = time.perf_counter() - start
         self.metrics.apply_seconds.observe(took)
         if took > 0:
@@ -278,10 +283,11 @@ class Ingestor:
         """Learner thread: one item's new events, then its rejection note or rollback."""
         r = it.receipt
         keep = r.kept()  # None: every event is new
+        # the item's last slice is served and published once, below, with the item's position
         if r.accepted and it.body is not None:
-            self.apply_prepared(it.body.kept(keep))
+            self.apply_prepared(it.body.kept(keep), view_last=False)
         elif r.accepted:
-            self.apply_events(it.events if keep is None else [it.events[k] for k in keep])
+            self.apply_events(it.events if keep is None else [it.events[k] for k in keep], view_last=False)
         if it.note is not None:
             with self.lock:
                 self.engine.note_rejected(*it.note)

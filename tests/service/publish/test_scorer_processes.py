@@ -246,3 +246,28 @@ def test_compressed_bodies_pass_through_a_scorer_both_ways(tmp_path):
         assert health["model"] and health["version"]
     finally:
         assert server.stop() == 0
+
+
+def test_a_body_is_published_once_per_slice_and_its_last_with_its_position(tmp_path):
+    """A body of 250 events in slices of 100 is three publications (after each slice; the last one
+    names the body's position), not one more for the position alone; a scorer then serves it."""
+    cfg, server = start_serve(tmp_path, scorers=1, apply_slice=100)
+    try:
+        front, learner = Conn(server.url), Conn(unix=learner_socket(server))
+
+        def published() -> float:
+            text = learner.call("GET", "/metrics")[1]["text"]
+            return float(next(line.split()[1] for line in text.splitlines()
+                              if line.startswith("trimtab_published_version ")))
+
+        _ingest(front, demo_events(100, tag="w"))  # the first body after start-up
+        before = published()
+        got = _ingest(front, demo_events(250, tag="p"), batch=250)
+        assert published() - before == 3
+        answer = wait_for(lambda: (a := front.call("POST", "/v1/score", {"events": [{"features": PROBES[0]}]})[1])
+                          ["version"]["seq"] == got["applied_seq"] and a)
+        assert answer["version"]["seq"] == got["applied_seq"] == 350
+        front.close()
+        learner.close()
+    finally:
+        assert server.stop() == 0
