@@ -23,7 +23,7 @@ Prints ratios against baselines measured in the same run; the last line is one J
   ``publish_to_serve_ms`` (goal <= 20 ms) and peak RSS per process.
 
 Usage: ``python benchmarks/service.py [--seconds 5] [--part all|classic|scorers] [--repeat N]
-[--policies idle,normal]``: ``--seconds`` is the length of each score phase (a 5 s phase has
+[--policies idle,normal] [--producers 4]``: ``--seconds`` is the length of each score phase (a 5 s phase has
 5,000 scores, so its p99 is the 50th worst: 15 s is steadier); ``--repeat`` runs the phase under
 ingest N times per mode and reports the median p99 with its spread, and the scorer processes' CPU
 per score; ``--policies`` measures other ``service.learner_policy`` values beside the default.
@@ -553,11 +553,11 @@ def _spread(values: list[float]) -> dict:
             "runs": [round(x, 2) for x in values]}
 
 
-def _under_ingest(url: str, secs: float, tag: str, rss: PeakRSS) -> dict:
-    """One score phase of ``secs`` seconds at 1,000/s while a producer posts 500-event bodies as
-    fast as acknowledged; the server processes' CPU seconds meanwhile."""
+def _under_ingest(url: str, secs: float, tag: str, rss: PeakRSS, producers: int = 4) -> dict:
+    """One score phase of ``secs`` seconds at 1,000/s while a producer process posts 500-event bodies
+    as fast as acknowledged over ``producers`` connections; the server processes' CPU seconds meanwhile."""
     n_bodies = int(max(40, secs * 160 + 400))  # enough 500-event bodies for 80k events/s
-    bg = subprocess.Popen([sys.executable, __file__, "--load", "ingest", url, str(secs + 6), "4", tag,
+    bg = subprocess.Popen([sys.executable, __file__, "--load", "ingest", url, str(secs + 6), str(producers), tag,
                            str(n_bodies), "0", "500"], stdout=subprocess.PIPE, cwd=ROOT)
     time.sleep(4.0)  # the producer builds its bodies first (about 2 s here), then ingests
     cpu0 = rss.cpu()
@@ -569,14 +569,15 @@ def _under_ingest(url: str, secs: float, tag: str, rss: PeakRSS) -> dict:
     return busy
 
 
-def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = ()) -> dict:
+def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = (), producers: int = 4) -> dict:
     """``service.scorers = 0`` (one process) against the default (scorer processes), in one run:
     idle score p99, score p99 while producers ingest 500-event bodies as fast as acknowledged, the
     ingest rate meanwhile, the load generators' own CPU and GC pauses, publish-to-serve, peak RSS.
 
     ``repeat``: score phases under ingest per mode, each with a fresh producer (the figures under
     ingest are their medians, the spread is reported); ``policies``: ``service.learner_policy``
-    values measured as extra modes (``scorers_<policy>``) beside the default one, in the same run.
+    values measured as extra modes (``scorers_<policy>``) beside the default one, in the same run;
+    ``producers``: connections the producer keeps busy (each waits for its answer before the next body).
     """
     res: dict = {}
     modes = [("single", 0, None), ("scorers", "auto", None)] + [(f"scorers_{p}", "auto", p) for p in policies]
@@ -589,7 +590,7 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
                 run_load("ingest", url, "3", "2", f"w{mode}", "20", "0", "500")  # warm-up: compile, connect
                 run_load("rate", url, "1", "1000")
                 idle = run_load("rate", url, str(secs), "1000")
-                phases = [_under_ingest(url, secs, f"g{mode}{k}", rss) for k in range(repeat)]
+                phases = [_under_ingest(url, secs, f"g{mode}{k}", rss, producers) for k in range(repeat)]
                 pts = publish_to_serve(url) if scorers != 0 else None
                 auto = scorers != 0 and policy in (None, "auto")  # the default policy is "auto"
                 switches = _gauge(url, "trimtab_learner_policy_switches") if auto else None
@@ -613,7 +614,7 @@ def scorer_comparison(secs: float, repeat: int = 1, policies: tuple[str, ...] = 
             "score_client": {k: busy[k] for k in busy if k.startswith("client_") or k == "most_in_flight"},
             "ingest_client": {k: ing[k] for k in ing if k.startswith("client_")},
             "peak_rss_mb": peaks, "server_cpu_s_during_scores_under_ingest": busy["server_cpu_s"],
-            "score_seconds": secs}
+            "score_seconds": secs, "producer_connections": producers}
         if repeat > 1:
             r["repeats"] = {"score_p99_ms_under_ingest": _spread(p99s), "ingest_events_per_s": _spread(rates)}
         if scorers != 0:  # the scorer processes' CPU per score (forwarded producer bodies included)
@@ -658,6 +659,8 @@ def main() -> int:
     ap.add_argument("--policies", default="",
                     help="scorers part: comma-separated service.learner_policy values (batch, idle, normal) "
                          "measured as extra modes beside the default, in the same run")
+    ap.add_argument("--producers", type=int, default=4,
+                    help="scorers part: connections the producer posts 500-event bodies over (default 4)")
     ap.add_argument("--bare-server")
     ap.add_argument("--load", nargs="+")
     a = ap.parse_args()
@@ -686,7 +689,7 @@ def main() -> int:
     res: dict = {"machine": f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores",
                  "python": platform.python_version(), "load_average_at_start": os.getloadavg()[0]}
     if a.part == "scorers":
-        res["scorers"] = scorer_comparison(secs, a.repeat, tuple(p for p in a.policies.split(",") if p))
+        res["scorers"] = scorer_comparison(secs, a.repeat, tuple(p for p in a.policies.split(",") if p), a.producers)
         print(json.dumps(res))
         return 0
     bare, bare_url = start_bare()
@@ -746,7 +749,7 @@ def main() -> int:
                         "score_p99_ms_at_1000rps": res["score_p99_ms_at_1000rps"] <= 5.0,
                         "ingest_events_per_s": res["ingest_events_per_s"] >= 60_000}
     if a.part == "all":
-        res["scorers"] = scorer_comparison(secs, a.repeat, tuple(p for p in a.policies.split(",") if p))
+        res["scorers"] = scorer_comparison(secs, a.repeat, tuple(p for p in a.policies.split(",") if p), a.producers)
     print(json.dumps(res))
     return 0
 
