@@ -145,7 +145,8 @@ class Monitor:
             if rules.boundary_pinned(state, on, self.cfg):
                 self._incident("boundary", event, ts, self.warnings[0],
                                {"radius": self._radius, "norm_raw": model.raw_norm()})
-        state.checks = (state.checks + [int(event)])[-_KEPT_CHECKS:]
+        state.checks.append(int(event))
+        del state.checks[:-_KEPT_CHECKS]
         record["serving"] = self.serving
         return record
 
@@ -159,7 +160,7 @@ class Monitor:
             reason = rules.too_far_from_average(fig, limit)
             if reason is None:
                 patience = state.checks[-cfg.rollback_patience] if len(state.checks) >= cfg.rollback_patience else -1
-                reason = rules.raw_persistently_worse(fig, state, cfg, fig.after(patience))
+                reason = rules.raw_persistently_worse(fig, state, cfg, patience)
                 by_loss = reason is not None
         if reason is not None and not cfg.rollback:
             state.ignored += 1
