@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
+import pytest
+
 from models import LinearModel
 from service.monitor.window import HeldOutWindow
 
@@ -21,13 +23,14 @@ def _assert_same(kept, fresh):
             assert a == b, name  # sums, counts, the reference and the distance as exact floats
 
 
-def test_kept_scaled_values_give_the_figures_of_a_fresh_scaling():
+@pytest.mark.parametrize("kernel", ["lazy", "dense"])
+def test_kept_scaled_values_give_the_figures_of_a_fresh_scaling(kernel):
     """Through the warm-up (the scaling changes under rows already kept), moves of the buffers (a small
     window fills them many times), a drop of older rows (a restart) and a rollback, every check's
     figures with kept scaled values equal those computed from the raw values."""
     rng = np.random.default_rng(31)
     model = LinearModel(numeric=["ambient_c", "load_kg"], categorical=["route"], scaling="warmup",
-                        warmup_events=120, constraint="ball", radius=50.0)
+                        warmup_events=120, constraint="ball", radius=50.0, kernel=kernel)
     window = HeldOutWindow(40, numeric=2)
     event, checks, stale, reused, moves, buffer = 0, 0, 0, 0, 0, None
     for step in range(60):
