@@ -17,8 +17,9 @@ from service.monitor.detectors import ChangeDetector
 if TYPE_CHECKING:
     from service.config import MonitorConfig
 
-__all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "median", "non_finite_update",
-           "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average", "welch_pvalue"]
+__all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "median",
+           "non_finite_update", "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average",
+           "welch_pvalue"]
 
 #: fewest usable events a comparison is made on (a sign test at level 0.001 needs 10 of 10 above)
 MIN_EVENTS = 10
@@ -163,7 +164,7 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
 
 
 def median(a: np.ndarray) -> float:
-    """``np.median`` of a 1-d float array with at least one value, bit for bit, in a third of its time: the
+    """``np.median`` of a 1-d float array with at least one value, bit for bit, in under half its time: the
     same partition (the last place too, where a NaN would go), the mean of the middle one or two values,
     NaN when there is a NaN (``numpy/lib/_function_base_impl.py: _median``, without its generic set-up)."""
     size = len(a)
