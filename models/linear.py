@@ -157,16 +157,25 @@ class LinearModel:
         return out
 
     def score_window(self, rows: Rows, y: np.ndarray, n_ref: int, sample_max: int, absurd: float,
-                     new_from: int | None = None) -> WindowScores:
+                     new_from: int | None = None, scaled: tuple | None = None) -> WindowScores:
         """The held-out monitor's figures of ``rows`` (targets ``y``) in one compiled pass
         (``readouts.score_window``; its docstring defines them), for the rows from ``new_from`` on (none:
-        no row) whether each is above the reference, and the distance between the iterates."""
+        no row) whether each is above the reference, and the distance between the iterates.
+
+        ``scaled``: ``(buffer, done, scale)`` kept by the caller between calls on the same rows: a float
+        buffer as long as ``rows.values`` that holds, for the first ``done`` rows, their values as this
+        model scales them, and ``scale`` (``2 * len(numeric)`` floats) the means and standard deviations
+        they were scaled with. Rows scaled with other ones are scaled again; on return every row's scaled
+        values are in the buffer and ``scale`` holds this model's. The figures are the same with or
+        without it."""
         n = len(rows)
+        if scaled is None:
+            scaled = (np.empty(len(rows.values)), 0, np.empty(0))
         losses, usable = np.empty((2, n)), np.empty(n, dtype=np.bool_)
         above = np.empty(n - (n if new_from is None else new_from))
         reference, n_usable, raw_sum, avg_sum, n_above, distance = C.score_window(
             self._lazy, self._st, self._sc, self._prm, self._mean, self._std, rows.indptr, rows.indices,
-            rows.values, y, n_ref, sample_max, absurd, losses, usable, above)
+            rows.values, *scaled, y, n_ref, sample_max, absurd, losses, usable, above)
         return WindowScores(losses, usable, (raw_sum, avg_sum), n_usable, reference, above, n_above, distance)
 
     def predict_rows(self, rows: Rows, iterate: str = "averaged") -> np.ndarray:

@@ -13,7 +13,8 @@ import math
 
 import numpy as np
 
-from .kernels import P_DELTA, P_LOSS, S_A, S_ACC, S_B, S_SB, S_Z, _inline, _jit, _loss, _score_event
+from .kernels import (P_DELTA, P_LOSS, P_NNUM, S_A, S_ACC, S_B, S_SB, S_Z, _inline, _jit, _loss, _score_event,
+                      pair_margins)
 from .losses import OVERFLOW_LOSS
 
 __all__ = ["iterate_distance", "materialize", "score_rows_both", "score_window"]
@@ -148,9 +149,38 @@ def _numpy_row_sum(a, r):
     return 0.0 + sums[0]
 
 
+@_inline
+def _same_bits(a, b):
+    """Whether ``a`` and ``b`` are the same number, sign of zero included (NaN is never the same)."""
+    return a == b and math.copysign(1.0, a) == math.copysign(1.0, b)
+
+
+@_inline
+def _scale_rows(prm, mean, std, indptr, indices, values, scaled, n_scaled, scale):
+    """Write rows ``n_scaled..`` of ``values`` scaled as :func:`models.kernels._score_event` scales them
+    into ``scaled`` (the same positions), or every row when ``scale`` (the means, then the standard
+    deviations) does not hold ``mean`` and ``std`` bit for bit; then ``scale`` does."""
+    nnum = int(prm[P_NNUM])
+    n_scaled = min(max(n_scaled, 0), indptr.shape[0] - 1)
+    same = scale.shape[0] == 2 * nnum
+    for j in range(nnum if same else 0):
+        same = same and _same_bits(scale[j], mean[j]) and _same_bits(scale[nnum + j], std[j])
+    if not same:
+        n_scaled = 0
+        if scale.shape[0] == 2 * nnum:
+            for j in range(nnum):
+                scale[j], scale[nnum + j] = mean[j], std[j]
+    for k in range(indptr[n_scaled], indptr[indptr.shape[0] - 1]):
+        j = indices[k]
+        x = values[k]
+        if j < nnum:
+            x = (x - mean[j]) / std[j]
+        scaled[k] = x
+
+
 @_jit
-def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref, sample_max, absurd, losses,
-                 usable, above):
+def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, scaled, n_scaled, scale, y, n_ref, sample_max,
+                 absurd, losses, usable, above):
     """The held-out monitor's figures of a window of rows in one pass (the rules that read them are in
     ``service/monitor/``). Writes ``losses[0, i]`` and ``losses[1, i]``, row ``i``'s loss under the raw
     and the averaged iterate; ``usable[i]``, whether neither loss overflowed (``OVERFLOW_LOSS``) and
@@ -160,15 +190,27 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
     sample_max)``-th, an odd count (a partition finds the median). Returns ``(reference, n_usable,
     raw_sum, avg_sum, n_above, distance)``: the sums of the usable rows' losses as numpy sums
     ``losses[:, usable]`` (pairwise along each row when every row is usable, else in row order from 0.0
-    over the column-major copy numpy makes), how many rows are above, and :func:`iterate_distance`."""
+    over the column-major copy numpy makes), how many rows are above, and :func:`iterate_distance`.
+
+    ``scaled`` (beside ``values``) keeps the rows' scaled values from one call to the next (a window's
+    rows stay while the model changes, its scaling does not once frozen): rows ``0..n_scaled`` are taken
+    from it when ``scale`` says they were scaled with ``mean`` and ``std`` (:func:`_scale_rows`), the
+    others are scaled into it first. The margins are then :func:`models.kernels._score_event`'s, the
+    same operations in the same order."""
     code, delta = int(prm[P_LOSS]), prm[P_DELTA]
     n = losses.shape[1]
-    width = 1
+    _scale_rows(prm, mean, std, indptr, indices, values, scaled, n_scaled, scale)
+    # unsigned positions: numba then reads without its test for a negative index (a third of this loop)
+    first_col, second_col = np.uint64(0), np.uint64(1)
     for i in range(n):
-        width = max(width, indptr[i + 1] - indptr[i])
-    xs = np.empty(width)
-    for i in range(n):
-        raw, avg, _, _ = _score_event(lazy, st, sc, prm, mean, std, indices, values, indptr[i], indptr[i + 1], xs)
+        dv = 0.0
+        da = 0.0
+        for k in range(np.uint64(indptr[i]), np.uint64(indptr[i + 1])):
+            j = np.uint64(indices[k])
+            x = scaled[k]
+            dv += st[j, first_col] * x
+            da += st[j, second_col] * x
+        raw, avg = pair_margins(lazy, sc, dv, da)
         losses[0, i] = _loss(code, delta, raw, y[i])
         losses[1, i] = _loss(code, delta, avg, y[i])
     step = max(1, n_ref // sample_max)
@@ -179,16 +221,19 @@ def score_window(lazy, st, sc, prm, mean, std, indptr, indices, values, y, n_ref
         sample[k] = losses[1, k * step]
     reference = _kth_smallest(sample, m // 2)
     limit = absurd * reference if reference > 0.0 else np.inf
-    n_usable, raw_sum, avg_sum = 0, 0.0, 0.0
+    n_usable = 0
     for i in range(n):
         a, b = losses[0, i], losses[1, i]
         usable[i] = abs(a) <= OVERFLOW_LOSS and abs(b) <= OVERFLOW_LOSS and min(a, b) <= limit
-        if usable[i]:
-            raw_sum += a
-            avg_sum += b
-            n_usable += 1
+        n_usable += usable[i]
     if n_usable == n:
         raw_sum, avg_sum = _numpy_row_sum(losses, 0), _numpy_row_sum(losses, 1)
+    else:  # a second pass only then: the running sums are a chain of dependent additions
+        raw_sum, avg_sum = 0.0, 0.0
+        for i in range(n):
+            if usable[i]:
+                raw_sum += losses[0, i]
+                avg_sum += losses[1, i]
     first, n_above = n - above.shape[0], 0
     for i in range(first, n):
         above[i - first] = 1.0 if losses[1, i] > reference else 0.0

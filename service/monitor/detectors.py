@@ -121,12 +121,18 @@ class ChangeDetector:
         if det.drift_detected:  # at the last value of the previous feed (a feed stops at a detection)
             self.reset()
             det = self._det
-        for x in values:
-            if self._fed is not None:
-                if len(self._fed) >= ADWIN_MEMORY:  # rebuilt from the newest half, as a restored state is
-                    self.load_state({"kind": "adwin"}, np.asarray(self._fed[len(self._fed) // 2:]))
-                    det = self._det
-                self._fed.append(x)
+        if self._fed is None:  # Page-Hinkley: river's update per value and nothing else (the monitor's hot path)
+            update = det.update
+            for x in values:
+                update(x)
+                if det._drift_detected:  # what river's ``drift_detected`` property returns
+                    return True
+            return False
+        for x in values:  # ADWIN: its input is kept too (see the module docstring)
+            if len(self._fed) >= ADWIN_MEMORY:  # rebuilt from the newest half, as a restored state is
+                self.load_state({"kind": "adwin"}, np.asarray(self._fed[len(self._fed) // 2:]))
+                det = self._det
+            self._fed.append(x)
             det.update(x)
             if det.drift_detected:
                 return True

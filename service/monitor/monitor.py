@@ -59,7 +59,7 @@ class Monitor:
         self._ball = spec.constraint_set.kind == "ball"
         # a logistic loss is bounded by the margin, so a wrong label cannot be absurd: keep every event
         self._absurd = math.inf if spec.loss == "logistic" else cfg.absurd_factor
-        self.window = HeldOutWindow(cfg.window)
+        self.window = HeldOutWindow(cfg.window, len(spec.numeric))
         self.state = RuleState(raw_served=cfg.serve == "raw")
         params = {"page_hinkley": dict(min_instances=cfg.drift_min_events, delta=cfg.drift_delta,
                                        threshold=cfg.drift_threshold, mode="up"), "adwin": dict(delta=cfg.adwin_delta)}
@@ -105,14 +105,17 @@ class Monitor:
         if (burst := rules.rejected_burst(self.state, rejected, total, self.cfg)) is not None:
             self._incident("rejected_burst", event, ts, *burst)
 
-    def _figures(self, model: LinearModel, upto: int | None = None) -> CheckFigures | None:
-        """The window's figures up to event ``upto`` (``None``: all), garbage left out of the means."""
-        rows, y, events = self.window.view(upto)
+    def _figures(self, model: LinearModel, upto: int | None = None, check: bool = False) -> CheckFigures | None:
+        """The window's figures up to event ``upto`` (``None``: all), garbage left out of the means. A
+        ``check`` keeps the window's scaled values for the next one (a reader between checks changes nothing)."""
+        rows, y, events, *scaled = self.window.view(upto, keep_scaled=check)
         if not len(events):
             return None
         n_old = int(events.searchsorted(self.state.checks[-1] if self.state.checks else -1, "right"))
         n_ref = n_old if n_old >= MIN_EVENTS else len(events)  # too few older events: the whole window's median
-        s = model.score_window(rows, y, n_ref, _MEDIAN_SAMPLE, self._absurd, n_old)
+        s = model.score_window(rows, y, n_ref, _MEDIAN_SAMPLE, self._absurd, n_old, *scaled)
+        if check:
+            self.window.scaled_kept()
         raw, avg = (s.sums[0] / s.n_usable, s.sums[1] / s.n_usable) if s.n_usable else (math.nan, math.nan)
         g2 = self.state.g2_min  # read only: a reader between checks (the model card) changes nothing
         allowance = self.cfg.noise_allowance * model.last_step * g2 / 4.0 if g2 < math.inf else 0.0
@@ -125,7 +128,7 @@ class Monitor:
         g = model.grad_bound  # the smallest since the restart: a burst inflates the estimate, not the noise
         if g and 0.0 < g * g < state.g2_min:
             state.g2_min = g * g
-        fig = self._figures(model, event)
+        fig = self._figures(model, event, check=True)
         record = {"event": int(event), "action": None, "holdout_raw": None, "holdout_avg": None, "held_out": 0,
                   "excluded": 0, "distance": model.distance() if fig is None else fig.distance}
         if fig is not None:
@@ -142,7 +145,8 @@ class Monitor:
             if rules.boundary_pinned(state, on, self.cfg):
                 self._incident("boundary", event, ts, self.warnings[0],
                                {"radius": self._radius, "norm_raw": model.raw_norm()})
-        state.checks = (state.checks + [int(event)])[-_KEPT_CHECKS:]
+        state.checks.append(int(event))
+        del state.checks[:-_KEPT_CHECKS]
         record["serving"] = self.serving
         return record
 
@@ -156,7 +160,7 @@ class Monitor:
             reason = rules.too_far_from_average(fig, limit)
             if reason is None:
                 patience = state.checks[-cfg.rollback_patience] if len(state.checks) >= cfg.rollback_patience else -1
-                reason = rules.raw_persistently_worse(fig, state, cfg, fig.after(patience))
+                reason = rules.raw_persistently_worse(fig, state, cfg, patience)
                 by_loss = reason is not None
         if reason is not None and not cfg.rollback:
             state.ignored += 1

@@ -17,8 +17,9 @@ from service.monitor.detectors import ChangeDetector
 if TYPE_CHECKING:
     from service.config import MonitorConfig
 
-__all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "non_finite_update",
-           "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average", "welch_pvalue"]
+__all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "median",
+           "non_finite_update", "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average",
+           "welch_pvalue"]
 
 #: fewest usable events a comparison is made on (a sign test at level 0.001 needs 10 of 10 above)
 MIN_EVENTS = 10
@@ -85,7 +86,7 @@ def too_far_from_average(fig: CheckFigures, limit: float) -> str | None:
     return f"raw iterate {fig.distance:.3g} from the average (limit {limit:.3g})" if fig.distance > limit else None
 
 
-def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, recent: int) -> str | None:
+def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConfig, since: int) -> str | None:
     """**Rollback** (held-out loss). Watches the mean loss of both iterates over the usable window
     events, once ``min_holdout`` are kept. Threshold: ``L_raw > (1 + rollback_margin) L_avg +
     allowance`` on ``rollback_patience`` checks in a row (one, right after a rollback by this rule,
@@ -94,12 +95,13 @@ def raw_persistently_worse(fig: CheckFigures, state: RuleState, cfg: MonitorConf
     under steps ``eta`` solves ``H C + C H = eta Cov(g)`` to first order, so the excess loss ``tr(H C)
     / 2`` is ``eta E||g||^2 / 4`` whatever the curvature (a derivation, not a citation; the tests
     check it against scikit-learn's optimum). A check does not count when the raw iterate beats the
-    average on the usable events from index ``recent`` on (those of the last ``rollback_patience``
+    average on the usable events held out after event ``since`` (those of the last ``rollback_patience``
     checks): it is then following a change, not diverging."""
     if fig.n_usable < cfg.min_holdout:
         return None
     worse = fig.raw > (1.0 + cfg.rollback_margin) * fig.averaged + fig.allowance
     if worse:
+        recent = fig.after(since)
         pick = fig.usable[recent:]
         if np.count_nonzero(pick) >= MIN_EVENTS:
             worse = fig.losses[0, recent:][pick].mean() >= fig.losses[1, recent:][pick].mean()
@@ -147,18 +149,30 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     raw, avg = fig.losses
     old, new = avg[:early][before], avg[fresh:][pick]
     rise = 1.0 + cfg.rollback_margin
-    ref, now = float(np.median(old)), float(np.median(new))
+    ref, now = median(old), median(new)
     above = int(np.count_nonzero(new > ref))
     p_sign = sign_test_pvalue(above, n) if now > rise * ref else 1.0
     p_mean = welch_pvalue(new, old) if n >= 30 and new.mean() > rise * old.mean() else 1.0
     if min(p_sign, p_mean) > cfg.drift_level:
         return None
-    test, centre = ("sign", np.median) if p_sign <= p_mean else ("means", np.mean)
+    test, centre = ("sign", median) if p_sign <= p_mean else ("means", np.mean)
     ref, now = float(centre(old)), float(centre(new))
     return {"alarm_event": state.alarm_from, "checks": state.alarm_checks, "n": n, "above": above,
             "p": min(p_sign, p_mean), "test": test, "before_averaged": ref, "recent_averaged": now,
             "before_raw": float(centre(raw[:early][before])), "recent_raw": float(centre(raw[fresh:][pick])),
             "garbage": garbage}
+
+
+def median(a: np.ndarray) -> float:
+    """``np.median`` of a 1-d float array with at least one value, bit for bit, in under half its time: the
+    same partition (the last place too, where a NaN would go), the mean of the middle one or two values,
+    NaN when there is a NaN (``numpy/lib/_function_base_impl.py: _median``, without its generic set-up)."""
+    size = len(a)
+    half = size // 2
+    part = np.partition(a, [half - 1, half, -1] if size % 2 == 0 else [half, -1])
+    if part[-1] != part[-1]:
+        return math.nan
+    return float(part[half:half + 1].mean() if size % 2 else part[half - 1:half + 1].mean())
 
 
 def sign_test_pvalue(above: int, n: int) -> float:
@@ -179,8 +193,10 @@ def boundary_pinned(state: RuleState, on_boundary: bool, cfg: MonitorConfig) -> 
     ``boundary_checks`` checks. The certificate then speaks of the best point *in the ball*, which may
     be a poor model. Returns ``True`` when a pinned stretch begins, ``False`` when it ends (share
     below half the threshold), else ``None``."""
-    state.on_boundary = (state.on_boundary + [int(on_boundary)])[-cfg.boundary_checks:]
-    share = sum(state.on_boundary) / cfg.boundary_checks
+    kept = state.on_boundary
+    kept.append(int(on_boundary))
+    del kept[:-cfg.boundary_checks]
+    share = sum(kept) / cfg.boundary_checks
     if not state.boundary_open and share >= cfg.boundary_share:
         state.boundary_open = True
         return True
