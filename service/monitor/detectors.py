@@ -125,7 +125,7 @@ class ChangeDetector:
             update = det.update
             for x in values:
                 update(x)
-                if det._drift_detected:  # what river's ``drift_detected`` property returns
+                if det.drift_detected:
                     return True
             return False
         for x in values:  # ADWIN: its input is kept too (see the module docstring)

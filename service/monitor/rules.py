@@ -17,7 +17,7 @@ from service.monitor.detectors import ChangeDetector
 if TYPE_CHECKING:
     from service.config import MonitorConfig
 
-__all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector", "median",
+__all__ = ["CheckFigures", "RuleState", "boundary_pinned", "change_confirmed", "feed_detector",
            "non_finite_update", "raw_persistently_worse", "rejected_burst", "sign_test_pvalue", "too_far_from_average",
            "welch_pvalue"]
 
@@ -149,30 +149,18 @@ def change_confirmed(fig: CheckFigures, state: RuleState, cfg: MonitorConfig) ->
     raw, avg = fig.losses
     old, new = avg[:early][before], avg[fresh:][pick]
     rise = 1.0 + cfg.rollback_margin
-    ref, now = median(old), median(new)
+    ref, now = float(np.median(old)), float(np.median(new))
     above = int(np.count_nonzero(new > ref))
     p_sign = sign_test_pvalue(above, n) if now > rise * ref else 1.0
     p_mean = welch_pvalue(new, old) if n >= 30 and new.mean() > rise * old.mean() else 1.0
     if min(p_sign, p_mean) > cfg.drift_level:
         return None
-    test, centre = ("sign", median) if p_sign <= p_mean else ("means", np.mean)
+    test, centre = ("sign", np.median) if p_sign <= p_mean else ("means", np.mean)
     ref, now = float(centre(old)), float(centre(new))
     return {"alarm_event": state.alarm_from, "checks": state.alarm_checks, "n": n, "above": above,
             "p": min(p_sign, p_mean), "test": test, "before_averaged": ref, "recent_averaged": now,
             "before_raw": float(centre(raw[:early][before])), "recent_raw": float(centre(raw[fresh:][pick])),
             "garbage": garbage}
-
-
-def median(a: np.ndarray) -> float:
-    """``np.median`` of a 1-d float array with at least one value, bit for bit, in under half its time: the
-    same partition (the last place too, where a NaN would go), the mean of the middle one or two values,
-    NaN when there is a NaN (``numpy/lib/_function_base_impl.py: _median``, without its generic set-up)."""
-    size = len(a)
-    half = size // 2
-    part = np.partition(a, [half - 1, half, -1] if size % 2 == 0 else [half, -1])
-    if part[-1] != part[-1]:
-        return math.nan
-    return float(part[half:half + 1].mean() if size % 2 else part[half - 1:half + 1].mean())
 
 
 def sign_test_pvalue(above: int, n: int) -> float:
