@@ -43,7 +43,12 @@ __all__ = ["FORMATS", "Chunk", "detect_format", "read_feed"]
 FORMATS = ("ndjson", "csv", "parquet")
 _SUFFIX = {".ndjson": "ndjson", ".jsonl": "ndjson", ".json": "ndjson", ".csv": "csv", ".parquet": "parquet",
            ".pq": "parquet"}
-_BLOCK = 1 << 20
+#: NDJSON blocks grow from :data:`_FIRST_BLOCK` to this size (doubling from 1 MiB): each block costs
+#: the parse and the engine some fixed Python work, so 4 MiB blocks replay a large feed about 10%
+#: faster than 1 MiB ones (benchmarks/README.md), while the small first blocks keep the first events early
+_BLOCK = 1 << 22
+#: The second NDJSON block; later ones double up to the ``block`` size.
+_RAMP_BLOCK = 1 << 20
 #: NDJSON blocks below this are parsed line by line (orjson and the validator, the same results):
 #: importing Arrow (about 0.1 s) costs more than it saves on a few hundred lines (a small feed, a feed's last block).
 _SMALL_BLOCK = 1 << 16
@@ -144,7 +149,7 @@ def _ndjson_blocks(src: _Source, max_line: int, block: int):
     size = min(block, _FIRST_BLOCK)  # a small first block: the first events are learned at once
     while True:
         data = src.read(size)
-        size = block
+        size = min(block, max(2 * size, _RAMP_BLOCK))
         if not data:
             break
         if skipping is not None:
@@ -220,7 +225,8 @@ def _read_ndjson(path: Path, config, columnar: bool, workers: int, block: int) -
         pending: deque = deque()
         for data, first, skipped in _ndjson_blocks(src, max_line, block):
             pending.append(pool.submit(work, data, first, skipped, src.progress))
-            if len(pending) > 2 * workers:
+            # at most 2 * workers blocks ahead, and a parsed block goes on at once (the first events early)
+            while pending and (len(pending) > 2 * workers or pending[0].done()):
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()

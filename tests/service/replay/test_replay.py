@@ -359,3 +359,25 @@ def test_model_file_version_is_the_installed_distribution():
     except PackageNotFoundError:
         expected = "unknown (not installed as a package)"
     assert trimtab_version() == expected
+
+
+def test_ndjson_blocks_grow_from_a_small_first_one_and_keep_every_line(tmp_path, monkeypatch):
+    """Blocks start small (the first events are learned early), double up to the block size, end on
+    whole lines, and together are the file with the right first line numbers."""
+    from service.feeds import files
+
+    monkeypatch.setattr(files, "_FIRST_BLOCK", 100)
+    monkeypatch.setattr(files, "_RAMP_BLOCK", 400)
+    rng = random.Random(5)
+    lines = [b'{"id": "x%d", "pad": "%s"}' % (i, b"p" * rng.randrange(0, 60)) for i in range(400)]
+    path = tmp_path / "f.ndjson"
+    path.write_bytes(b"\n".join(lines) + b"\n")
+    with files._open(path) as src:
+        blocks = list(files._ndjson_blocks(src, max_line=1000, block=3000))
+    assert b"".join(b for b, _, _ in blocks) == path.read_bytes()
+    assert all(b.endswith(b"\n") and not skipped for b, _, skipped in blocks)
+    assert [first for _, first, _ in blocks] == list(np.cumsum([1] + [b.count(b"\n") for b, _, _ in blocks[:-1]]))
+    sizes = [len(b) for b, _, _ in blocks]
+    # whole lines cut each read short by less than a line: 100, then 400, 800, 1600, then 3000 each
+    assert sizes[0] <= 100 and 400 - 100 < sizes[1] <= 400 + 100 and sizes[2] > 600 and sizes[3] > 1400
+    assert max(sizes) <= 3000 + 100 and sizes[4] > 2800
