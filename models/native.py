@@ -236,17 +236,26 @@ def _scalar_check(kind: str):
 
 
 def _checked(native, spec: list, jit):
-    """``native`` behind a check of every argument against ``spec``; a mismatch calls ``jit()``'s function."""
+    """``native`` behind a check of every argument against ``spec``; a mismatch calls ``jit()``'s function.
+
+    An argument that is the very object passed in the same place by the last call whose arguments all
+    passed is not checked again (the model's own state arrays come back at every call): an array's
+    dtype, dimensions and order do not change (trimtab never reshapes or write-protects an array in
+    place). The last passing arguments are kept referenced, so none of them can be freed and its
+    address reused by another object."""
     checks = tuple(_array_check(s["dtype"], s["ndim"], s["readonly"]) if s["kind"] == "array"
                    else _scalar_check(s["kind"]) for s in spec)
     n = len(checks)
+    passed = [None] * n  # the last call's arguments, once all passed (replaced whole: one atomic store)
 
     def call(*args):
+        nonlocal passed
         if len(args) == n:
-            for check, arg in zip(checks, args):
-                if not check(arg):
+            for check, arg, before in zip(checks, args, passed):
+                if arg is not before and not check(arg):
                     break
             else:
+                passed = args
                 return native(*args)
         return jit()(*args)
 

@@ -123,6 +123,23 @@ def test_argument_of_another_type_goes_to_the_jit(built, monkeypatch):
     assert new64.tolist() == [0, 0, 0, 0, 12, 5, 0, 0]
 
 
+
+def test_an_argument_is_checked_unless_it_is_the_last_passing_calls_own_object():
+    """The check is skipped only for the very objects of the last call that passed: a new array of
+    another dtype, or the same position given another object, is still checked and goes to the JIT."""
+    from models.native import _checked
+
+    spec = [{"kind": "array", "dtype": "float64", "ndim": 1, "readonly": True}, {"kind": "int64"}]
+    calls = []
+    fn = _checked(lambda a, k: calls.append("native") or k, spec, lambda: (lambda a, k: calls.append("jit") or k))
+    state = np.zeros(4)
+    assert fn(state, 1) == 1 and fn(state, 2) == 2  # the same array again: not checked, still native
+    assert fn(np.zeros(4, dtype=np.int64), 3) == 3  # another object of another dtype: checked
+    assert fn(state[::2], 4) == 4  # a strided view: checked (not C-ordered)
+    assert fn(state, 2**70) == 2**70  # an int beyond int64 at a passing position: checked
+    assert calls == ["native", "native", "jit", "jit", "jit"]
+
+
 OPTIONS = '''
 import numba
 
