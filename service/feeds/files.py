@@ -43,10 +43,11 @@ __all__ = ["FORMATS", "Chunk", "detect_format", "read_feed"]
 FORMATS = ("ndjson", "csv", "parquet")
 _SUFFIX = {".ndjson": "ndjson", ".jsonl": "ndjson", ".json": "ndjson", ".csv": "csv", ".parquet": "parquet",
            ".pq": "parquet"}
-#: NDJSON blocks grow from :data:`_FIRST_BLOCK` to this size (doubling from 1 MiB): each block costs
-#: the parse and the engine some fixed Python work, so 4 MiB blocks replay a large feed about 10%
-#: faster than 1 MiB ones (benchmarks/README.md), while the small first blocks keep the first events early
-_BLOCK = 1 << 22
+#: NDJSON blocks grow from :data:`_FIRST_BLOCK` to this size (1 MiB, then 2 MiB): each block costs the
+#: parse and the engine some fixed Python work, so 2 MiB blocks replay a large feed about 9% faster than
+#: 1 MiB ones, while the small first block keeps the first events early. 4 MiB was no faster and took
+#: 40 MB more at its peak (a 1,000,000-event replay: 239, 263 and 304 MB; benchmarks/README.md)
+_BLOCK = 1 << 21
 #: The second NDJSON block; later ones double up to the ``block`` size.
 _RAMP_BLOCK = 1 << 20
 #: NDJSON blocks below this are parsed line by line (orjson and the validator, the same results):

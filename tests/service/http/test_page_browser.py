@@ -185,6 +185,10 @@ def test_page_draws_every_chart_names_the_iterate_and_lists_the_demo_rollback(si
     Fahrenheit labels at valid events 31,104-33,177, replay_data/README.md), where the guarded config
     rolls back."""
     page, serve = site["page"], site["serve"]
+    # the ingest charts plot the service's pulse, sampled once a second, and a rate needs two samples:
+    # a replay that ends within a second or two leaves them empty until the page's next refresh
+    _wait_until(page, "[...document.querySelectorAll('figure.chart')].every("
+                      "f => f.querySelector('svg.plot path.series'))")
     points = _chart_points(page)
     print("points per chart and series:", points)
     assert set(points) == {"holdout", "progressive", "step", "distance", "rate", "queue", "rejected"}
