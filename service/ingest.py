@@ -6,13 +6,14 @@ Handlers validate a request (on a worker thread) and :meth:`Ingestor.submit` its
 journaled as one row of its new events' lines and applied as its prepared batch; other requests
 queue validated events, journaled one row each. Two stages drain the queue, in order:
 
-1. the *committer* takes queued items (up to ``service.chunk_events`` events) and, on the journal's
-   own thread, drops ids ever accepted before (the whole-history index of
+1. the *committer*, on the journal's own thread, takes queued items (up to ``service.chunk_events``
+   events a chunk, chunk after chunk while items wait, with no round trip through the event loop
+   between them), drops ids ever accepted before (the whole-history index of
    :mod:`service.storage.seen`; within a chunk the first occurrence wins), assigns journal
    positions and commits the rows with their id keys in one transaction;
-2. the *learner* applies committed chunks to the engine on its own thread, in slices of
-   ``service.apply_slice`` events, and resolves each item's future as soon as its events are applied
-   (an acknowledged event is journaled *and* learned).
+2. the *learner* applies committed chunks, handed to its thread by the journal thread in commit
+   order, in slices of ``service.apply_slice`` events; the event loop resolves each item's future
+   as soon as its events are applied (an acknowledged event is journaled *and* learned).
 
 While the learner applies chunk k the committer is already committing chunk k+1; SQLite and the
 compiled kernels release the GIL while they work, so the stages overlap with each other and with
@@ -74,7 +75,6 @@ class Ingestor:
         self._every, self._keep, self._prune = svc.checkpoint_every, svc.checkpoints_kept, svc.prune_journal
         self._pending: deque[Item] = deque()
         self._wake = asyncio.Event()
-        self._committed: asyncio.Queue = asyncio.Queue(maxsize=2)
         self._thread, self._learn_thread = (ThreadPoolExecutor(1, f"trimtab-{n}", background_thread)
                                             for n in ("journal", "learner"))
         #: held while the engine changes (one slice at a time); readers of the model take it too
@@ -220,10 +220,21 @@ class Ingestor:
         self._next_seq = seq
 
     async def _committer(self) -> None:
+        loop = asyncio.get_running_loop()
         while True:
             while not self._pending:
                 self._wake.clear()
                 await self._wake.wait()
+            await self.db(self._commit_pending, loop)
+
+    def _commit_pending(self, loop: asyncio.AbstractEventLoop) -> None:
+        """Journal thread: commit the queued items a chunk (up to ``service.chunk_events`` events) at a
+        time until none is left, and hand each committed chunk straight to the learner's thread.
+
+        Items queued while a chunk commits are taken here without a round trip through the event
+        loop; the two single-thread executors keep commit order and learning order the same. Only the
+        event loop pops nothing: it appends (:meth:`submit`), this thread pops."""
+        while self._pending:
             items, n = [], 0
             while self._pending and (not items or n + self._pending[0].size() <= self._chunk):
                 it = self._pending.popleft()
@@ -231,19 +242,22 @@ class Ingestor:
                 n += it.size()
             start = time.perf_counter()
             try:
-                await self.db(self._commit, items)
+                self._commit(items)
             except Exception as exc:
-                reason = storage_fault(exc, self.journal.path.parent)
-                log.error("journal commit failed: %s", reason or repr(exc))
-                if reason is not None:
-                    self.guard.failed(reason, "a journal commit")
-                for it in items:
-                    self._finish(it, JournalUnavailable(f"the journal write failed ({reason or exc}); nothing from "
-                                                        "this request was applied or acknowledged; retry",
-                                                        where="journal"))
+                loop.call_soon_threadsafe(self._commit_failed, items, exc)
                 continue
             self.metrics.commit_seconds.observe(time.perf_counter() - start)
-            await self._committed.put(items)
+            self._learn_thread.submit(self._apply_chunk, items, loop)
+
+    def _commit_failed(self, items: list[Item], exc: Exception) -> None:
+        """Event loop: a commit failed; its items are refused (nothing of them was journaled)."""
+        reason = storage_fault(exc, self.journal.path.parent)
+        log.error("journal commit failed: %s", reason or repr(exc))
+        if reason is not None:
+            self.guard.failed(reason, "a journal commit")
+        for it in items:
+            self._finish(it, JournalUnavailable(f"the journal write failed ({reason or exc}); nothing from "
+                                                "this request was applied or acknowledged; retry", where="journal"))
 
     # ---------------------------------------------------------------- stage 2: learning
     def apply_events(self, events: list[Event], *, view_last: bool = True) -> None:
@@ -313,38 +327,56 @@ class Ingestor:
                 self._incident("step_scale", *step_scale_change(before, after, "rollback",
                                                                 self.config.monitor.rollback_shrink), persist=True)
 
-    async def _learner(self) -> None:
-        while True:
-            items = await self._committed.get()
-            for it in items:
-                if self._failed:  # journaled, not applied: a restart applies them in journal order
-                    self._finish(it, JournalUnavailable("the learner failed; these events are journaled and will "
-                                                        "be applied at restart", where="learner"))
-                    continue
-                try:
-                    await self._apply_item(it)
-                except Exception as exc:
-                    # the journal holds rows the model has not learned: stop applying and checkpointing
-                    # (a checkpoint now would record a position that does not describe the engine)
-                    self.ready, self._failed = False, True
-                    self._incident("learner_failed", f"applying journaled events failed: {exc!r}; "
-                                       "restart the service to re-apply them from the journal", {})
-                    log.exception("learner failed")
-                    self._finish(it, JournalUnavailable("the learner failed; the events are journaled and will "
-                                                        "be applied at restart", where="learner"))
-                    continue
-                self._finish(it, None)
+    def _apply_chunk(self, items: list[Item], loop: asyncio.AbstractEventLoop) -> None:
+        """Learner thread: apply a committed chunk's items in journal order; each item's answer (and a
+        checkpoint it asks for or that falls due) goes back to the event loop."""
+        for it in items:
+            if self._failed:  # journaled, not applied: a restart applies them in journal order
+                loop.call_soon_threadsafe(self._finish, it, JournalUnavailable(
+                    "the learner failed; these events are journaled and will be applied at restart", where="learner"))
+                continue
+            try:
+                self._apply_sync(it)
+            except Exception as exc:
+                self._learner_failed(exc)
+                loop.call_soon_threadsafe(self._finish, it, JournalUnavailable(
+                    "the learner failed; the events are journaled and will be applied at restart", where="learner"))
+                continue
+            loop.call_soon_threadsafe(self._applied, it)
 
-    async def _apply_item(self, it: Item) -> None:
-        r = it.receipt
-        await self.learn(self._apply_sync, it)
+    def _learner_failed(self, exc: Exception) -> None:
+        """The journal holds rows the model has not learned: stop applying and checkpointing (a
+        checkpoint now would record a position that does not describe the engine)."""
+        self.ready, self._failed = False, True
+        self._incident("learner_failed", f"applying journaled events failed: {exc!r}; "
+                       "restart the service to re-apply them from the journal", {})
+        log.error("learner failed", exc_info=exc)
+
+    def _applied(self, it: Item) -> None:
+        """Event loop: an item is journaled and learned; answer it (after its checkpoint, if it asked
+        for one) and start the periodic checkpoint when one is due."""
         if it.action is not None and it.action[0] == "checkpoint":
-            r.checkpoint = await self.checkpoint()
-        elif self.applied_seq - self.checkpoint_seq >= self._every:
+            fut = asyncio.ensure_future(self._checkpoint_for(it))
+            self._background.add(fut)
+            fut.add_done_callback(self._background.discard)
+            return
+        if self.applied_seq - self.checkpoint_seq >= self._every:
             self.checkpoint_seq = self.applied_seq  # one checkpoint per period, even while it is written
             fut = asyncio.ensure_future(self.checkpoint())
             self._background.add(fut)
             fut.add_done_callback(self._background_done)
+        self._finish(it, None)
+
+    async def _checkpoint_for(self, it: Item) -> None:
+        """An operator's checkpoint: written, then the item is answered with it."""
+        try:
+            it.receipt.checkpoint = await self.checkpoint()
+        except Exception as exc:
+            self._learner_failed(exc)
+            self._finish(it, JournalUnavailable("the learner failed; the events are journaled and will be applied "
+                                                "at restart", where="learner"))
+            return
+        self._finish(it, None)
 
     def _background_done(self, fut: asyncio.Future) -> None:
         self._background.discard(fut)
@@ -387,8 +419,7 @@ class Ingestor:
         Raises :class:`service.storage.recovery.RecoveryRefused` (the service stays not ready, with
         an incident) when the storage is damaged or the acknowledged history cannot be rebuilt."""
         pos, replayed, self._next_seq = await recover(self)
-        self._tasks = [asyncio.create_task(self._committer(), name="trimtab-committer"),
-                       asyncio.create_task(self._learner(), name="trimtab-learner")]
+        self._tasks = [asyncio.create_task(self._committer(), name="trimtab-committer")]
         self.ready = True
         if self.publisher is not None:
             with self.lock:
@@ -424,5 +455,5 @@ class Ingestor:
             with suppress(asyncio.CancelledError):
                 await t
         self.ready = False
+        self._thread.shutdown(wait=True)  # first: a commit in progress still hands its chunk to the learner
         self._learn_thread.shutdown(wait=True)
-        self._thread.shutdown(wait=True)

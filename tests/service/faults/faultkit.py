@@ -91,8 +91,9 @@ class Client:
         raise AssertionError("condition not met in time")
 
 
-def journal_replay(config, db_path: Path) -> tuple[str, int, list[str], int]:
-    """Replay the journal file offline: ``(state_digest, updates, event ids in order, last position)``.
+def journal_replay(config, db_path: Path, upto: int | None = None) -> tuple[str, int, list[str], int]:
+    """Replay the journal file offline: ``(state_digest, updates, event ids in order, last position)``;
+    ``upto``: only the rows at positions up to it (a checkpoint's position ends a row).
 
     The rows are read with ``sqlite3`` and applied in position order to a fresh :class:`Engine`
     (events in chunks, operator rollbacks between them), which is what a restart must reproduce. The
@@ -101,7 +102,8 @@ def journal_replay(config, db_path: Path) -> tuple[str, int, list[str], int]:
     """
     db = sqlite3.connect(db_path)
     try:
-        rows = db.execute("SELECT seq, kind, payload FROM journal ORDER BY seq").fetchall()
+        rows = db.execute("SELECT seq, kind, payload FROM journal WHERE seq <= ? ORDER BY seq",
+                          (upto if upto is not None else 2**62,)).fetchall()
     finally:
         db.close()
     v = EventValidator(config)
