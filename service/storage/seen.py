@@ -22,19 +22,28 @@ run*: rows ``(run, h, seq)`` of ``seen_sorted`` (primary key ``(run, h)``) under
 every existing one, inserted in key order, so they land at the right edge of the B-tree and the
 commit writes new pages only, however many keys the index already holds. ``seen_levels`` lists the
 runs (``run``, ``level``, ``n`` keys, ``last_seq`` their highest position). A new run is at level 0;
-whenever a level below :data:`TOP_LEVEL` holds :data:`FANOUT` runs, they are merged (one
-``INSERT ... SELECT ... ORDER BY h`` under a new run number, the old runs deleted) into one run of
-the next level. Runs at the top level are never merged again. With the defaults (4 and 2):
+when a level below :data:`TOP_LEVEL` holds :data:`FANOUT` runs, a merge of them into one new run of
+the next level starts. It is not done in one commit: a merge is cut into slices of the key space of
+about :data:`SLICE_KEYS` keys each (keys are uniform hashes, so equal shares of the key space hold
+about as many), and every :data:`STEP_EVERY` keys added to the buffer, each merge under way moves
+its next slice (``INSERT ... SELECT ... ORDER BY h`` of that key range from the source runs to the
+end of the new run, then ``DELETE`` of the range). A key is in exactly one run at any moment, so
+lookups answer the same mid-merge. Runs at the top level are never merged again. With the
+defaults (buffer 65,536, fan-out 4, top level 2, slices of 4,096 keys, a step per 2,048 keys):
 
 * every key is written three times in the index (into a level-0 run, a level-1 run, a top run),
-  whatever the history: the write amplification is at most the number of levels;
-* the largest merge rewrites :data:`FANOUT` ``**`` :data:`TOP_LEVEL` ``*`` :data:`BUFFER_KEYS`
-  keys (about 1M, 16 level-0 runs), once per 1M new ids; the commit that triggers it also runs the
-  level-0 merge before it (about 1.3M rows in all, the slow commit: ``benchmarks/dedup.py``);
+  whatever the history: the write amplification is the number of levels (plus the buffer);
+* the largest merge rewrites ``FANOUT ** TOP_LEVEL * BUFFER_KEYS`` keys (1,048,576: the top runs
+  hold about 1M keys), but no commit does more than one slice of each merge under way (at most one
+  per level below the top) beyond its own keys and, one commit in 131 at 500 keys per commit, the
+  flush of the buffer (65,536 keys sorted and written). A merge moves two slices per ``SLICE_KEYS``
+  new keys, so it ends in half the time before the next merge of its level is due (one that is
+  still under way then is finished at once, which only a burst of very large commits can cause);
 * a lookup of a key the Bloom filter does not rule out probes every run by primary key: at most
-  ``FANOUT - 1`` runs per level below the top (3 + 3) plus one per 1M ids of history, plus the
-  legacy table. A higher top level would keep fewer top runs but make the largest merge
-  :data:`FANOUT` times larger; a larger fan-out writes less often but probes more runs per level.
+  ``FANOUT - 1`` complete runs per level below the top (3 + 3), one per 1M ids of history at the
+  top, the sources and target of the merges under way, and the legacy table. A higher top level
+  would keep fewer top runs (fewer probes in a long history) at one more write per key; a larger
+  fan-out writes each key as often but probes more runs per level.
 
 Before this layout (journal format 3 and older) the buffer moved into ``seen (h, seq)``, one indexed
 table, in one sorted pass; with uniformly random keys every move touched nearly every leaf of the
