@@ -71,8 +71,9 @@ from operator import itemgetter
 import numpy as np
 import orjson
 
-__all__ = ["BUFFER_KEYS", "FANOUT", "SCHEMA", "SLICE_KEYS", "STEP_EVERY", "TOP_LEVEL", "buffered_count", "id_key", "index_pairs", "indexed_count",
-           "indexed_keys", "insert_keys", "known_keys", "last_position", "load_buffer", "number_events", "run_levels"]
+__all__ = ["BUFFER_KEYS", "FANOUT", "SCHEMA", "SLICE_KEYS", "STEP_EVERY", "TOP_LEVEL", "buffered_count", "id_key",
+           "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "known_keys", "last_position", "load_buffer",
+           "number_events", "run_levels"]
 
 SCHEMA = ("CREATE TABLE IF NOT EXISTS seen (h BLOB PRIMARY KEY, seq INTEGER NOT NULL) WITHOUT ROWID;\n"
           "CREATE TABLE IF NOT EXISTS seen_new (h BLOB NOT NULL, seq INTEGER NOT NULL);\n"

@@ -118,8 +118,8 @@ def test_a_format_3_file_opens_finds_its_keys_and_becomes_format_4_at_its_first_
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "4"
     assert db.execute("SELECT count(*) FROM seen").fetchone()[0] == 20
-    assert sorted(db.execute("SELECT h, seq FROM seen_sorted WHERE run = 1").fetchall()) == \
-        sorted([(id_key(i), 21 + k) for k, i in enumerate(buffered)] + [(h, 25 + k) for k, h in enumerate(first + more)])
+    run = [(id_key(i), 21 + k) for k, i in enumerate(buffered)] + [(h, 25 + k) for k, h in enumerate(first + more)]
+    assert db.execute("SELECT h, seq FROM seen_sorted WHERE run = 1").fetchall() == sorted(run)  # in key order
     db.close()
     j = Journal(tmp_path)
     everything = old + first + more
@@ -177,8 +177,8 @@ def test_lookups_and_merge_steps_seek_by_primary_key_and_scan_no_run(tmp_path):
     db = sqlite3.connect(tmp_path / "plan.sqlite")
     db.executescript(seen.SCHEMA)
     where = "run IN (SELECT run FROM seen_levels WHERE into_run = ?1) AND h >= ?2 AND h < ?3"
-    statements = {seen._lookup_sql(3): (b"a", b"b", b"c"),
-                  f"INSERT INTO seen_sorted SELECT ?1, h, seq FROM seen_sorted WHERE {where} ORDER BY h": (1, b"", b"z"),
+    move = f"INSERT INTO seen_sorted (run, h, seq) SELECT ?1, h, seq FROM seen_sorted WHERE {where} ORDER BY h"
+    statements = {seen._lookup_sql(3): (b"a", b"b", b"c"), move: (1, b"", b"z"),
                   f"DELETE FROM seen_sorted WHERE {where}": (1, b"", b"z")}
     assert where in seen._move_slice.__code__.co_consts  # the statements checked are the module's own
     for sql, args in statements.items():
