@@ -185,3 +185,30 @@ def test_lookups_and_merge_steps_seek_by_primary_key_and_scan_no_run(tmp_path):
         plan = [r[3] for r in db.execute(f"EXPLAIN QUERY PLAN {sql}", args)]
         on_index = [p for p in plan if "seen_sorted" in p or p.startswith(("SEARCH seen ", "SCAN seen "))]
         assert on_index and all(p.startswith("SEARCH") and "PRIMARY KEY" in p for p in on_index), plan
+
+
+@pytest.mark.parametrize("retained", [5, 300], ids=["fits-the-buffer", "a-run-at-the-top"])
+def test_a_format_1_journal_without_an_index_gets_its_retained_ids_indexed_at_open(tmp_path, monkeypatch,
+                                                                                    retained):
+    """A journal written before any index table existed (format 1): at open its retained ids are
+    indexed in one transaction, as a buffer (format 3) or, when they fill it, as one run, put at
+    the level its size calls for (300 keys with a buffer of 8 and a fan-out of 3: the top), which
+    marks the file 4. Lookups, the filter and the last position answer for them."""
+    monkeypatch.setattr(seen, "BUFFER_KEYS", 8)
+    monkeypatch.setattr(seen, "FANOUT", 3)
+    db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    db.execute("CREATE TABLE journal (seq INTEGER PRIMARY KEY, id TEXT, kind INTEGER NOT NULL, payload BLOB NOT NULL)")
+    ids = [f"first-{k}" for k in range(retained)]
+    db.executemany("INSERT INTO journal VALUES (?, ?, 0, ?)", [(k + 11, i, b"{}") for k, i in enumerate(ids)])
+    db.commit()
+    db.close()
+    keys = [id_key(i) for i in ids]
+    j = Journal(tmp_path)
+    assert j.known(keys + [id_key("never")]) == set(keys) and all(j._filter.maybe(keys))
+    assert j.last_seq() == 10 + retained
+    if retained < 8:
+        assert j.format == 3 and seen.run_levels(j._db) == [] and seen.buffered_count(j._db) == retained
+    else:
+        assert j.format == 4 and seen.run_levels(j._db) == [(1, seen.TOP_LEVEL, retained)]
+    assert dict(seen.index_pairs(j._db)) == {k: s + 11 for s, k in enumerate(keys)}
+    j.close()
