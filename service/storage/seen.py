@@ -21,7 +21,8 @@ When the buffer holds :data:`BUFFER_KEYS` keys, the commit that filled it turns 
 run*: rows ``(run, h, seq)`` of ``seen_sorted`` (primary key ``(run, h)``) under a run number above
 every existing one, inserted in key order, so they land at the right edge of the B-tree and the
 commit writes new pages only, however many keys the index already holds. ``seen_levels`` lists the
-runs (``run``, ``level``, ``n`` keys, ``last_seq`` their highest position). A new run is at level 0;
+runs (``run``, ``level``, ``n`` keys, ``last_seq`` their highest position; ``into_run``, ``slices``
+and ``slices_done`` follow a merge, below). A new run is at level 0;
 when a level below :data:`TOP_LEVEL` holds :data:`FANOUT` runs, a merge of them into one new run of
 the next level starts. It is not done in one commit: a merge is cut into slices of the key space of
 about :data:`SLICE_KEYS` keys each (keys are uniform hashes, so equal shares of the key space hold
@@ -292,6 +293,7 @@ def _advance_merges(db: sqlite3.Connection, steps: int) -> None:
 
 
 def _finish_merge(db: sqlite3.Connection, target: int) -> None:
+    """Move every slice left of the merge into ``target``."""
     slices, done = db.execute("SELECT slices, slices_done FROM seen_levels WHERE run = ?", (target,)).fetchone()
     for part in range(done, slices):
         _move_slice(db, target, part, slices)
