@@ -4,15 +4,15 @@ Everything runs on real SQLite files in a temporary folder through :class:`servi
 the code the service commits with. Prints a table; the last line is one JSON object. Figures:
 
 * ``index_bytes_per_million`` and ``index_vs_raw_bytes``: growth of the database file per million
-  indexed ids (``seen`` rows: a 16-byte key and a position), against the 16 MB that the bare keys
-  take in a flat file (the baseline).
+  indexed ids (rows of the sorted runs: a 16-byte key, a run number and a position), against the
+  16 MB that the bare keys take in a flat file (the baseline).
 * ``lookup_us_per_id`` and ``lookup_vs_set``: :meth:`Journal.known` on batches of 5,000 ids (half
   known, half new) against a history of ``--history`` ids, per id, against a Python ``set`` holding
   the same keys in memory (what an in-memory index costs; it also grows RSS without bound).
 * ``commit_with_index_vs_without``: mean time of a commit of 5,000 events (journal rows plus their
   keys, after the lookup) against the same commits of the rows alone, both with
   ``synchronous=FULL``, at that history size, over enough commits that the buffer of new keys is
-  moved into the indexed table twice (those commits are the slow ones: ``commit_ms_max_with_index``).
+  written as a sorted run twice (those commits are the slow ones: ``commit_ms_max_with_index``).
 * ``set_mb_per_million``: memory an in-memory set of the keys takes per million ids (the set and its
   bytes objects, by ``sys.getsizeof``),
   the cost the on-disk index avoids (its own memory is SQLite's page cache, 2 MB by default).
