@@ -10,10 +10,11 @@ Tables:
   each followed by a newline; ``id`` null): the row stands for as many consecutive positions as it
   has lines and ``seq`` is the *last* of them (:func:`first_position`). Replaying the rows in
   ``seq`` order through :meth:`Engine.apply` rebuilds the engine bit for bit.
-* ``seen(h, seq)``, ``seen_runs(seq, keys)`` (and ``seen_new(h, seq)`` in files of format 1 and
-  2): the deduplication index over the whole history and its buffer (:mod:`service.storage.seen`);
-  never pruned. A Bloom filter of its keys (:mod:`service.storage.keyfilter`), built at open and
-  kept up to date by every commit, lets most new ids skip the index lookup.
+* ``seen_runs(seq, keys)``, ``seen_sorted(run, h, seq)`` and ``seen_levels(run, level, n, last_seq)``
+  (and, in files of earlier formats, ``seen(h, seq)`` and ``seen_new(h, seq)``): the deduplication
+  index over the whole history, its buffer and its sorted runs (:mod:`service.storage.seen`); never
+  pruned. A Bloom filter of its keys (:mod:`service.storage.keyfilter`), built at open and kept up
+  to date by every commit, lets most new ids skip the index lookup.
 * ``checkpoints(id, seq, created, digest, state_digest, blob)``: ``blob`` is a checkpoint in the
   format of :mod:`service.storage.checkpoint` after applying every row up to ``seq``; ``digest`` is
   the SHA-256 of the blob, checked on load so a corrupt or truncated checkpoint is detected and an
@@ -24,11 +25,13 @@ Tables:
   ``journal_format``).
 
 Format versions (``meta.journal_format``): 1 (the key absent) has event, note and rollback rows
-only; 2 adds the rows of lines (kind 3); 3 buffers new id keys as runs in ``seen_runs`` instead of
-one row each in ``seen_new`` (:mod:`service.storage.seen`; rows left in ``seen_new`` are still
-read). A file is marked 3 when it is created or when its first row of lines or first id key is
-written, so a file of format 1 or 2 stays readable by the versions before until then; a file of a
-format above :data:`JOURNAL_FORMAT` is refused at open with a message saying so.
+only; 2 adds the rows of lines (kind 3); 3 buffers new id keys as runs of positions in ``seen_runs``
+instead of one row each in ``seen_new`` (rows left in ``seen_new`` are still read); 4 keeps the
+index in sorted runs (``seen_sorted``, ``seen_levels``) instead of moving the buffer into ``seen``,
+which is read but no longer written (:mod:`service.storage.seen`). A new file is marked 4 when it
+is created; an older file is marked 3 at its first row of lines or id key and 4 in the transaction
+that writes its first sorted run, so until then the versions before read it. A file of a format
+above :data:`JOURNAL_FORMAT` is refused at open with a message saying so.
 
 Durability: with ``synchronous=FULL`` (the default, ``service.journal_sync``) SQLite fsyncs the WAL
 on every commit, so an event acknowledged after :meth:`Journal.append` returns survives a process
@@ -73,7 +76,9 @@ __all__ = ["EVENT", "JOURNAL_FORMAT", "LINES", "NOTE", "ROLLBACK", "Checkpoint",
 
 EVENT, NOTE, ROLLBACK, LINES = 0, 1, 2, 3
 #: the journal format this version writes and the newest it reads (see the module docstring)
-JOURNAL_FORMAT = 3
+JOURNAL_FORMAT = 4
+#: the format of a file whose index has a buffer (``seen_runs``) but no sorted run yet
+_BUFFERED_FORMAT = 3
 FILE_NAME = "trimtab.sqlite"
 
 _SCHEMA = """
@@ -210,13 +215,11 @@ class Journal:
         self._filter = self._key_filter()
 
     def _key_filter(self) -> KeyFilter:
-        """A Bloom filter of every key in the index (``seen`` and ``seen_new``), sized at open for twice
-        as many (it keeps that size while the file is open; see :mod:`service.storage.keyfilter`)."""
-        n = self._db.execute("SELECT count(*) FROM seen").fetchone()[0] + len(self._buffer)
-        keys = KeyFilter.sized_for(n)
-        cur = self._db.execute("SELECT h FROM seen")
-        while rows := cur.fetchmany(65_536):
-            keys.add([r[0] for r in rows])
+        """A Bloom filter of every key in the index (legacy table, sorted runs and buffer), sized at open
+        for twice as many (it keeps that size while the file is open; see :mod:`service.storage.keyfilter`)."""
+        keys = KeyFilter.sized_for(seen.indexed_count(self._db) + len(self._buffer))
+        for batch in seen.indexed_keys(self._db):
+            keys.add(batch)
         keys.add(list(self._buffer))
         return keys
 
@@ -225,13 +228,19 @@ class Journal:
         rows = self._db.execute("SELECT seq, id FROM journal WHERE kind = 0 AND id IS NOT NULL").fetchall()
         if rows:
             self._db.execute("BEGIN IMMEDIATE")
-            self._db.execute("INSERT OR REPLACE INTO meta VALUES ('journal_format', ?)", (str(JOURNAL_FORMAT),))
-            self._format = JOURNAL_FORMAT
-            if seen.insert_keys(self._db, self._buffer, [(seen.id_key(i), s) for s, i in rows]):
-                self._buffer = set()
-            else:
-                self._buffer = seen.load_buffer(self._db)
+            moved = seen.insert_keys(self._db, self._buffer, [(seen.id_key(i), s) for s, i in rows])
+            fmt = self._mark_format(self._db, JOURNAL_FORMAT if moved else _BUFFERED_FORMAT)
             self._db.execute("COMMIT")
+            self._format = fmt
+            self._buffer = seen.load_buffer(self._db)
+
+    def _mark_format(self, db: sqlite3.Connection, needed: int) -> int:
+        """Inside a write transaction: raise the file's format to ``needed`` if it is below (never lower
+        it). Returns the format the file has once the transaction commits."""
+        if needed <= self._format:
+            return self._format
+        db.execute("INSERT OR REPLACE INTO meta VALUES ('journal_format', ?)", (str(needed),))
+        return needed
 
     # ---------------------------------------------------------------- setup and health
     def claim(self, config_fingerprint: str) -> None:
@@ -318,16 +327,15 @@ class Journal:
         Each part is a row ``(seq, id, kind, payload)`` or a run of events ``(first_seq, ids, payloads)``
         numbered from ``first_seq``; ``keys`` are the ``(id key, seq)`` pairs of the new events. Ids
         and payloads are bound as parameters, never parsed by SQLite. The first row of lines or id
-        key written to a file of an older format marks it :data:`JOURNAL_FORMAT` in the same
-        transaction.
+        key written to a file of format 1 or 2 marks it 3, and the first sorted run of the index
+        marks it 4 (:data:`JOURNAL_FORMAT`), in the same transaction.
         """
         if not parts:
             return
-        upgrade = self._format < JOURNAL_FORMAT and (bool(keys) or any(len(p) == 4 and p[2] == LINES for p in parts))
+        buffered = bool(keys) or any(len(p) == 4 and p[2] == LINES for p in parts)
 
         def body(db):
-            if upgrade:
-                db.execute("INSERT OR REPLACE INTO meta VALUES ('journal_format', ?)", (str(JOURNAL_FORMAT),))
+            fmt = self._mark_format(db, _BUFFERED_FORMAT) if buffered else self._format
             for part in parts:
                 if len(part) == 3:
                     first, ids, payloads = part
@@ -336,12 +344,14 @@ class Journal:
                                    zip(range(first, first + len(payloads)), ids, payloads))
                 else:
                     db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
-            return seen.insert_keys(db, self._buffer, keys)
+            moved = seen.insert_keys(db, self._buffer, keys)
+            if moved:  # the first sorted run: the versions before could not read the file any more
+                fmt = max(fmt, self._mark_format(db, JOURNAL_FORMAT))
+            return moved, fmt
 
-        moved = self._transaction(body)
+        moved, fmt = self._transaction(body)
         with self._lock:  # only once the keys are committed: the filter must never hold back a key
-            if upgrade:
-                self._format = JOURNAL_FORMAT
+            self._format = fmt
             added = list(map(itemgetter(0), keys))
             if moved:
                 self._buffer = set()

@@ -91,7 +91,7 @@ async def test_json_ndjson_score_card_read_your_writes(aiohttp_client, tmp_path)
         assert kind == 0 and orjson.loads(payload) == list(v.validate(e))
     _, ident, kind, payload = rows[600]
     assert (ident, kind) == (None, 3) and payload == nd + b"\n"  # the body's lines, as sent
-    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "3"
+    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "4"
     assert db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
 
 

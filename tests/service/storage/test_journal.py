@@ -54,9 +54,10 @@ def test_rows_and_runs_commit_in_order_with_exact_payloads(tmp_path):
     assert db.execute("SELECT seq, length(keys) FROM seen_runs ORDER BY rowid").fetchall() == [(1, 800), (52, 16)]
 
 
-def test_the_index_buffer_moves_into_the_indexed_table_and_both_answer(tmp_path, monkeypatch):
-    """Keys go to ``seen_runs`` first and move to ``seen`` (primary key ``h``) once the buffer is full;
-    a lookup sees both, before and after a reopen; a failed transaction changes neither."""
+def test_the_index_buffer_becomes_sorted_runs_and_both_answer(tmp_path, monkeypatch):
+    """Keys go to ``seen_runs`` first and become a sorted run of ``seen_sorted`` (primary key
+    ``(run, h)``) once the buffer is full; a lookup sees both, before and after a reopen; a failed
+    transaction changes neither."""
     monkeypatch.setattr(seen, "BUFFER_KEYS", 10)
     j = Journal(tmp_path)
     keys = [id_key(f"k{n}") for n in range(25)]
@@ -69,7 +70,9 @@ def test_the_index_buffer_moves_into_the_indexed_table_and_both_answer(tmp_path,
     assert j.known(keys + [id_key("late")]) == set(keys)
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
-    assert db.execute("SELECT count(*) FROM seen").fetchone()[0] == 24
+    assert db.execute("SELECT count(*) FROM seen").fetchone()[0] == 0  # the legacy table is not written
+    assert db.execute("SELECT run, count(*) FROM seen_sorted GROUP BY run").fetchall() == [(1, 12), (2, 12)]
+    assert seen.run_levels(db) == [(1, 0, 12), (2, 0, 12)]
     assert db.execute("SELECT seq, length(keys) FROM seen_runs").fetchall() == [(25, 16)]
     assert sorted(seen.index_pairs(db), key=lambda p: p[1]) == [(k, n + 1) for n, k in enumerate(keys)]
     db.close()
@@ -156,7 +159,7 @@ def test_a_format_2_file_with_keys_buffered_one_row_each_opens_and_moves_on(tmp_
     """The upgrade path of the index buffer: a file of format 2 holds its newest keys one row each in
     ``seen_new`` and has no ``seen_runs``. Opened by this version, those keys are known (lookups, the
     Bloom filter, the last position); its first new key marks it format 3 and goes into a run; the
-    move into ``seen`` takes the rows of both tables; a reopen answers the same."""
+    first sorted run takes the rows of both tables and marks it format 4; a reopen answers the same."""
     monkeypatch.setattr(seen, "BUFFER_KEYS", 12)
     j = Journal(tmp_path)
     j.close()
@@ -186,15 +189,17 @@ def test_a_format_2_file_with_keys_buffered_one_row_each_opens_and_moves_on(tmp_
     j = Journal(tmp_path)
     more = [id_key(f"more{k}") for k in range(3)]
     j.append([(10, [f"more{k}" for k in range(3)], [payload(f"more{k}", k) for k in range(3)])],
-             [(h, k + 10) for k, h in enumerate(more)])  # 12 keys: the buffer moves into seen
+             [(h, k + 10) for k, h in enumerate(more)])  # 12 keys: the buffer becomes a sorted run
+    assert j.format == 4
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
+    assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "4"
     assert db.execute("SELECT (SELECT count(*) FROM seen_new) + (SELECT count(*) FROM seen_runs)").fetchone()[0] == 0
     everything = old + new + more
     want = [(h, k + 1) for k, h in enumerate(everything)]
-    assert db.execute("SELECT h, seq FROM seen ORDER BY seq").fetchall() == want
-    # sorted as SQLite orders the primary key (memcmp of the bytes)
-    assert [r[0] for r in db.execute("SELECT h FROM seen")] == sorted(old + new + more)
+    assert db.execute("SELECT h, seq FROM seen_sorted ORDER BY seq").fetchall() == want
+    # one run, sorted as SQLite orders the primary key (memcmp of the bytes)
+    assert [r[0] for r in db.execute("SELECT h FROM seen_sorted WHERE run = 1")] == sorted(everything)
     db.close()
     j = Journal(tmp_path)
     assert j.known(old + new + more + [id_key("never")]) == set(old + new + more) and j.last_seq() == 12

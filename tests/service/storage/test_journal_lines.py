@@ -103,7 +103,7 @@ async def test_a_body_of_only_bad_lines_changes_nothing(aiohttp_client, tmp_path
 
 def test_format_1_files_are_read_and_marked_3_at_their_first_row_of_lines(tmp_path):
     j = Journal(tmp_path)
-    assert j.format == JOURNAL_FORMAT == 3
+    assert j.format == JOURNAL_FORMAT == 4  # a new file is of the newest format
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     db.execute("DELETE FROM meta WHERE key = 'journal_format'")  # as a file of the versions before
@@ -125,10 +125,10 @@ def test_format_1_files_are_read_and_marked_3_at_their_first_row_of_lines(tmp_pa
     j.close()
     db = sqlite3.connect(tmp_path / "trimtab.sqlite")
     assert db.execute("SELECT value FROM meta WHERE key = 'journal_format'").fetchone()[0] == "3"
-    db.execute("UPDATE meta SET value = '4' WHERE key = 'journal_format'")
+    db.execute("UPDATE meta SET value = '5' WHERE key = 'journal_format'")
     db.commit()
     db.close()
-    with pytest.raises(StorageUnavailable, match="format 4, written by a newer trimtab"):
+    with pytest.raises(StorageUnavailable, match="format 5, written by a newer trimtab"):
         Journal(tmp_path)
     Journal(tmp_path / "other").close()  # the refusal let go of the data-dir lock of the first
 
