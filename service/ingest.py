@@ -74,6 +74,7 @@ class Ingestor:
         self._limit, self._slice, self._chunk = svc.queue_limit, svc.apply_slice, svc.chunk_events
         self._every, self._keep, self._prune = svc.checkpoint_every, svc.checkpoints_kept, svc.prune_journal
         self._pending: deque[Item] = deque()
+        self._merge_retry_at = 0.0           # monotonic time before which no idle merge step is tried
         self._wake = asyncio.Event()
         self._thread, self._learn_thread = (ThreadPoolExecutor(1, f"trimtab-{n}", background_thread)
                                             for n in ("journal", "learner"))
@@ -223,9 +224,22 @@ class Ingestor:
         loop = asyncio.get_running_loop()
         while True:
             while not self._pending:
+                if self.journal.merging and time.monotonic() >= self._merge_retry_at:
+                    await self.db(self._merge_step)  # one slice at a time: a waiting item goes next
+                    continue
                 self._wake.clear()
                 await self._wake.wait()
             await self.db(self._commit_pending, loop)
+
+    def _merge_step(self) -> None:
+        """Journal thread, no commit waiting: move the deduplication index's owed merge slices on, so
+        that commits do not carry them (:meth:`Journal.merge_step`). A failure is left to the next
+        commits (which move owed slices themselves past ``seen.OWED_LIMIT``, or fail and say why)."""
+        try:
+            self.journal.merge_step()
+        except Exception as exc:
+            self._merge_retry_at = time.monotonic() + 5.0
+            log.warning("moving a merge of the deduplication index failed (retried in 5 s): %r", exc)
 
     def _commit_pending(self, loop: asyncio.AbstractEventLoop) -> None:
         """Journal thread: commit the queued items a chunk (up to ``service.chunk_events`` events) at a

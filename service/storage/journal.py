@@ -154,6 +154,9 @@ class Journal:
         self._lock = threading.Lock()
         self.wal_damage: str | None = None
         self.open_damage: str | None = None
+        #: merge slices of the index owed and not yet moved (:meth:`merge_step`; seen.OWED_LIMIT)
+        self.owed_steps = 0
+        self._merging = False  # only merges under way owe slices
         try:
             self._open(sync)
         except sqlite3.DatabaseError as exc:
@@ -212,6 +215,7 @@ class Journal:
         self._buffer = seen.load_buffer(self._db)  # the unindexed tail of the index, mirrored in memory
         if "journal" in tables and "seen" not in tables:
             self._index_retained_ids()
+        self._merging = seen.merges_under_way(self._db) > 0
         self._filter = self._key_filter()
 
     def _key_filter(self) -> KeyFilter:
@@ -344,20 +348,37 @@ class Journal:
                                    zip(range(first, first + len(payloads)), ids, payloads))
                 else:
                     db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
-            moved = seen.insert_keys(db, self._buffer, keys)
+            owed = self.owed_steps + (seen.steps_owed(len(self._buffer), len(keys)) if self._merging else 0)
+            steps = owed if owed > seen.OWED_LIMIT else 0  # else moved while the thread is idle
+            moved = seen.insert_keys(db, self._buffer, keys, steps)
             if moved:  # the first sorted run: the versions before could not read the file any more
                 fmt = max(fmt, self._mark_format(db, JOURNAL_FORMAT))
-            return moved, fmt
+            return moved, fmt, owed - steps
 
-        moved, fmt = self._transaction(body)
+        moved, fmt, owed = self._transaction(body)
         with self._lock:  # only once the keys are committed: the filter must never hold back a key
-            self._format = fmt
+            self._format, self.owed_steps = fmt, owed
+            self._merging = self._merging or moved  # a new run may have started a merge
             added = list(map(itemgetter(0), keys))
             if moved:
                 self._buffer = set()
             else:
                 self._buffer.update(added)
             self._filter.add(added)
+
+    @property
+    def merging(self) -> bool:
+        """Whether a merge of the index is under way (:meth:`merge_step` has work)."""
+        return self._merging
+
+    def merge_step(self) -> None:
+        """Move the next slice of every merge of the index under way, in a transaction of its own: the
+        journal's thread calls it while no commit waits, so commits do not carry the merges (owed
+        slices first, then ahead of time: idle time finishes merges early)."""
+        left = self._transaction(lambda db: seen.advance_merges(db, 1))
+        with self._lock:
+            self.owed_steps = max(0, self.owed_steps - 1) if left else 0
+            self._merging = left
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """The rows with a position above ``seq``, in order, until they stand for ``limit`` positions

@@ -26,18 +26,22 @@ and ``slices_done`` follow a merge, below). A new run is at level 0;
 when a level below :data:`TOP_LEVEL` holds :data:`FANOUT` runs, a merge of them into one new run of
 the next level starts. It is not done in one commit: a merge is cut into slices of the key space of
 about :data:`SLICE_KEYS` keys each (keys are uniform hashes, so equal shares of the key space hold
-about as many), and every :data:`STEP_EVERY` keys added to the buffer, each merge under way moves
-its next slice (``INSERT ... SELECT ... ORDER BY h`` of that key range from the source runs to the
-end of the new run, then ``DELETE`` of the range). A key is in exactly one run at any moment, so
+about as many), and every :data:`STEP_EVERY` keys added to the buffer, each merge under way owes a
+move of its next slice (``INSERT ... SELECT ... ORDER BY h`` of that key range from the source runs
+to the end of the new run, then ``DELETE`` of the range). The journal's thread moves owed slices in
+transactions of their own while no commit waits (:meth:`service.storage.journal.Journal.merge_step`),
+so a commit does not carry them; a commit moves them itself only once more than :data:`OWED_LIMIT`
+are owed (a journal thread that is never idle). A key is in exactly one run at any moment, so
 lookups answer the same mid-merge. Runs at the top level are never merged again. With the
 defaults (buffer 65,536, fan-out 4, top level 2, slices of 4,096 keys, a step per 2,048 keys):
 
 * every key is written three times in the index (into a level-0 run, a level-1 run, a top run),
   whatever the history: the write amplification is the number of levels (plus the buffer);
 * the largest merge rewrites ``FANOUT ** TOP_LEVEL * BUFFER_KEYS`` keys (1,048,576: the top runs
-  hold about 1M keys), but no commit does more than one slice of each merge under way (at most one
-  per level below the top) beyond its own keys and, one commit in 131 at 500 keys per commit, the
-  flush of the buffer (65,536 keys sorted and written). A merge moves two slices per ``SLICE_KEYS``
+  hold about 1M keys), but no transaction moves more than one slice of each merge under way (at
+  most one per level below the top) unless the journal thread fell :data:`OWED_LIMIT` slices behind,
+  and a commit carries, one commit in 131 at 500 keys per commit, the flush of the buffer (65,536
+  keys sorted and written). A merge moves two slices per ``SLICE_KEYS``
   new keys, so it ends in half the time before the next merge of its level is due (one that is
   still under way then is finished at once, which only a burst of very large commits can cause);
 * a lookup of a key the Bloom filter does not rule out probes every run by primary key: at most
@@ -72,9 +76,9 @@ from operator import itemgetter
 import numpy as np
 import orjson
 
-__all__ = ["BUFFER_KEYS", "FANOUT", "SCHEMA", "SLICE_KEYS", "STEP_EVERY", "TOP_LEVEL", "buffered_count", "id_key",
-           "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "known_keys", "last_position", "load_buffer",
-           "number_events", "run_levels"]
+__all__ = ["BUFFER_KEYS", "FANOUT", "OWED_LIMIT", "SCHEMA", "SLICE_KEYS", "STEP_EVERY", "TOP_LEVEL", "advance_merges",
+           "buffered_count", "id_key", "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "known_keys",
+           "last_position", "load_buffer", "merges_under_way", "number_events", "run_levels", "steps_owed"]
 
 SCHEMA = ("CREATE TABLE IF NOT EXISTS seen (h BLOB PRIMARY KEY, seq INTEGER NOT NULL) WITHOUT ROWID;\n"
           "CREATE TABLE IF NOT EXISTS seen_new (h BLOB NOT NULL, seq INTEGER NOT NULL);\n"
@@ -93,9 +97,12 @@ FANOUT = 4
 TOP_LEVEL = 2
 #: keys of a merge moved per step (a slice of the key space holding about this many)
 SLICE_KEYS = 4096
-#: every time this many more keys are buffered, each merge under way moves one slice (two slices per
-#: ``SLICE_KEYS`` new keys: a merge ends within half the time before the next one of its level starts)
+#: every time this many more keys are buffered, each merge under way owes one more slice (two slices
+#: per ``SLICE_KEYS`` new keys: a merge ends within half the time before the next one of its level starts)
 STEP_EVERY = SLICE_KEYS // 2
+#: owed slices are moved by the journal thread while no commit waits (:meth:`Journal.merge_step`); a
+#: commit moves them itself only once more than this many are owed (a journal thread never idle)
+OWED_LIMIT = 16
 
 #: bound parameters per lookup statement (SQLite allows 32,766 since 3.32)
 _LOOKUP_CHUNK = 4000
@@ -186,10 +193,17 @@ def known_keys(db: sqlite3.Connection, buffer: set[bytes], keys: list[bytes]) ->
     return found
 
 
-def insert_keys(db: sqlite3.Connection, buffer: set[bytes], pairs: list[tuple[bytes, int]]) -> bool:
+def steps_owed(buffered: int, added: int) -> int:
+    """The merge steps that ``added`` keys joining a buffer of ``buffered`` owe (one per :data:`STEP_EVERY`)."""
+    return (buffered + added) // STEP_EVERY - buffered // STEP_EVERY
+
+
+def insert_keys(db: sqlite3.Connection, buffer: set[bytes], pairs: list[tuple[bytes, int]],
+                steps: int | None = None) -> bool:
     """Add ``(key, seq)`` pairs inside the caller's transaction; ``buffer`` is the mirror of the
-    buffer *before* them, and is not changed (the caller updates it once the commit holds). Merges
-    under way move a slice each per :data:`STEP_EVERY` keys added.
+    buffer *before* them, and is not changed (the caller updates it once the commit holds). Each
+    merge under way moves ``steps`` slices here (``None``: the :func:`steps_owed` by these keys; the
+    journal passes 0 and moves them while idle, see :data:`OWED_LIMIT`).
 
     Returns whether the buffer became a sorted run (the caller then empties its mirror and marks the
     file format 4 in the same transaction).
@@ -197,9 +211,10 @@ def insert_keys(db: sqlite3.Connection, buffer: set[bytes], pairs: list[tuple[by
     if pairs:
         _insert_runs(db, pairs)
     filled = len(buffer) + len(pairs)
-    steps = filled // STEP_EVERY - len(buffer) // STEP_EVERY
+    if steps is None:
+        steps = steps_owed(len(buffer), len(pairs))
     if steps:
-        _advance_merges(db, steps)
+        advance_merges(db, steps)
     if filled < BUFFER_KEYS:
         return False
     _flush_buffer(db)
@@ -283,13 +298,22 @@ def _complete_runs(db: sqlite3.Connection, level: int) -> list[int]:
                                      "AND slices = slices_done ORDER BY run", (level,))]
 
 
-def _advance_merges(db: sqlite3.Connection, steps: int) -> None:
-    """Move up to ``steps`` slices of every merge under way."""
+def merges_under_way(db: sqlite3.Connection) -> int:
+    """How many merges have slices left to move."""
+    return db.execute("SELECT count(*) FROM seen_levels WHERE slices > slices_done").fetchone()[0]
+
+
+def advance_merges(db: sqlite3.Connection, steps: int) -> bool:
+    """Move up to ``steps`` slices of every merge under way (inside the caller's transaction); return
+    whether a merge is still under way afterwards."""
     pending = db.execute("SELECT run, slices, slices_done FROM seen_levels WHERE slices > slices_done "
                          "ORDER BY run").fetchall()
+    left = False
     for target, slices, done in pending:
         for part in range(done, min(slices, done + steps)):
             _move_slice(db, target, part, slices)
+        left = left or done + steps < slices
+    return left
 
 
 def _finish_merge(db: sqlite3.Connection, target: int) -> None:

@@ -212,3 +212,47 @@ def test_a_format_1_journal_without_an_index_gets_its_retained_ids_indexed_at_op
         assert j.format == 4 and seen.run_levels(j._db) == [(1, seen.TOP_LEVEL, retained)]
     assert dict(seen.index_pairs(j._db)) == {k: s + 11 for s, k in enumerate(keys)}
     j.close()
+
+
+@pytest.mark.parametrize("idle_steps", [True, False], ids=["moved-while-idle", "journal-never-idle"])
+def test_owed_merge_slices_move_while_idle_and_never_fall_far_behind(tmp_path, monkeypatch, idle_steps):
+    """Commits owe merge slices instead of moving them; ``merge_step`` (the journal thread, while no
+    commit waits) moves them one at a time. Without idle steps a commit moves them itself once more
+    than ``OWED_LIMIT`` are owed. Either way ``known`` stays exactly the committed set, mid-merge
+    included, and every merge completes."""
+    monkeypatch.setattr(seen, "BUFFER_KEYS", 8)
+    monkeypatch.setattr(seen, "FANOUT", 3)
+    monkeypatch.setattr(seen, "SLICE_KEYS", 4)
+    monkeypatch.setattr(seen, "STEP_EVERY", 2)
+    monkeypatch.setattr(seen, "OWED_LIMIT", 5)
+    rng = random.Random(7)
+    j = Journal(tmp_path, sync="normal")
+    committed: dict[bytes, int] = {}
+    seq, idle_moves, most_owed, mid_merge_checks = 1, 0, 0, 0
+    for c in range(150):
+        ids = [f"reefer-{c}-{k}" for k in range(rng.randrange(1, 6))]
+        pairs = [(id_key(i), seq + k) for k, i in enumerate(ids)]
+        assert not j.known([h for h, _ in pairs])
+        j.append([(seq, ids, [b"{}"] * len(ids))], pairs)
+        committed.update(pairs)
+        seq += len(ids)
+        most_owed = max(most_owed, j.owed_steps)
+        if idle_steps and j.merging and rng.random() < 0.5:
+            done = j._db.execute("SELECT coalesce(sum(slices_done), 0) FROM seen_levels").fetchone()[0]
+            j.merge_step()
+            idle_moves += j._db.execute("SELECT coalesce(sum(slices_done), 0) FROM seen_levels").fetchone()[0] != done
+        if _merges_under_way(j._db):
+            mid_merge_checks += 1
+            probe = rng.sample(list(committed), min(20, len(committed))) + [id_key(f"never-{c}")]
+            assert j.known(probe) == {k for k in probe if k in committed}
+    assert most_owed <= seen.OWED_LIMIT  # a commit past the limit moved what was owed
+    assert mid_merge_checks > 10
+    if idle_steps:
+        assert idle_moves > 10
+    while j.merging:  # an idle journal thread finishes every merge
+        j.merge_step()
+    assert _merges_under_way(j._db) == 0 and j.owed_steps == 0
+    assert {level for _, level, _ in seen.run_levels(j._db)} >= {1, 2}
+    pairs = seen.index_pairs(j._db)
+    assert dict(pairs) == committed and len(pairs) == len(committed)
+    j.close()
