@@ -349,7 +349,7 @@ class Journal:
                 else:
                     db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
             owed = self.owed_steps + (seen.steps_owed(len(self._buffer), len(keys)) if self._merging else 0)
-            steps = owed if owed > seen.OWED_LIMIT else 0  # else moved while the thread is idle
+            steps = max(0, owed - seen.OWED_LIMIT)  # the rest is moved while the thread is idle
             moved = seen.insert_keys(db, self._buffer, keys, steps)
             if moved:  # the first sorted run: the versions before could not read the file any more
                 fmt = max(fmt, self._mark_format(db, JOURNAL_FORMAT))

@@ -30,8 +30,9 @@ about as many), and every :data:`STEP_EVERY` keys added to the buffer, each merg
 move of its next slice (``INSERT ... SELECT ... ORDER BY h`` of that key range from the source runs
 to the end of the new run, then ``DELETE`` of the range). The journal's thread moves owed slices in
 transactions of their own while no commit waits (:meth:`service.storage.journal.Journal.merge_step`),
-so a commit does not carry them; a commit moves them itself only once more than :data:`OWED_LIMIT`
-are owed (a journal thread that is never idle). A key is in exactly one run at any moment, so
+so a commit does not carry them; a commit moves only those owed beyond :data:`OWED_LIMIT` (a
+journal thread that is never idle then moves each commit's share in the commit, as if owed slices
+were moved at once, :data:`OWED_LIMIT` steps late). A key is in exactly one run at any moment, so
 lookups answer the same mid-merge. Runs at the top level are never merged again. With the
 defaults (buffer 65,536, fan-out 4, top level 2, slices of 4,096 keys, a step per 2,048 keys):
 
@@ -101,7 +102,7 @@ SLICE_KEYS = 4096
 #: per ``SLICE_KEYS`` new keys: a merge ends within half the time before the next one of its level starts)
 STEP_EVERY = SLICE_KEYS // 2
 #: owed slices are moved by the journal thread while no commit waits (:meth:`Journal.merge_step`); a
-#: commit moves them itself only once more than this many are owed (a journal thread never idle)
+#: commit moves those owed beyond this many itself (a journal thread never idle lags this far behind)
 OWED_LIMIT = 16
 
 #: bound parameters per lookup statement (SQLite allows 32,766 since 3.32)

@@ -218,7 +218,7 @@ def test_a_format_1_journal_without_an_index_gets_its_retained_ids_indexed_at_op
 def test_owed_merge_slices_move_while_idle_and_never_fall_far_behind(tmp_path, monkeypatch, idle_steps):
     """Commits owe merge slices instead of moving them; ``merge_step`` (the journal thread, while no
     commit waits) moves them one at a time. Without idle steps a commit moves them itself once more
-    than ``OWED_LIMIT`` are owed. Either way ``known`` stays exactly the committed set, mid-merge
+    than ``OWED_LIMIT`` are owed (those beyond it). Either way ``known`` stays exactly the committed set, mid-merge
     included, and every merge completes."""
     monkeypatch.setattr(seen, "BUFFER_KEYS", 8)
     monkeypatch.setattr(seen, "FANOUT", 3)
