@@ -36,8 +36,6 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import suppress
 
-import orjson
-
 from service.engine import Engine, PreparedBatch
 from service.publish import take_snapshot
 from service.errors import JournalUnavailable, NotReady, Overloaded
@@ -46,11 +44,11 @@ from service.events import Event
 from service.storage.guard import StorageGuard
 from service.storage.health import storage_fault
 from service.feeds.ndjson_body import BodyParser, ParsedBody, available as columnar_available
-from service.storage.journal import LINES, NOTE, ROLLBACK, Journal
-from service.ingest_queue import Item, Receipt, background_thread, slice_batch
+from service.storage.journal import Journal
+from service.ingest_queue import Item, Receipt, background_thread, journal_items, slice_batch
 from service.startup import recover
 from service.storage.recovery import encode_event, serving_view
-from service.storage.seen import id_key, number_events
+from service.storage.seen import id_key
 from service.warmup import STARTING
 
 __all__ = ["Ingestor", "Item", "Receipt", "background_thread", "encode_event"]
@@ -188,37 +186,8 @@ class Ingestor:
 
     # ---------------------------------------------------------------- stage 1: journal commit
     def _commit(self, items: list[Item]) -> None:
-        """On the journal thread: deduplicate against the whole history, number and commit the items'
-        rows and their id keys in one transaction. The first occurrence of an id in queue order wins.
-
-        A parsed body becomes one row of its new events' lines (kind ``LINES``, ``seq`` its last
-        position); other items one row per event."""
-        keys = [it.keys() for it in items]
-        wanted = set().union(*keys)
-        wanted.discard(None)
-        known = self.journal.known(list(wanted))
-        parts, pairs, seq = [], [], self._next_seq
-        for it, ks in zip(items, keys):
-            dups, new = number_events(ks, known, seq)
-            it.receipt.numbered(seq, len(ks), dups)
-            keep = it.receipt.kept()  # None: every event is new (the common case)
-            count = len(ks) - len(dups)
-            if count and it.body is not None:
-                parts.append((seq + count - 1, None, LINES, it.body.lines(keep)))
-            elif count:
-                events, payloads = it.events, it.payloads
-                if keep is not None:
-                    events, payloads = [events[k] for k in keep], [payloads[k] for k in keep]
-                parts.append((seq, [e.id for e in events], payloads))
-            seq += count
-            pairs += new
-            if it.note is not None or (it.action and it.action[0] == "rollback"):
-                kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
-                parts.append((seq, None, kind, orjson.dumps(body)))
-                it.receipt.extra_seq = seq
-                seq += 1
-        self.journal.append(parts, pairs)
-        self._next_seq = seq
+        """On the journal thread: number and commit the items (:func:`journal_items`)."""
+        self._next_seq = journal_items(self.journal, items, self._next_seq)
 
     async def _committer(self) -> None:
         loop = asyncio.get_running_loop()

@@ -3,7 +3,8 @@
 An :class:`Item` is one request's events (or its NDJSON body parsed into columns) with an optional
 rejection note and operator action; its :class:`Receipt` says what became of each event (journal
 position or duplicate). :func:`slice_batch` cuts a prepared batch into the learner's slices;
-:func:`background_thread` lowers a worker thread below the event loop's.
+:func:`background_thread` lowers a worker thread below the event loop's; :func:`journal_items`
+numbers and commits a chunk of items.
 """
 
 from __future__ import annotations
@@ -13,13 +14,16 @@ import os
 import threading
 from contextlib import suppress
 
+import orjson
+
 from models import Rows
 
 from service.engine import PreparedBatch
 from service.feeds.ndjson_body import ParsedBody
-from service.storage.seen import id_key
+from service.storage.journal import LINES, NOTE, ROLLBACK, Journal
+from service.storage.seen import id_key, number_events
 
-__all__ = ["Item", "Receipt", "background_thread", "slice_batch"]
+__all__ = ["Item", "Receipt", "background_thread", "journal_items", "slice_batch"]
 
 
 def slice_batch(batch: PreparedBatch, lo: int, hi: int) -> PreparedBatch:
@@ -110,3 +114,38 @@ class Item:
 
     def weight(self) -> int:
         return max(1, self.size())
+
+
+def journal_items(journal: Journal, items: list[Item], first_seq: int) -> int:
+    """On the journal thread: deduplicate ``items`` against the whole history, number them from
+    ``first_seq`` and commit their rows and id keys in one transaction; return the next position.
+    The first occurrence of an id in queue order wins.
+
+    A parsed body becomes one row of its new events' lines (kind ``LINES``, ``seq`` its last
+    position); other items one row per event."""
+    keys = [it.keys() for it in items]
+    wanted = set().union(*keys)
+    wanted.discard(None)
+    known = journal.known(list(wanted))
+    parts, pairs, seq = [], [], first_seq
+    for it, ks in zip(items, keys):
+        dups, new = number_events(ks, known, seq)
+        it.receipt.numbered(seq, len(ks), dups)
+        keep = it.receipt.kept()  # None: every event is new (the common case)
+        count = len(ks) - len(dups)
+        if count and it.body is not None:
+            parts.append((seq + count - 1, None, LINES, it.body.lines(keep)))
+        elif count:
+            events, payloads = it.events, it.payloads
+            if keep is not None:
+                events, payloads = [events[k] for k in keep], [payloads[k] for k in keep]
+            parts.append((seq, [e.id for e in events], payloads))
+        seq += count
+        pairs += new
+        if it.note is not None or (it.action and it.action[0] == "rollback"):
+            kind, body = (NOTE, it.note) if it.note is not None else (ROLLBACK, {"reason": it.action[1]})
+            parts.append((seq, None, kind, orjson.dumps(body)))
+            it.receipt.extra_seq = seq
+            seq += 1
+    journal.append(parts, pairs)
+    return seq

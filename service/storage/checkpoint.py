@@ -26,7 +26,7 @@ import struct
 
 from models import SnapshotError
 
-__all__ = ["FORMAT_VERSION", "MAGIC", "CheckpointFormatError", "read_sections", "write_sections"]
+__all__ = ["FORMAT_VERSION", "MAGIC", "Checkpoint", "CheckpointFormatError", "read_sections", "write_sections"]
 
 MAGIC = b"TRIMTAB-CHECKPOINT\n"
 #: 1: sections meta, model, counters, baseline, trace and (with a monitor) monitor;
@@ -97,3 +97,12 @@ def read_sections(blob: bytes, required: set[str], optional: frozenset[str] = fr
         raise CheckpointFormatError(f"checkpoint sections do not match version {FORMAT_VERSION}: missing "
                                     f"{sorted(missing)}, unknown {sorted(unknown)}")
     return out
+
+
+class Checkpoint(tuple):
+    """``(id, seq, created, digest, state_digest, size)`` of a checkpoint stored in the journal file."""
+
+    __slots__ = ()
+
+    def as_dict(self) -> dict:
+        return dict(zip(("id", "seq", "created", "digest", "state_digest", "bytes"), self))

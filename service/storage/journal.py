@@ -69,6 +69,7 @@ from service.config_common import ConfigError, fingerprint
 from service.storage import seen
 from service.storage.dirlock import DataDirLock
 from service.storage.health import scan_wal, storage_fault
+from service.storage.checkpoint import Checkpoint
 from service.storage.keyfilter import KeyFilter
 
 __all__ = ["EVENT", "JOURNAL_FORMAT", "LINES", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable",
@@ -116,15 +117,6 @@ def first_position(row: tuple) -> int:
     return row[0] - positions(row) + 1
 
 
-class Checkpoint(tuple):
-    """``(id, seq, created, digest, state_digest, size)`` of a stored checkpoint."""
-
-    __slots__ = ()
-
-    def as_dict(self) -> dict:
-        return dict(zip(("id", "seq", "created", "digest", "state_digest", "bytes"), self))
-
-
 class Journal:
     """The SQLite file ``data_dir/trimtab.sqlite``.
 
@@ -156,7 +148,7 @@ class Journal:
         self.open_damage: str | None = None
         #: merge slices of the index owed and not yet moved (:meth:`merge_step`; seen.OWED_LIMIT)
         self.owed_steps = 0
-        self._merging = False  # only merges under way owe slices
+        self.merging = False  #: whether a merge of the index is under way (merge_step has work)
         try:
             self._open(sync)
         except sqlite3.DatabaseError as exc:
@@ -215,17 +207,8 @@ class Journal:
         self._buffer = seen.load_buffer(self._db)  # the unindexed tail of the index, mirrored in memory
         if "journal" in tables and "seen" not in tables:
             self._index_retained_ids()
-        self._merging = seen.merges_under_way(self._db) > 0
-        self._filter = self._key_filter()
-
-    def _key_filter(self) -> KeyFilter:
-        """A Bloom filter of every key in the index (legacy table, sorted runs and buffer), sized at open
-        for twice as many (it keeps that size while the file is open; see :mod:`service.storage.keyfilter`)."""
-        keys = KeyFilter.sized_for(seen.indexed_count(self._db) + len(self._buffer))
-        for batch in seen.indexed_keys(self._db):
-            keys.add(batch)
-        keys.add(list(self._buffer))
-        return keys
+        self.merging = seen.merges_under_way(self._db) > 0
+        self._filter = seen.key_filter(self._db, self._buffer)
 
     def _index_retained_ids(self) -> None:
         """A journal written before the ``seen`` table existed: index the ids it still holds."""
@@ -348,7 +331,7 @@ class Journal:
                                    zip(range(first, first + len(payloads)), ids, payloads))
                 else:
                     db.execute("INSERT INTO journal VALUES (?, ?, ?, ?)", part)
-            owed = self.owed_steps + (seen.steps_owed(len(self._buffer), len(keys)) if self._merging else 0)
+            owed = self.owed_steps + (seen.steps_owed(len(self._buffer), len(keys)) if self.merging else 0)
             steps = max(0, owed - seen.OWED_LIMIT)  # the rest is moved while the thread is idle
             moved = seen.insert_keys(db, self._buffer, keys, steps)
             if moved:  # the first sorted run: the versions before could not read the file any more
@@ -358,18 +341,13 @@ class Journal:
         moved, fmt, owed = self._transaction(body)
         with self._lock:  # only once the keys are committed: the filter must never hold back a key
             self._format, self.owed_steps = fmt, owed
-            self._merging = self._merging or moved  # a new run may have started a merge
+            self.merging = self.merging or moved  # a new run may have started a merge
             added = list(map(itemgetter(0), keys))
             if moved:
                 self._buffer = set()
             else:
                 self._buffer.update(added)
             self._filter.add(added)
-
-    @property
-    def merging(self) -> bool:
-        """Whether a merge of the index is under way (:meth:`merge_step` has work)."""
-        return self._merging
 
     def merge_step(self) -> None:
         """Move the next slice of every merge of the index under way, in a transaction of its own: the
@@ -378,7 +356,7 @@ class Journal:
         left = self._transaction(lambda db: seen.advance_merges(db, 1))
         with self._lock:
             self.owed_steps = max(0, self.owed_steps - 1) if left else 0
-            self._merging = left
+            self.merging = left
 
     def rows_after(self, seq: int, limit: int = 5000) -> list[tuple]:
         """The rows with a position above ``seq``, in order, until they stand for ``limit`` positions

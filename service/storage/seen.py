@@ -77,8 +77,10 @@ from operator import itemgetter
 import numpy as np
 import orjson
 
+from service.storage.keyfilter import KeyFilter
+
 __all__ = ["BUFFER_KEYS", "FANOUT", "OWED_LIMIT", "SCHEMA", "SLICE_KEYS", "STEP_EVERY", "TOP_LEVEL", "advance_merges",
-           "buffered_count", "id_key", "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "known_keys",
+           "buffered_count", "id_key", "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "key_filter", "known_keys",
            "last_position", "load_buffer", "merges_under_way", "number_events", "run_levels", "steps_owed"]
 
 SCHEMA = ("CREATE TABLE IF NOT EXISTS seen (h BLOB PRIMARY KEY, seq INTEGER NOT NULL) WITHOUT ROWID;\n"
@@ -158,6 +160,16 @@ def indexed_keys(db: sqlite3.Connection, batch: int = 65_536):
         cur = db.execute(f"SELECT h FROM {table}")
         while rows := cur.fetchmany(batch):
             yield [r[0] for r in rows]
+
+
+def key_filter(db: sqlite3.Connection, buffer: set[bytes]) -> KeyFilter:
+    """A Bloom filter of every key in the index (legacy table, sorted runs and ``buffer``), sized for
+    twice as many (it keeps that size while the file is open; see :mod:`service.storage.keyfilter`)."""
+    keys = KeyFilter.sized_for(indexed_count(db) + len(buffer))
+    for batch in indexed_keys(db):
+        keys.add(batch)
+    keys.add(list(buffer))
+    return keys
 
 
 def last_position(db: sqlite3.Connection) -> int:
