@@ -215,8 +215,8 @@ class Ingestor:
         time until none is left, and hand each committed chunk straight to the learner's thread.
 
         Items queued while a chunk commits are taken here without a round trip through the event
-        loop; the two single-thread executors keep commit order and learning order the same. Only the
-        event loop pops nothing: it appends (:meth:`submit`), this thread pops."""
+        loop; the two single-thread executors keep commit order and learning order the same. The event
+        loop only appends to the queue (:meth:`submit`); only this thread pops from it."""
         while self._pending:
             items, n = [], 0
             while self._pending and (not items or n + self._pending[0].size() <= self._chunk):
