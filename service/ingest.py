@@ -185,10 +185,6 @@ class Ingestor:
         return item
 
     # ---------------------------------------------------------------- stage 1: journal commit
-    def _commit(self, items: list[Item]) -> None:
-        """On the journal thread: number and commit the items (:func:`journal_items`)."""
-        self._next_seq = journal_items(self.journal, items, self._next_seq)
-
     async def _committer(self) -> None:
         loop = asyncio.get_running_loop()
         while True:
@@ -225,7 +221,7 @@ class Ingestor:
                 n += it.size()
             start = time.perf_counter()
             try:
-                self._commit(items)
+                self._next_seq = journal_items(self.journal, items, self._next_seq)
             except Exception as exc:
                 loop.call_soon_threadsafe(self._commit_failed, items, exc)
                 continue

@@ -39,10 +39,10 @@ defaults (buffer 65,536, fan-out 4, top level 2, slices of 4,096 keys, a step pe
 * every key is written three times in the index (into a level-0 run, a level-1 run, a top run),
   whatever the history: the write amplification is the number of levels (plus the buffer);
 * the largest merge rewrites ``FANOUT ** TOP_LEVEL * BUFFER_KEYS`` keys (1,048,576: the top runs
-  hold about 1M keys), but no transaction moves more than one slice of each merge under way (at
-  most one per level below the top) unless the journal thread fell :data:`OWED_LIMIT` slices behind,
-  and a commit carries, one commit in 131 at 500 keys per commit, the flush of the buffer (65,536
-  keys sorted and written). A merge moves two slices per ``SLICE_KEYS``
+  hold about 1M keys), but an idle step moves one slice of each merge under way (at most one per
+  level below the top), a commit at most the slices its own keys owe (one per :data:`STEP_EVERY`)
+  and only once :data:`OWED_LIMIT` are owed, and one commit in 131 at 500 keys per commit carries
+  the flush of the buffer (65,536 keys sorted and written). A merge moves two slices per ``SLICE_KEYS``
   new keys, so it ends in half the time before the next merge of its level is due (one that is
   still under way then is finished at once, which only a burst of very large commits can cause);
 * a lookup of a key the Bloom filter does not rule out probes every run by primary key: at most
@@ -80,8 +80,9 @@ import orjson
 from service.storage.keyfilter import KeyFilter
 
 __all__ = ["BUFFER_KEYS", "FANOUT", "OWED_LIMIT", "SCHEMA", "SLICE_KEYS", "STEP_EVERY", "TOP_LEVEL", "advance_merges",
-           "buffered_count", "id_key", "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "key_filter", "known_keys",
-           "last_position", "load_buffer", "merges_under_way", "number_events", "run_levels", "steps_owed"]
+           "buffered_count", "id_key", "index_pairs", "indexed_count", "indexed_keys", "insert_keys", "key_filter",
+           "known_keys", "last_position", "load_buffer", "merges_under_way", "number_events", "run_levels",
+           "steps_owed"]
 
 SCHEMA = ("CREATE TABLE IF NOT EXISTS seen (h BLOB PRIMARY KEY, seq INTEGER NOT NULL) WITHOUT ROWID;\n"
           "CREATE TABLE IF NOT EXISTS seen_new (h BLOB NOT NULL, seq INTEGER NOT NULL);\n"
