@@ -87,7 +87,7 @@ def run_stream(x: np.ndarray, y: np.ndarray, name: str, monitor: dict | None = N
     n, d = x.shape
     config = config_from_dict({"name": "drift-study", "features": {"numeric": [f"x{j}" for j in range(d)]},
                                "monitor": monitor or {}})
-    engine = Engine(config, trace_limit=0)
+    engine = Engine(config, trace_limit=0, incidents_kept=None)
     share = config.monitor.holdout_share
     ids = [f"{name}-{i}" for i in range(n)]
     held = np.array([holdout_fraction(i) < share for i in ids])

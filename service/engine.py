@@ -42,9 +42,12 @@ from service.storage.checkpoint import CheckpointFormatError, read_sections, wri
 if TYPE_CHECKING:
     from service.config import Config
 
-__all__ = ["Applied", "Engine", "PreparedBatch", "STATE_COUNTERS", "holdout_fraction"]
+__all__ = ["INCIDENTS_KEPT", "Applied", "Engine", "PreparedBatch", "STATE_COUNTERS", "holdout_fraction"]
 
 _TWO64 = float(2**64)
+#: most incidents a live engine's monitor keeps (the newest; a replay keeps all): the same cap as the
+#: service's own incidents, so ``GET /v1/incidents`` shows as many of each
+INCIDENTS_KEPT = 1000
 _BASELINE_WORDS = {False: "the running mean of the target", True: "the base rate"}
 
 
@@ -97,12 +100,15 @@ class Engine:
         The validated config.
     trace_limit
         How many check records to keep for plots and the dashboard (``None``: all, for replay).
+    incidents_kept
+        How many of its newest incidents the monitor keeps (``None``: all, for replay).
     """
 
-    def __init__(self, config: Config, *, trace_limit: int | None = 10_000) -> None:
+    def __init__(self, config: Config, *, trace_limit: int | None = 10_000,
+                 incidents_kept: int | None = INCIDENTS_KEPT) -> None:
         self.config = config
         self.model = LinearModel(config.model_spec())
-        self.monitor = Monitor(config.monitor, self.model) if config.monitor.enabled else None
+        self.monitor = Monitor(config.monitor, self.model, incidents_kept) if config.monitor.enabled else None
         self.validator = EventValidator(config)
         self._share = config.monitor.holdout_share if config.monitor.enabled else 0.0
         self._check_every = config.monitor.check_every

@@ -36,7 +36,7 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import suppress
 
-from service.engine import Engine, PreparedBatch
+from service.engine import INCIDENTS_KEPT, Engine, PreparedBatch
 from service.publish import take_snapshot
 from service.errors import JournalUnavailable, NotReady, Overloaded
 from service.monitor.rules import step_scale_change
@@ -62,7 +62,7 @@ class Ingestor:
     def __init__(self, config, journal: Journal, metrics) -> None:
         svc = config.service
         self.config, self.journal, self.metrics = config, journal, metrics
-        self.incidents: deque[dict] = deque(maxlen=1000)   # service incidents (the engine keeps its own)
+        self.incidents: deque[dict] = deque(maxlen=INCIDENTS_KEPT)  # service incidents (the engine keeps its own)
         self.engine: Engine | None = None
         #: what /v1/score reads: see :func:`serving_view` (replaced whole, never changed in place)
         self.view: tuple | None = None
@@ -71,6 +71,8 @@ class Ingestor:
         self.applied_seq = self.checkpoint_seq = self.queued_events = 0
         self._limit, self._slice, self._chunk = svc.queue_limit, svc.apply_slice, svc.chunk_events
         self._every, self._keep, self._prune = svc.checkpoint_every, svc.checkpoints_kept, svc.prune_journal
+        self._min_gap = svc.checkpoint_min_interval_s
+        self._checkpoint_due_at = -math.inf  # monotonic time before which no periodic checkpoint starts
         self._pending: deque[Item] = deque()
         self._merge_retry_at = 0.0           # monotonic time before which no idle merge step is tried
         self._wake = asyncio.Event()
@@ -339,8 +341,9 @@ class Ingestor:
             self._background.add(fut)
             fut.add_done_callback(self._background.discard)
             return
-        if self.applied_seq - self.checkpoint_seq >= self._every:
+        if self.applied_seq - self.checkpoint_seq >= self._every and time.monotonic() >= self._checkpoint_due_at:
             self.checkpoint_seq = self.applied_seq  # one checkpoint per period, even while it is written
+            self._checkpoint_due_at = time.monotonic() + self._min_gap
             fut = asyncio.ensure_future(self.checkpoint())
             self._background.add(fut)
             fut.add_done_callback(self._background_done)

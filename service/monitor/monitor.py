@@ -19,6 +19,7 @@ far from both iterates, so it says nothing about which is better) and losses tha
 from __future__ import annotations
 
 import math
+from collections import deque
 from dataclasses import asdict
 from typing import TYPE_CHECKING
 
@@ -51,9 +52,9 @@ class Monitor:
 
     The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events, and
     adopts the model :meth:`take_restored` returns after a rollback. ``incidents``: ``{kind, event, ts,
-    reason, evidence}``."""
+    reason, evidence}``, the newest ``incident_limit`` of them (``None``: every one)."""
 
-    def __init__(self, cfg: MonitorConfig, model: LinearModel) -> None:
+    def __init__(self, cfg: MonitorConfig, model: LinearModel, incident_limit: int | None = None) -> None:
         self.cfg, spec = cfg, model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self._ball = spec.constraint_set.kind == "ball"
@@ -66,7 +67,9 @@ class Monitor:
         self._detector = ChangeDetector(cfg.drift, **params[cfg.drift]) if cfg.drift in params else None
         self._trusted, self._trusted_event = None, None  # the trusted copy and the event it was taken at
         self._restored: LinearModel | None = None  # what the last rollback restored, until the engine takes it
-        self.incidents: list[dict] = []
+        #: the newest ``incident_limit`` incidents (``None``: all, as a replay keeps them); a service that runs
+        #: for months on a drifting feed must not carry every one in memory and in every checkpoint
+        self.incidents: deque[dict] = deque(maxlen=incident_limit)
 
     @property
     def serving(self) -> str:
@@ -246,7 +249,7 @@ class Monitor:
         fields, fed = self._detector.state() if self._detector is not None else ({}, np.zeros(0))
         trusted = self._trusted.to_bytes() if self._trusted is not None else b""
         header = {"format": "monitor-state", "layout": LAYOUT, "rules": asdict(self.state), "detector": fields,
-                  "trusted_event": self._trusted_event, "incidents": self.incidents}
+                  "trusted_event": self._trusted_event, "incidents": list(self.incidents)}
         arrays = {**self.window.to_arrays(), "detector_fed": fed, "trusted": np.frombuffer(trusted, dtype=np.uint8)}
         return pack(header, arrays, {})[0]
 
@@ -263,6 +266,7 @@ class Monitor:
         if self._detector is not None:
             self._detector.load_state(header["detector"], arrays["detector_fed"])
         self.window.load_arrays(arrays)
-        self.state, self.incidents, self._restored = RuleState(**header["rules"]), header["incidents"], None
+        self.state, self._restored = RuleState(**header["rules"]), None
+        self.incidents = deque(header["incidents"], maxlen=self.incidents.maxlen)
         trusted, self._trusted_event = arrays["trusted"].tobytes(), header["trusted_event"]
         self._trusted = LinearModel.from_bytes(trusted) if trusted else None

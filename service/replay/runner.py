@@ -135,7 +135,7 @@ def run_replay(feeds, config: Config, *, columnar: bool = True, workers: int = 0
     from service.model_file import model_file
     from service.idhash import IdSet
 
-    engine = Engine(config, trace_limit=None)
+    engine = Engine(config, trace_limit=None, incidents_kept=None)
     bucket = engine.model.mapper.bucket
     feeds = [str(f) for f in feeds]
     seen = IdSet(capacity=_expected_events(feeds))

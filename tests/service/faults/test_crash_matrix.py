@@ -49,7 +49,7 @@ def _in_thread(call, out: dict) -> threading.Thread:
 
 def test_sigkill_at_seven_points_keeps_exactly_once(tmp_path):
     data = tmp_path / "data"
-    cfg, conf = write_config(tmp_path, data, checkpoint_every=900, checkpoints_kept=2, prune_journal=False,
+    cfg, conf = write_config(tmp_path, data, checkpoint_every=900, checkpoint_min_interval_s=0.0, checkpoints_kept=2, prune_journal=False,
                              hash_bits=16)  # a state of several MB: its write spills pages before COMMIT
     db_path = data / "trimtab.sqlite"
     events = demo_events(6000, tag="m")

@@ -18,7 +18,7 @@ from tests.service.servicekit import demo_events
 
 def test_a_batch_resent_after_100k_events_is_all_duplicates(tmp_path):
     data = tmp_path / "data"
-    _, conf = write_config(tmp_path, data, checkpoint_every=5000, checkpoints_kept=2, max_batch=20_000)
+    _, conf = write_config(tmp_path, data, checkpoint_every=5000, checkpoint_min_interval_s=0.0, checkpoints_kept=2, max_batch=20_000)
     first = demo_events(1000, tag="retry-")
     server = start(conf)
     client = Client(server.url)

@@ -84,7 +84,7 @@ def _corrupt_checkpoints(db_path, which: str) -> list[int]:
 def test_corrupt_checkpoints_rebuild_from_a_whole_journal_or_refuse_to_serve(tmp_path):
     # whole history kept: every checkpoint corrupt -> the model is rebuilt from the journal, exactly
     data = tmp_path / "whole"
-    cfg, conf = write_config(tmp_path, data, checkpoint_every=400, prune_journal=False)
+    cfg, conf = write_config(tmp_path, data, checkpoint_every=400, checkpoint_min_interval_s=0.0, prune_journal=False)
     server = start(conf)
     _fill(Client(server.url), 1500, "w-")
     assert server.stop() == 0
@@ -109,7 +109,7 @@ def test_corrupt_checkpoints_rebuild_from_a_whole_journal_or_refuse_to_serve(tmp
 
     # a pruned journal: no checkpoint to start from and no whole history -> not ready, with the reason
     data = tmp_path / "pruned"
-    cfg, conf = write_config(tmp_path, data, checkpoint_every=400, checkpoints_kept=2)
+    cfg, conf = write_config(tmp_path, data, checkpoint_every=400, checkpoint_min_interval_s=0.0, checkpoints_kept=2)
     server = start(conf)
     acked = _fill(Client(server.url), 1500, "p-")
     assert server.stop() == 0

@@ -28,7 +28,7 @@ PROBE = {"ambient_c": 7.0, "door_open_s": 10, "van": "V02"}
 
 async def test_burst_gets_429_and_nothing_accepted_is_lost(aiohttp_client, tmp_path):
     limit = 1500
-    cfg = make_config(tmp_path, queue_limit=limit, chunk_events=500, apply_slice=128, checkpoint_every=5000)
+    cfg = make_config(tmp_path, queue_limit=limit, chunk_events=500, apply_slice=128, checkpoint_every=5000, checkpoint_min_interval_s=0.0)
     app = create_app(cfg, token=TOKEN)
     client = await aiohttp_client(app, headers=AUTH)
     await wait_ready(client)

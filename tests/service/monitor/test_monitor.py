@@ -36,7 +36,7 @@ CHANGE_AT = 40_000
 
 
 def engine(**monitor) -> Engine:
-    return Engine(config_from_dict(feeds.config_dict(**monitor)), trace_limit=None)
+    return Engine(config_from_dict(feeds.config_dict(**monitor)), trace_limit=None, incidents_kept=None)
 
 
 def apply(eng: Engine, s: feeds.Stream, lo: int, hi: int, chunk: int = 50_000) -> list:
@@ -373,3 +373,25 @@ def test_monitor_settings_are_validated():
     with pytest.raises(ConfigError) as err:
         config_from_dict(feeds.config_dict(drift="cusum"))
     assert err.value.where == "monitor.drift"
+
+
+def test_a_live_engine_keeps_its_newest_incidents_only():
+    """A service's engine keeps the newest ``INCIDENTS_KEPT`` incidents, in memory and through a
+    checkpoint; a replay's engine (``incidents_kept=None``) keeps every one."""
+    from service.engine import INCIDENTS_KEPT
+
+    cfg = config_from_dict(feeds.config_dict())
+    live, replay = Engine(cfg), Engine(cfg, trace_limit=None, incidents_kept=None)
+    bursts = INCIDENTS_KEPT + 25
+    for eng in (live, replay):
+        for k in range(bursts):  # each burst opens (all rejected), then closes (none rejected)
+            eng.note_rejected(600, 600, float(k))  # more than the rule's 500-event window each
+            eng.note_rejected(0, 600, None)
+    assert len(replay.incidents) == bursts
+    kept = live.incidents
+    assert len(kept) == INCIDENTS_KEPT
+    assert [i["ts"] for i in kept] == [float(k) for k in range(25, bursts)]  # the newest, oldest first
+    restored = Engine.from_bytes(cfg, live.to_bytes())
+    assert restored.incidents == kept
+    restored.note_rejected(600, 600, 9e9)
+    assert len(restored.incidents) == INCIDENTS_KEPT and restored.incidents[-1]["ts"] == 9e9

@@ -7,6 +7,7 @@ over the acknowledged events, in the order the journal (read with the standard l
 
 from __future__ import annotations
 
+import asyncio
 import random
 import re
 import sqlite3
@@ -52,7 +53,7 @@ def test_sigkill_at_random_moments_loses_and_repeats_nothing(tmp_path):
     """A ``trimtab serve`` subprocess gets a seeded feed in batches and is SIGKILLed at 6 random
     moments (some while a batch is in flight); the producer retries unacknowledged batches."""
     rng = random.Random(20261201)
-    cfg = make_config(tmp_path / "data", checkpoint_every=700, checkpoints_kept=2, prune_journal=False)
+    cfg = make_config(tmp_path / "data", checkpoint_every=700, checkpoint_min_interval_s=0.0, checkpoints_kept=2, prune_journal=False)
     conf = tmp_path / "serve.toml"
     conf.write_text(toml_text(cfg))
     events = demo_events(4200, tag="k")
@@ -131,7 +132,7 @@ def _safe_post(url, batch, ndjson, result: dict) -> None:
 
 @pytest.mark.asyncio
 async def test_corrupt_and_truncated_checkpoints_fall_back_with_incidents(aiohttp_client, tmp_path):
-    cfg = make_config(tmp_path, checkpoint_every=250, checkpoints_kept=3)
+    cfg = make_config(tmp_path, checkpoint_every=250, checkpoint_min_interval_s=0.0, checkpoints_kept=3)
     events = demo_events(1000)
     client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
     await wait_ready(client)
@@ -162,6 +163,32 @@ async def test_corrupt_and_truncated_checkpoints_fall_back_with_incidents(aiohtt
     bad = [i for i in incidents if i["kind"] == "corrupt_checkpoint"]
     assert [i["evidence"]["seq"] for i in bad] == [1000, 900]
     assert all("SHA-256 digest does not match" in i["reason"] for i in bad)
+
+
+@pytest.mark.asyncio
+async def test_periodic_checkpoints_wait_for_the_minimum_interval(aiohttp_client, tmp_path):
+    """``checkpoint_every`` counts journal positions, ``checkpoint_min_interval_s`` holds the next periodic
+    checkpoint back in time: ten requests of 100 events past a 100-event period give one checkpoint
+    under a 600 s floor (the first period), ten without one; the model is the same either way."""
+    events = demo_events(1000)
+    counts = {}
+    for floor in (600.0, 0.0):
+        data = tmp_path / f"floor-{floor:g}"
+        cfg = make_config(data, checkpoint_every=100, checkpoint_min_interval_s=floor, checkpoints_kept=20)
+        client = await aiohttp_client(create_app(cfg, token=TOKEN), headers=AUTH)
+        await wait_ready(client)
+        for i in range(0, 1000, 100):
+            assert (await (await client.post("/v1/events", json=events[i:i + 100])).json())["accepted"] == 100
+        for _ in range(200):  # a periodic checkpoint is written after its item is answered
+            listed = (await (await client.get("/v1/checkpoints")).json())["checkpoints"]
+            if floor or len(listed) == 10:
+                break
+            await asyncio.sleep(0.05)
+        counts[floor] = sorted(c["seq"] for c in listed)
+        assert (await (await client.get("/v1/model")).json())["state_digest"] == reference_digest(cfg, events)
+        await client.close()
+    assert counts[600.0] == [100]
+    assert counts[0.0] == [100 * k for k in range(1, 11)]
 
 
 @pytest.mark.asyncio
