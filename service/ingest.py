@@ -341,9 +341,10 @@ class Ingestor:
             self._background.add(fut)
             fut.add_done_callback(self._background.discard)
             return
-        if self.applied_seq - self.checkpoint_seq >= self._every and time.monotonic() >= self._checkpoint_due_at:
+        now = time.monotonic()
+        if self.applied_seq - self.checkpoint_seq >= self._every and now >= self._checkpoint_due_at:
             self.checkpoint_seq = self.applied_seq  # one checkpoint per period, even while it is written
-            self._checkpoint_due_at = time.monotonic() + self._min_gap
+            self._checkpoint_due_at = now + self._min_gap
             fut = asyncio.ensure_future(self.checkpoint())
             self._background.add(fut)
             fut.add_done_callback(self._background_done)

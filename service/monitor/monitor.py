@@ -52,9 +52,9 @@ class Monitor:
 
     The engine calls :meth:`hold_out` per batch, :meth:`check` every ``check_every`` learned events, and
     adopts the model :meth:`take_restored` returns after a rollback. ``incidents``: ``{kind, event, ts,
-    reason, evidence}``, the newest ``incident_limit`` of them (``None``: every one)."""
+    reason, evidence}``, the newest ``incidents_kept`` of them (``None``: every one)."""
 
-    def __init__(self, cfg: MonitorConfig, model: LinearModel, incident_limit: int | None = None) -> None:
+    def __init__(self, cfg: MonitorConfig, model: LinearModel, incidents_kept: int | None = None) -> None:
         self.cfg, spec = cfg, model.spec
         self._radius = spec.constraint_set.radius_from_start(spec.dim() + (1 if spec.fit_intercept else 0))
         self._ball = spec.constraint_set.kind == "ball"
@@ -67,9 +67,9 @@ class Monitor:
         self._detector = ChangeDetector(cfg.drift, **params[cfg.drift]) if cfg.drift in params else None
         self._trusted, self._trusted_event = None, None  # the trusted copy and the event it was taken at
         self._restored: LinearModel | None = None  # what the last rollback restored, until the engine takes it
-        #: the newest ``incident_limit`` incidents (``None``: all, as a replay keeps them); a service that runs
+        #: the newest ``incidents_kept`` incidents (``None``: all, as a replay keeps them); a service that runs
         #: for months on a drifting feed must not carry every one in memory and in every checkpoint
-        self.incidents: deque[dict] = deque(maxlen=incident_limit)
+        self.incidents: deque[dict] = deque(maxlen=incidents_kept)
 
     @property
     def serving(self) -> str:
