@@ -36,7 +36,7 @@ from service.baseline import Baseline
 from service.events import Event, EventValidator
 from service.idhash import HOLDOUT_PREFIX
 from service.monitor.monitor import Monitor
-from service.state_json import TraceJson, exact, unexact, untagged
+from service.state_json import TraceJson, exact, tagged, unexact, untagged
 from service.storage.checkpoint import CheckpointFormatError, read_sections, write_sections
 
 if TYPE_CHECKING:
@@ -340,11 +340,12 @@ class Engine:
                 "baseline_progressive_loss": self.baseline.progressive_loss}
 
     # ---------------------------------------------------------------- state
-    def to_bytes(self, *, position: int | None = None) -> bytes:
+    def to_bytes(self, *, position: int | None = None, trace: bool = True) -> bytes:
         """The engine as a checkpoint (:mod:`service.storage.checkpoint`, no pickle): the model
         snapshot, the monitor's own bytes, counters and trace as JSON; ``position`` is the journal
         position it was taken at (recorded in the ``meta`` section). :meth:`from_bytes` restores an
-        engine that continues identically."""
+        engine that continues identically. Without ``trace`` the trace section is empty (the service
+        stores its records beside the checkpoints, :meth:`trace_rows`)."""
         sections = {
             "meta": orjson.dumps({"state": "engine", "position": position, "counters": list(STATE_COUNTERS),
                                   "monitor": self.monitor is not None}),
@@ -352,12 +353,29 @@ class Engine:
             "counters": orjson.dumps({k: exact(getattr(self, k)) for k in STATE_COUNTERS}),
             "baseline": orjson.dumps({k: [exact(x) for x in v] if isinstance(v, list) else exact(v)
                                       for k, v in self.baseline.state().items()}),
-            "trace": self._trace_json(self.trace),
+            "trace": self._trace_json(self.trace) if trace else b"[]",
             "metrics": orjson.dumps({"binary": _tally_state(self._tally)}),
         }
         if self.monitor is not None:
             sections["monitor"] = self.monitor.to_bytes()
         return write_sections(sections)
+
+    def trace_rows(self, after: int) -> list[tuple[int, bytes]]:
+        """The check records made after event ``after``, oldest first, each as ``(event, its exact JSON)``:
+        what a checkpoint without its trace leaves to be stored beside it."""
+        rows = []
+        for r in reversed(self.trace):
+            if r["event"] <= after:
+                break
+            rows.append((r["event"], orjson.dumps(tagged(r), option=orjson.OPT_SERIALIZE_NUMPY)))
+        return rows[::-1]
+
+    def load_trace(self, records: list[bytes]) -> None:
+        """Put stored check records (:meth:`trace_rows`' JSON, oldest first) before the trace's own."""
+        own = list(self.trace)
+        self.trace.clear()
+        self.trace.extend(untagged(orjson.loads(r)) for r in records)
+        self.trace.extend(own)
 
     @classmethod
     def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:

@@ -73,6 +73,7 @@ class Ingestor:
         self._every, self._keep, self._prune = svc.checkpoint_every, svc.checkpoints_kept, svc.prune_journal
         self._min_gap = svc.checkpoint_min_interval_s
         self._checkpoint_due_at = -math.inf  # monotonic time before which no periodic checkpoint starts
+        self._checks_stored = -1  # the newest check record stored beside a checkpoint (the first stores all)
         self._pending: deque[Item] = deque()
         self._merge_retry_at = 0.0           # monotonic time before which no idle merge step is tried
         self._wake = asyncio.Event()
@@ -387,11 +388,15 @@ class Ingestor:
 
         def snapshot():
             with self.lock:  # the position and the state under one lock: the position is the state's
-                return self.applied_seq, self.engine.to_bytes(position=self.applied_seq), self.engine.state_digest
+                eng = self.engine  # its check records are stored beside the checkpoint, each once
+                return (self.applied_seq, eng.to_bytes(position=self.applied_seq, trace=False), eng.state_digest,
+                        (eng.trace_rows(self._checks_stored), eng.trace.maxlen))
 
-        seq, blob, digest = await self.learn(snapshot)
+        seq, blob, digest, checks = await self.learn(snapshot)
         self.checkpoint_seq = max(self.checkpoint_seq, seq)
-        ck, _ = await self.db(self.journal.write_checkpoint, seq, blob, digest, self._keep, self._prune)
+        ck, _ = await self.db(self.journal.write_checkpoint, seq, blob, digest, self._keep, self._prune, checks)
+        if checks[0]:
+            self._checks_stored = max(self._checks_stored, checks[0][-1][0])
         self.metrics.checkpoints.inc()
         return ck.as_dict()
 

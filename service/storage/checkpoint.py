@@ -26,10 +26,12 @@ import struct
 
 from models import SnapshotError
 
-__all__ = ["FORMAT_VERSION", "MAGIC", "Checkpoint", "CheckpointFormatError", "read_sections", "write_sections"]
+__all__ = ["CHECKS_SCHEMA", "FORMAT_VERSION", "MAGIC", "Checkpoint", "CheckpointFormatError", "insert_checkpoint",
+           "load_checks", "read_sections", "store_checks", "write_sections"]
 
 MAGIC = b"TRIMTAB-CHECKPOINT\n"
-#: 1: sections meta, model, counters, baseline, trace and (with a monitor) monitor;
+#: 1: sections meta, model, counters, baseline, trace and (with a monitor) monitor (the service's checkpoints
+#: leave ``trace`` empty: their check records are rows of ``checks``, :func:`store_checks`);
 #: 2: a ``metrics`` section (the running binary metrics) and the counter ``nonfinite_losses``
 FORMAT_VERSION = 2
 
@@ -106,3 +108,44 @@ class Checkpoint(tuple):
 
     def as_dict(self) -> dict:
         return dict(zip(("id", "seq", "created", "digest", "state_digest", "bytes"), self))
+
+
+def insert_checkpoint(db, row: tuple, keep: int, prune: bool) -> tuple[int, int]:
+    """Insert ``row`` ``(seq, created, digest, state_digest, blob)`` into ``checkpoints``, keep the newest
+    ``keep`` and (``prune``) delete the journal rows up to the oldest kept one (recorded as ``pruned_to``).
+    Returns the new row's id and the position pruned to (0: none)."""
+    cur = db.execute("INSERT INTO checkpoints (seq, created, digest, state_digest, blob) VALUES (?, ?, ?, ?, ?)", row)
+    db.execute("DELETE FROM checkpoints WHERE id NOT IN (SELECT id FROM checkpoints ORDER BY id DESC LIMIT ?)",
+               (keep,))
+    oldest = db.execute("SELECT min(seq) FROM checkpoints").fetchone()[0] if prune else 0
+    if oldest > 0 and db.execute("SELECT 1 FROM journal WHERE seq <= ? LIMIT 1", (oldest,)).fetchone():
+        db.execute("DELETE FROM journal WHERE seq <= ?", (oldest,))
+        db.execute("INSERT INTO meta VALUES ('pruned_to', ?) ON CONFLICT (key) DO UPDATE SET "
+                   "value = max(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))", (str(oldest),))
+    return cur.lastrowid, oldest
+
+
+# --------------------------------------------------------------------------- check records beside checkpoints
+#: The service's check records (one per monitor check: the live page's series), each stored once, by
+#: the transaction of the first checkpoint after it: a checkpoint that carried them all would rewrite
+#: the same 4 MB every time once 10,000 are kept. ``record`` is the record's exact JSON
+#: (:func:`service.state_json.tagged`), ``event`` the index of the event it was made at.
+CHECKS_SCHEMA = "CREATE TABLE IF NOT EXISTS checks (event INTEGER PRIMARY KEY, record BLOB NOT NULL);\n"
+
+
+def store_checks(db, rows: list[tuple[int, bytes]], kept: int | None) -> None:
+    """Insert ``(event, record JSON)`` rows (a replayed journal makes the same records again: they
+    replace their twins) and keep the newest ``kept`` (``None``: all)."""
+    if not rows:
+        return
+    db.executemany("INSERT OR REPLACE INTO checks (event, record) VALUES (?, ?)", rows)
+    if kept:
+        db.execute("DELETE FROM checks WHERE event < (SELECT event FROM checks ORDER BY event DESC LIMIT 1 "
+                   "OFFSET ?)", (kept - 1,))
+
+
+def load_checks(db, upto: int, limit: int | None) -> list[bytes]:
+    """The record JSON of the newest ``limit`` rows (``None``: all) made at events up to ``upto``, oldest first."""
+    rows = db.execute("SELECT record FROM checks WHERE event <= ? ORDER BY event DESC LIMIT ?",
+                      (upto, -1 if limit is None else limit)).fetchall()
+    return [r[0] for r in reversed(rows)]

@@ -19,6 +19,8 @@ Tables:
   format of :mod:`service.storage.checkpoint` after applying every row up to ``seq``; ``digest`` is
   the SHA-256 of the blob, checked on load so a corrupt or truncated checkpoint is detected and an
   older one used.
+* ``checks(event, record)``: the check records of the service's engine (the live page's series),
+  each stored once beside the checkpoints (:func:`service.storage.checkpoint.store_checks`).
 * ``incidents`` (service incidents that must outlive a restart, such as a corrupt checkpoint) and
   ``meta`` (the fingerprint of the learning config the journal belongs to, ``pruned_to``: the
   last position deleted from ``journal``, absent while it holds the whole history, and
@@ -69,7 +71,7 @@ from service.config_common import ConfigError, fingerprint
 from service.storage import seen
 from service.storage.dirlock import DataDirLock
 from service.storage.health import scan_wal, storage_fault
-from service.storage.checkpoint import Checkpoint
+from service.storage.checkpoint import CHECKS_SCHEMA, Checkpoint, insert_checkpoint, load_checks, store_checks
 from service.storage.keyfilter import KeyFilter
 
 __all__ = ["EVENT", "JOURNAL_FORMAT", "LINES", "NOTE", "ROLLBACK", "Checkpoint", "Journal", "StorageUnavailable",
@@ -90,7 +92,7 @@ CREATE TABLE IF NOT EXISTS checkpoints (id INTEGER PRIMARY KEY AUTOINCREMENT, se
 CREATE TABLE IF NOT EXISTS incidents (n INTEGER PRIMARY KEY AUTOINCREMENT, ts REAL NOT NULL,
                                       kind TEXT NOT NULL, reason TEXT NOT NULL, evidence BLOB NOT NULL);
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-""" + seen.SCHEMA
+""" + CHECKS_SCHEMA + seen.SCHEMA
 
 
 class StorageUnavailable(TrimtabError):
@@ -384,24 +386,17 @@ class Journal:
             return self._db.execute("SELECT count(*) FROM journal").fetchone()[0]
 
     # ---------------------------------------------------------------- checkpoints
-    def write_checkpoint(self, seq: int, blob: bytes, state_digest: str, keep: int,
-                         prune: bool = True) -> tuple[Checkpoint, int]:
-        """Store a checkpoint, keep the newest ``keep`` and (``prune``) delete the journal rows up to the
-        oldest kept one, in one transaction. Returns the checkpoint and the position pruned to."""
+    def write_checkpoint(self, seq: int, blob: bytes, state_digest: str, keep: int, prune: bool = True,
+                         checks: tuple = ((), 0)) -> tuple[Checkpoint, int]:
+        """Store a checkpoint, keep the newest ``keep``, (``prune``) delete the journal rows up to the
+        oldest kept one and store ``checks`` (the new check records, how many to keep:
+        :func:`store_checks`), in one transaction. Returns the checkpoint and the position pruned to."""
         digest = hashlib.sha256(blob).hexdigest()
         created = time.time()
 
         def body(db):
-            cur = db.execute("INSERT INTO checkpoints (seq, created, digest, state_digest, blob) "
-                             "VALUES (?, ?, ?, ?, ?)", (seq, created, digest, state_digest, blob))
-            db.execute("DELETE FROM checkpoints WHERE id NOT IN (SELECT id FROM checkpoints ORDER BY id DESC LIMIT ?)",
-                       (keep,))
-            oldest = db.execute("SELECT min(seq) FROM checkpoints").fetchone()[0] if prune else 0
-            if oldest > 0 and db.execute("SELECT 1 FROM journal WHERE seq <= ? LIMIT 1", (oldest,)).fetchone():
-                db.execute("DELETE FROM journal WHERE seq <= ?", (oldest,))
-                db.execute("INSERT INTO meta VALUES ('pruned_to', ?) ON CONFLICT (key) DO UPDATE SET "
-                           "value = max(CAST(value AS INTEGER), CAST(excluded.value AS INTEGER))", (str(oldest),))
-            return cur.lastrowid, oldest
+            store_checks(db, *checks)
+            return insert_checkpoint(db, (seq, created, digest, state_digest, blob), keep, prune)
 
         ck_id, oldest = self._transaction(body)
         return Checkpoint((ck_id, seq, created, digest, state_digest, len(blob))), oldest
@@ -412,6 +407,11 @@ class Journal:
             cur = self._db.execute("SELECT id, seq, created, digest, state_digest, length(blob) FROM checkpoints "
                                    "ORDER BY id DESC")
             return [Checkpoint(r) for r in cur.fetchall()]
+
+    def checks(self, upto: int, limit: int | None) -> list[bytes]:
+        """Stored check records up to event ``upto`` (:func:`load_checks`)."""
+        with self._lock:
+            return load_checks(self._db, upto, limit)
 
     def load_checkpoint(self, ck_id: int) -> tuple[int, bytes, bool]:
         """``(seq, blob, digest_ok)`` of one checkpoint."""

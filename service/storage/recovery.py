@@ -108,7 +108,10 @@ async def newest_good_checkpoint(ing) -> tuple[Engine | None, int]:
                 recorded = Engine.checkpoint_position(blob)
                 if recorded is not None and recorded != seq:
                     raise ValueError(f"it records position {recorded}, its row says {seq}")
-                return Engine.from_bytes(ing.config, blob), seq
+                engine = Engine.from_bytes(ing.config, blob)
+                if not engine.trace:  # a service checkpoint: its check records are stored beside it
+                    engine.load_trace(await ing.db(ing.journal.checks, engine.events - 1, engine.trace.maxlen))
+                return engine, seq
             except Exception as exc:  # a blob that hashes right but cannot be read is just as unusable
                 reason = f"it cannot be read: {exc}"
         await ing.db(ing._incident, "corrupt_checkpoint",

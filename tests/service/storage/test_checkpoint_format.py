@@ -107,3 +107,22 @@ def test_the_trace_section_is_the_plain_serialization_of_the_records_across_chec
         for _ in range(2):  # a first and a cached serialization
             assert read_sections(engine.to_bytes(position=lo), _SECTIONS, frozenset({"monitor"}))["trace"] == want
     assert len(engine.trace) == 5 and len(engine._trace_json) == 5
+
+
+def test_check_records_keep_the_newest_and_replace_their_twins():
+    """``store_checks`` keeps the newest ``kept`` records; a record made again (the journal re-applied
+    after a crash) replaces its twin; ``load_checks`` reads those up to an event, oldest first."""
+    import sqlite3
+
+    from service.storage.checkpoint import CHECKS_SCHEMA, load_checks, store_checks
+
+    db = sqlite3.connect(":memory:")
+    db.executescript(CHECKS_SCHEMA)
+    store_checks(db, [(e, b"a%d" % e) for e in range(0, 500, 100)], kept=3)
+    assert load_checks(db, 10**9, None) == [b"a200", b"a300", b"a400"]
+    store_checks(db, [(400, b"b400"), (500, b"b500")], kept=3)
+    assert load_checks(db, 10**9, None) == [b"a300", b"b400", b"b500"]
+    assert load_checks(db, 450, None) == [b"a300", b"b400"]
+    assert load_checks(db, 10**9, 1) == [b"b500"]
+    store_checks(db, [(600, b"c")], kept=None)
+    assert len(load_checks(db, 10**9, None)) == 4
