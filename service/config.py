@@ -164,8 +164,8 @@ class ServiceConfig(_Section):
     port: int = Field(8470, ge=0, le=65535)
     data_dir: str = "trimtab-data"
     checkpoint_every: int = Field(10_000, ge=1)
-    #: at least this long between two periodic checkpoints: a fast feed would otherwise write one many times
-    #: a second, each holding the whole check history the dashboard draws (megabytes once it is full)
+    #: at least this long between two periodic checkpoints: a fast feed would otherwise write several a
+    #: second (each about 0.5 MB: the model, the baseline, the monitor's window and trusted copy)
     checkpoint_min_interval_s: float = Field(2.0, ge=0.0)
     checkpoints_kept: int = Field(3, ge=1)
     #: "token": every route that changes state (events, labels, remember on score, operator actions)
