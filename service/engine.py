@@ -36,7 +36,7 @@ from service.baseline import Baseline
 from service.events import Event, EventValidator
 from service.idhash import HOLDOUT_PREFIX
 from service.monitor.monitor import Monitor
-from service.state_json import TraceJson, exact, tagged, unexact, untagged
+from service.state_json import TraceJson, exact, record_json, unexact, untagged
 from service.storage.checkpoint import CheckpointFormatError, read_sections, write_sections
 
 if TYPE_CHECKING:
@@ -367,15 +367,13 @@ class Engine:
         for r in reversed(self.trace):
             if r["event"] <= after:
                 break
-            rows.append((r["event"], orjson.dumps(tagged(r), option=orjson.OPT_SERIALIZE_NUMPY)))
+            rows.append((r["event"], record_json(r)))
         return rows[::-1]
 
     def load_trace(self, records: list[bytes]) -> None:
-        """Put stored check records (:meth:`trace_rows`' JSON, oldest first) before the trace's own."""
-        own = list(self.trace)
-        self.trace.clear()
+        """Append stored check records (:meth:`trace_rows`' JSON, oldest first): a service checkpoint's
+        engine starts with an empty trace and gets its records back this way."""
         self.trace.extend(untagged(orjson.loads(r)) for r in records)
-        self.trace.extend(own)
 
     @classmethod
     def from_bytes(cls, config: Config, blob: bytes, *, trace_limit: int | None = 10_000) -> Engine:

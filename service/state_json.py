@@ -4,8 +4,8 @@ Counters and running sums are floats whose every bit matters (a restored engine 
 identically), so :func:`exact` writes a float as C99 hex text (defined for inf and nan too) and
 :func:`unexact` reads it back. Trace records are figures for people and plots: :func:`tagged` keeps
 their floats as JSON numbers and only tags the non-finite ones (which JSON lacks) as
-``{"float": "nan"}``; :func:`untagged` undoes it. :class:`TraceJson` serializes a trace for a
-checkpoint, each record once.
+``{"float": "nan"}``; :func:`untagged` undoes it; :func:`record_json` is one record's JSON.
+:class:`TraceJson` serializes a trace for a checkpoint, each record once.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import math
 
 import orjson
 
-__all__ = ["TraceJson", "exact", "tagged", "unexact", "untagged"]
+__all__ = ["TraceJson", "exact", "record_json", "tagged", "unexact", "untagged"]
 
 
 def exact(value):
@@ -47,6 +47,11 @@ def untagged(value):
     return value
 
 
+def record_json(record: dict) -> bytes:
+    """One trace record as JSON (:func:`tagged`; numpy scalars as numbers)."""
+    return orjson.dumps(tagged(record), option=orjson.OPT_SERIALIZE_NUMPY)
+
+
 class TraceJson:
     """A trace as one JSON array, the bytes of ``orjson.dumps([tagged(r) for r in trace])``.
 
@@ -67,8 +72,7 @@ class TraceJson:
         kept, parts = {}, []
         for r in trace:
             hit = self._kept.get(id(r))
-            data = hit[1] if hit is not None and hit[0] is r else orjson.dumps(tagged(r),
-                                                                                option=orjson.OPT_SERIALIZE_NUMPY)
+            data = hit[1] if hit is not None and hit[0] is r else record_json(r)
             kept[id(r)] = (r, data)
             parts.append(data)
         self._kept = kept
